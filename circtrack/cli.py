@@ -1,0 +1,158 @@
+"""Command line: parses, configures, calls. No science in here."""
+
+from __future__ import annotations
+
+import functools
+import sys
+import traceback
+
+import click
+
+from circtrack import __version__
+from circtrack.errors import CircError, UsageError
+
+
+def _fail(message, code):
+    click.echo(f"circtrack: error: {message}", err=True)
+    sys.exit(code)
+
+
+def guarded(fn):
+    """One clear line and an exit status for every failure; a traceback only with --debug."""
+
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        debug = click.get_current_context().find_root().params.get("debug", False)
+        try:
+            return fn(*args, **kwargs)
+        except CircError as e:
+            if debug:
+                traceback.print_exc()
+            _fail(str(e), e.exit_code)
+        except KeyboardInterrupt:
+            _fail("interrupted; the previous output is untouched", 130)
+        except (click.exceptions.Exit, click.ClickException, SystemExit):
+            raise
+        except Exception as e:  # pragma: no cover - the safety net
+            if debug:
+                traceback.print_exc()
+            first = str(e).splitlines()[0] if str(e) else ""
+            _fail(f"unexpected {type(e).__name__}: {first} (rerun with --debug for the traceback and report it)", 1)
+
+    return wrapper
+
+
+def parse_vars(pairs):
+    from circtrack.inputs.rules import VARIABLES
+
+    out = {}
+    for p in pairs:
+        if "=" not in p:
+            raise UsageError(f"--var '{p}': expected ROLE=NAME, e.g. --var ua=U")
+        role, name = (x.strip() for x in p.split("=", 1))
+        if role not in VARIABLES:
+            raise UsageError(f"--var '{p}': unknown role '{role}'; roles are {' '.join(VARIABLES)}")
+        out[role] = name
+    return out
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="circtrack")
+@click.option("--debug", is_flag=True, help="Show tracebacks on errors.")
+def main(debug):
+    """circtrack: time series of general-circulation indices from gridded climate data."""
+
+
+def _track_options(fn):
+    opts = [
+        click.argument("paths", nargs=-1, required=True),
+        click.option("-o", "--output", "output", required=True, help="Output CSV path, or - for stdout."),
+        click.option("-c", "--config", "config", default=None, help="TOML file overriding configs/default.toml."),
+        click.option("--var", "variables", multiple=True, metavar="ROLE=NAME",
+                     help="Use variable NAME for ROLE (ua va ta zg hus ps uas vas psl pr evspsbl rlut)."),
+        click.option("--metrics", "metrics", default=None, metavar="ID,...", help="Comma-separated metric ids (default: all)."),
+        click.option("--label", default=None, help="Value of the 'source' column (default: derived from the inputs)."),
+        click.option("--sector", "sectors", multiple=True, metavar="NAME=LON0:LON1",
+                     help="Also compute sector metrics for this longitude band."),
+        click.option("--workers", type=click.IntRange(1), default=None, help="Start a local dask.distributed cluster of N worker processes."),
+        click.option("--scheduler", default=None, metavar="ADDRESS", help="Use a running dask.distributed scheduler."),
+        click.option("--on-bad-file", type=click.Choice(["stop", "skip"]), default=None,
+                     help="Stop at an unreadable input (default) or skip it and report it."),
+        click.option("-q", "--quiet", is_flag=True, help="No progress output."),
+    ]
+    for o in reversed(opts):
+        fn = o(fn)
+    return fn
+
+
+def _run_track(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet):
+    from circtrack import config as C
+    from circtrack import engine, output as O
+    from circtrack.cluster import scheduler_context
+
+    if workers and scheduler:
+        raise UsageError("--workers and --scheduler exclude each other; give one")
+    cfg = C.load(config)
+    ids = [m.strip() for m in metrics.split(",") if m.strip()] if metrics else None
+    secs = [engine.parse_sector(s) for s in sectors]
+    prog = engine.Progress(quiet=quiet)
+    with scheduler_context(workers, scheduler, cfg):
+        outcome = engine.track(list(paths), cfg, metric_ids=ids, label=label, sectors=secs,
+                               overrides=parse_vars(variables), progress=prog, on_bad_file=on_bad_file)
+    O.write(outcome, output, cfg, argv=["circtrack", *sys.argv[1:]])
+    prog.done(len(outcome.columns["metric"]))
+    return outcome
+
+
+@main.command()
+@_track_options
+@guarded
+def track(**kw):
+    """Compute circulation indices from PATH... (files, directories, globs, or - for a list on stdin)."""
+    _run_track(**kw)
+
+
+@main.command()
+@click.argument("paths", nargs=-1, required=True)
+@click.option("-c", "--config", "config", default=None, help="TOML config (for [variables] overrides).")
+@click.option("--var", "variables", multiple=True, metavar="ROLE=NAME")
+@guarded
+def scan(paths, config, variables):
+    """Show what was found in PATH..., which metrics can run, and what to add for the rest."""
+    from circtrack import config as C
+    from circtrack.scan import report
+
+    cfg = C.load(config)
+    click.echo(report(list(paths), cfg, {**cfg.get("variables", {}), **parse_vars(variables)}))
+
+
+@main.command("metrics")
+@click.option("--format", "fmt", type=click.Choice(["text", "csv", "markdown"]), default="text")
+@guarded
+def metrics_cmd(fmt):
+    """List the metric catalogue: id, inputs, units, definition, published source."""
+    from circtrack.registry import catalogue, hemispheres
+
+    cat = catalogue()
+    if fmt == "csv":
+        import csv
+        w = csv.writer(sys.stdout, lineterminator="\n")
+        w.writerow(["id", "rows", "inputs", "units", "sectors", "definition", "reference"])
+        for m in cat.values():
+            w.writerow([m.id, "/".join(hemispheres(m)), " ".join(m.inputs), m.units, "yes" if m.sectors else "no",
+                        m.definition, m.reference])
+        return
+    if fmt == "markdown":
+        click.echo("| metric id | rows | inputs | units | definition | reference |\n|---|---|---|---|---|---|")
+        for m in cat.values():
+            click.echo(f"| `{m.id}` | {'/'.join(hemispheres(m))} | {' '.join(m.inputs)} | {m.units} | {m.definition} | {m.reference} |")
+        return
+    for m in cat.values():
+        click.echo(f"{m.id}  [{'/'.join(hemispheres(m))}; {m.units}; needs {' '.join(m.inputs)}"
+                   f"{'; per sector too' if m.sectors else ''}]")
+        click.echo(f"    {m.long_name}: {m.definition}")
+        click.echo(f"    source: {m.reference}")
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

@@ -1,0 +1,12 @@
+"""Quality flags written in the CSV ``flag`` column. A value that is not ``ok`` is doubtful or NaN."""
+
+FLAGS = {
+    "ok": "value computed as defined",
+    "no_zero_crossing": "no sign change inside the search window; value is NaN",
+    "extremum_at_window_edge": "the extremum sits on the edge of its search window, so the true one may lie outside; value is NaN",
+    "weak_cell": "the overturning cell is weaker than cells.weak_cell_kg_s; its edge is NaN, its strength is kept",
+    "too_little_data": "too few valid points in the search window (see run.min_window_fraction); value is NaN",
+    "level_missing": "a pressure level the metric needs lies outside the data's levels; value is NaN",
+    "no_half_max": "the wind does not fall to half its maximum on one side of the jet; width is NaN",
+    "cells_out_of_order": "the southern cell's minimum lies north of the northern cell's maximum; boundary is NaN",
+}

@@ -1,0 +1,1 @@
+"""Finding files, variables and coordinates (rules as data), units and calendars."""

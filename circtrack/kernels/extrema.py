@@ -1,0 +1,101 @@
+"""Windowed maxima and minima with 3-point parabolic refinement on the actual grid."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+
+@dataclass
+class Extremum:
+    """Result of :func:`window_extremum`; every field has the leading shape ``(...)``."""
+
+    position: np.ndarray   # refined coordinate of the extremum (NaN when none)
+    value: np.ndarray      # parabola vertex value (grid value when not refined)
+    index: np.ndarray      # grid index of the discrete extremum (-1 when none)
+    at_edge: np.ndarray    # discrete extremum sits on the first or last point of the window
+    valid_fraction: np.ndarray  # share of finite points inside the window
+
+
+def parabola_vertex(x0, x1, x2, y0, y1, y2):
+    """Vertex ``(xv, yv)`` of the parabola through three points on a non-uniform grid.
+
+    Notes
+    -----
+    With ``d = (x0-x1)(x0-x2)(x1-x2)``,
+    ``A = (x2(y1-y0) + x1(y0-y2) + x0(y2-y1)) / d`` and
+    ``B = (x2^2(y0-y1) + x1^2(y2-y0) + x0^2(y1-y2)) / d``, the vertex is ``xv = -B / 2A`` and
+    ``yv = y1 + A (xv-x1)^2 + (B + 2 A x1)(xv - x1)``. Where the three points are collinear
+    (``A == 0``) the middle point is returned.
+    """
+    x0, x1, x2, y0, y1, y2 = (np.asarray(v, dtype=float) for v in (x0, x1, x2, y0, y1, y2))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        d = (x0 - x1) * (x0 - x2) * (x1 - x2)
+        a = (x2 * (y1 - y0) + x1 * (y0 - y2) + x0 * (y2 - y1)) / d
+        b = (x2 ** 2 * (y0 - y1) + x1 ** 2 * (y2 - y0) + x0 ** 2 * (y1 - y2)) / d
+        xv = -b / (2 * a)
+        yv = y1 + a * (xv - x1) ** 2 + (b + 2 * a * x1) * (xv - x1)
+    flat = ~np.isfinite(xv) | (a == 0)
+    xv = np.where(flat, x1, np.clip(xv, np.minimum(x0, x2), np.maximum(x0, x2)))
+    yv = np.where(flat, y1, yv)
+    return xv, yv
+
+
+def window_extremum(y, x, lo, hi, *, kind="max"):
+    """Extremum of ``y(x)`` for ``lo <= x <= hi`` with 3-point parabolic refinement.
+
+    Parameters
+    ----------
+    y : array ``(..., N)``; NaN points are ignored.
+    x : array ``(N,)``, strictly increasing.
+    lo, hi : float, the search window (inclusive).
+    kind : {"max", "min"}
+
+    Returns
+    -------
+    Extremum
+        When the discrete extremum is on the window's first or last point it is not refined and
+        ``at_edge`` is True (the true extremum may lie outside the window). All-NaN windows give
+        NaN position/value and index -1.
+    """
+    y = np.asarray(y, dtype=float)
+    x = np.asarray(x, dtype=float)
+    lead = y.shape[:-1]
+    inwin = np.flatnonzero((x >= lo) & (x <= hi))
+    if inwin.size == 0:
+        nan = np.full(lead, np.nan)
+        return Extremum(nan, nan.copy(), np.full(lead, -1), np.zeros(lead, bool), np.zeros(lead))
+    i0, i1 = inwin[0], inwin[-1]
+    w = y[..., i0:i1 + 1]
+    s = w if kind == "max" else -w
+    finite = np.isfinite(s)
+    valid_fraction = finite.mean(axis=-1)
+    has = finite.any(axis=-1)
+    filled = np.where(finite, s, -np.inf)
+    k = np.argmax(filled, axis=-1)
+    idx = k + i0
+    at_edge = has & ((k == 0) | (k == w.shape[-1] - 1))
+    km = np.clip(idx - 1, 0, y.shape[-1] - 1)
+    kp = np.clip(idx + 1, 0, y.shape[-1] - 1)
+    take = lambda j: np.take_along_axis(y, j[..., None], -1)[..., 0]  # noqa: E731
+    yc, ym, yp = take(idx), take(km), take(kp)
+    xv, yv = parabola_vertex(x[km], x[idx], x[kp], ym, yc, yp)
+    refine = has & ~at_edge & np.isfinite(ym) & np.isfinite(yp)
+    position = np.where(refine, xv, np.where(has, x[idx], np.nan))
+    value = np.where(refine, yv, np.where(has, yc, np.nan))
+    return Extremum(position, value, np.where(has, idx, -1), at_edge, valid_fraction)
+
+
+def interp_at(y, x, pos):
+    """Linear interpolation of ``y(x)`` at positions ``pos`` (shape ``(...)``); NaN outside or at NaN."""
+    y = np.asarray(y, dtype=float)
+    x = np.asarray(x, dtype=float)
+    pos = np.asarray(pos, dtype=float)
+    ok = np.isfinite(pos) & (pos >= x[0]) & (pos <= x[-1])
+    p = np.where(ok, pos, x[0])
+    j = np.clip(np.searchsorted(x, p, side="right") - 1, 0, x.size - 2)
+    t = (p - x[j]) / (x[j + 1] - x[j])
+    ya = np.take_along_axis(y, j[..., None], -1)[..., 0]
+    yb = np.take_along_axis(y, (j + 1)[..., None], -1)[..., 0]
+    return np.where(ok, ya + t * (yb - ya), np.nan)

@@ -1,0 +1,1 @@
+"""Metric families. Each module registers its metrics in :mod:`circtrack.registry` on import."""

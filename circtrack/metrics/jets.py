@@ -1,0 +1,76 @@
+"""Jet streams from the zonal-mean zonal wind.
+
+References
+----------
+Barnes, E. A. & Polvani, L. M. (2013) J. Climate 26, 7117-7135 (lower-tropospheric jet latitude
+from the [u]850 maximum with quadratic refinement). The subtropical jet as the maximum of the
+200-850 hPa shear follows the intercomparisons of Davis & Rosenlof (2012) J. Climate and
+Waugh et al. (2018) J. Climate.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from circtrack.kernels.crossings import level_crossing, reverse
+from circtrack.kernels.extrema import interp_at
+from circtrack.metrics.common import HEMISPHERES, hemisphere_view, missing, peak, signed
+from circtrack.registry import Metric, Result, register_family
+
+SHEAR_REF = "Davis & Rosenlof (2012) J. Climate 25, 1061-1078; Waugh et al. (2018) J. Climate 31, 7565-7581"
+EDDY_REF = "Barnes & Polvani (2013) J. Climate 26, 7117-7135"
+
+METRICS = [
+    Metric("subtropical_jet_lat", "Subtropical jet latitude", "degrees_north", "hemisphere",
+           "maximum of [u]200 - [u]850 in jets.subtropical_window (10-60 deg poleward), 3-point parabola", SHEAR_REF),
+    Metric("subtropical_jet_speed", "Subtropical jet speed", "m s-1", "hemisphere",
+           "[u]200 at the subtropical jet latitude (linear interpolation)", SHEAR_REF),
+    Metric("eddy_jet_lat", "Eddy-driven jet latitude", "degrees_north", "hemisphere",
+           "maximum of [u]850 in jets.eddy_window (15-70 deg poleward), 3-point parabola", EDDY_REF),
+    Metric("eddy_jet_speed", "Eddy-driven jet speed", "m s-1", "hemisphere",
+           "parabola vertex value of [u]850 at the eddy-driven jet", EDDY_REF),
+    Metric("eddy_jet_width", "Eddy-driven jet width", "degrees", "hemisphere",
+           "distance between the latitudes on either side of the eddy-driven jet where [u]850 falls to "
+           "half its maximum (linear interpolation)", EDDY_REF),
+]
+
+
+def _levels(cfg):
+    j = cfg["jets"]
+    return {"ua": sorted({float(j["upper_level_hpa"]), float(j["lower_level_hpa"])})}
+
+
+@register_family("jets", inputs=("ua",), levels=_levels, sectors=True, metrics=METRICS)
+def compute(fields, cfg):
+    j = cfg["jets"]
+    n = fields.n
+    out = {m.id: Result.empty(n, 2) for m in METRICS}
+    upper = fields.level("ua", j["upper_level_hpa"], cfg)
+    lower = fields.level("ua", j["lower_level_hpa"], cfg)
+    if upper is None or lower is None:
+        missing(out.values(), "level_missing")
+        return out
+    for h, hemi in enumerate(HEMISPHERES):
+        idx, x = hemisphere_view(fields.lat, hemi)
+        u_up, u_lo = upper[:, idx], lower[:, idx]
+
+        stj_lat, stj_speed = out["subtropical_jet_lat"], out["subtropical_jet_speed"]
+        ext = peak(u_up - u_lo, x, j["subtropical_window"], cfg, stj_lat, None, h)
+        stj_speed.value[:, h] = interp_at(u_up, x, stj_lat.value[:, h])
+        stj_speed.flag[:, h] = stj_lat.flag[:, h]
+        stj_lat.value[:, h] = signed(hemi, stj_lat.value[:, h])
+
+        lat_r, speed_r, width_r = out["eddy_jet_lat"], out["eddy_jet_speed"], out["eddy_jet_width"]
+        ext = peak(u_lo, x, j["eddy_window"], cfg, lat_r, speed_r, h)
+        half = ext.value / 2.0
+        poleward = level_crossing(u_lo, x, ext.index, half, direction="down")
+        ry, rx, ridx = reverse(u_lo, x, ext.index)
+        equatorward = -level_crossing(ry, rx, ridx, half, direction="down")
+        width = poleward - equatorward
+        width_r.value[:, h] = width
+        width_r.flag[:, h] = np.where(np.isnan(width), "no_half_max", "ok")
+        notok = lat_r.flag[:, h] != "ok"
+        width_r.flag[notok, h] = lat_r.flag[notok, h]
+        width_r.value[notok, h] = np.nan
+        lat_r.value[:, h] = signed(hemi, lat_r.value[:, h])
+    return out

@@ -1,0 +1,100 @@
+"""Tidy CSV (sorted, stable formatting, atomic) and the JSON provenance sidecar."""
+
+from __future__ import annotations
+
+import json
+import os
+import platform
+import sys
+import tempfile
+from importlib import metadata
+
+import numpy as np
+
+from circtrack import __version__
+
+
+def format_value(v):
+    """Stable text for a float: 6 significant digits, 'NaN' for missing."""
+    if not np.isfinite(v):
+        return "NaN"
+    s = f"{v:.6g}"
+    return "0" if s == "-0" else s
+
+
+def sorted_lines(outcome):
+    """CSV lines (header first) sorted by the key columns, time chronologically."""
+    cols = outcome.columns
+    keys = outcome.key_columns
+    n = len(cols["metric"])
+    sort_keys = []
+    for k in reversed(keys):
+        sort_keys.append(outcome.time_order if k == "time" else np.asarray(cols[k], dtype=str))
+    order = np.lexsort(sort_keys) if n else np.array([], dtype=int)
+    names = list(cols)
+    lines = [",".join(names)]
+    text = {k: (np.array([format_value(x) for x in cols[k]], dtype=object) if k == "value" else cols[k]) for k in names}
+    for i in order:
+        lines.append(",".join(str(text[k][i]) for k in names))
+    return lines
+
+
+def atomic_write_text(path, text):
+    """Write ``text`` to ``path`` through a temp file in the same directory, fsync and rename."""
+    path = os.path.abspath(path)
+    d = os.path.dirname(path)
+    fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=".tmp", dir=d)
+    try:
+        with os.fdopen(fd, "w", newline="") as f:
+            f.write(text)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+        dfd = os.open(d, os.O_RDONLY)
+        try:
+            os.fsync(dfd)
+        finally:
+            os.close(dfd)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def sidecar_path(csv_path):
+    return csv_path + ".json" if not csv_path.endswith(".csv") else csv_path[:-4] + ".provenance.json"
+
+
+def library_versions():
+    out = {"python": platform.python_version()}
+    for name in ("numpy", "pandas", "xarray", "dask", "distributed", "netCDF4", "h5netcdf", "cftime", "scipy", "click"):
+        try:
+            out[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            pass
+    return out
+
+
+def provenance(outcome, cfg, argv):
+    return {
+        "tool": "circtrack",
+        "version": __version__,
+        "command": argv,
+        "columns": list(outcome.columns),
+        "parameters": cfg,
+        **outcome.provenance,
+        "libraries": library_versions(),
+    }
+
+
+def write(outcome, out_path, cfg, argv=None):
+    """Write CSV (``-`` for stdout) and, for files, the sidecar. Both appear atomically."""
+    text = "\n".join(sorted_lines(outcome)) + "\n"
+    if out_path == "-":
+        sys.stdout.write(text)
+        sys.stdout.flush()
+        return None
+    prov = provenance(outcome, cfg, argv if argv is not None else sys.argv)
+    atomic_write_text(sidecar_path(out_path), json.dumps(prov, indent=2, sort_keys=False, default=str) + "\n")
+    atomic_write_text(out_path, text)
+    return sidecar_path(out_path)

@@ -1,0 +1,92 @@
+"""The one metric registry: the CLI, the ``metrics`` listing, CSV units and the docs come from here.
+
+A *family* computes several metrics that share work (e.g. the streamfunction feeds the Hadley
+edge, its strength and the cell boundary). Families declare the input roles (CMIP short names)
+and the pressure levels they need, so the engine reads nothing more.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Callable
+
+import numpy as np
+
+
+@dataclass(frozen=True)
+class Metric:
+    """One catalogue entry."""
+
+    id: str
+    long_name: str
+    units: str
+    scope: str            # "hemisphere" (rows NH and SH) or "global" (one row)
+    definition: str
+    reference: str
+    family: str = ""
+    inputs: tuple = ()
+    sectors: bool = False  # may be computed per longitude sector
+
+
+@dataclass
+class Result:
+    """Values and flags of one metric for N samples: ``value (N, H)``, ``flag (N, H)`` (str)."""
+
+    value: np.ndarray
+    flag: np.ndarray
+
+    @classmethod
+    def empty(cls, n, h, flag="ok"):
+        return cls(np.full((n, h), np.nan), np.full((n, h), flag, dtype=object))
+
+
+@dataclass
+class Family:
+    name: str
+    inputs: tuple                      # roles, e.g. ("va",)
+    levels: Callable                   # cfg -> {role: list of hPa levels, or None for all}
+    compute: Callable                  # (fields, cfg) -> {metric_id: Result}
+    sectors: bool = False
+    metrics: list = field(default_factory=list)
+    optional_inputs: tuple = ()
+
+
+_FAMILIES: dict[str, Family] = {}
+_METRICS: dict[str, Metric] = {}
+
+
+def register_family(name, *, inputs, levels, sectors=False, metrics, optional_inputs=()):
+    """Decorator registering a family's compute function and the metrics it produces."""
+
+    def wrap(fn):
+        fam = Family(name, tuple(inputs), levels, fn, sectors, [], tuple(optional_inputs))
+        for m in metrics:
+            m = Metric(**{**m.__dict__, "family": name, "inputs": tuple(inputs), "sectors": sectors})
+            if m.id in _METRICS:
+                raise ValueError(f"metric id {m.id} registered twice")
+            _METRICS[m.id] = m
+            fam.metrics.append(m)
+        _FAMILIES[name] = fam
+        return fn
+
+    return wrap
+
+
+def _load():
+    # importing the metric modules fills the registry
+    from circtrack.metrics import cells, jets  # noqa: F401
+
+
+def catalogue() -> dict[str, Metric]:
+    """All metrics by id, in registration order."""
+    _load()
+    return dict(_METRICS)
+
+
+def families() -> dict[str, Family]:
+    _load()
+    return dict(_FAMILIES)
+
+
+def hemispheres(metric: Metric):
+    return ("NH", "SH") if metric.scope == "hemisphere" else ("global",)
