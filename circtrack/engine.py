@@ -194,7 +194,8 @@ def derive_source(paths, attrs):
     if attrs.get("source_id"):
         return "_".join(attrs[k] for k in ("source_id", "experiment_id", "variant_label") if attrs.get(k))
     stems = [os.path.basename(p.rstrip("/")).split(".")[0] for p in paths]
-    prefix = os.path.commonprefix(stems).rstrip("_-. ")
+    prefix = os.path.commonprefix(stems) if len(stems) > 1 else stems[0]
+    prefix = prefix.rstrip("0123456789_-. ") if len(stems) > 1 else prefix
     if len(prefix) >= 3:
         return prefix
     parent = os.path.basename(os.path.dirname(os.path.abspath(paths[0])))

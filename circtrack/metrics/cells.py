@@ -32,7 +32,7 @@ METRICS = [
            "integral from the top to p of [v] dp", PSI_REF),
     Metric("cell_boundary_lat", "Boundary between the two Hadley cells", "degrees_north", "global",
            "zero of psi500 between the southern cell's minimum and the northern cell's maximum, both "
-           "searched in cells.boundary_window", PSI_REF),
+           "searched in cells.boundary_window (the minimum south of the maximum)", PSI_REF),
 ]
 
 
@@ -85,8 +85,10 @@ def compute(fields, cfg):
         strength.value[thin, h] = np.nan
 
     lo, hi = c["boundary_window"]
-    south = window_extremum(psi_l, lat, lo, hi, kind="min")
     north = window_extremum(psi_l, lat, lo, hi, kind="max")
+    # the southern cell's minimum is sought south of the northern cell's maximum
+    south_of_max = np.where(lat[None, :] <= north.position[:, None], psi_l, np.nan)
+    south = window_extremum(south_of_max, lat, lo, hi, kind="min")
     ordered = (south.index >= 0) & (north.index > south.index)
     pos = first_crossing(psi_l, lat, np.where(ordered, south.index, -1), direction="up")
     pos = np.where(pos <= north.position, pos, np.nan)
