@@ -1,0 +1,92 @@
+"""Windowed extrema and parabolic refinement on a non-uniform grid."""
+
+import numpy as np
+import pytest
+
+from circtrack.kernels.extrema import interp_at, parabola_vertex, window_extremum
+
+
+def parabola(x, a=-2.0, xv=1.37, yv=5.0):
+    return a * (x - xv) ** 2 + yv
+
+
+def test_vertex_of_exact_parabola_nonuniform():
+    x0, x1, x2 = 0.2, 1.1, 3.0        # unequal spacing
+    xv, yv = parabola_vertex(x0, x1, x2, parabola(x0), parabola(x1), parabola(x2))
+    assert xv == pytest.approx(1.37, abs=1e-12)
+    assert yv == pytest.approx(5.0, abs=1e-12)
+
+
+def test_vertex_matches_numpy_polyfit():
+    # reference library: numpy.polyfit (least squares of degree 2 through 3 points = interpolation)
+    rng = np.random.default_rng(0)
+    for _ in range(20):
+        x = np.sort(rng.uniform(-5, 5, 3))
+        y = rng.normal(size=3)
+        a, b, c = np.polyfit(x, y, deg=2)
+        ref_x = -b / (2 * a)
+        xv, yv = parabola_vertex(*x, *y)
+        if x[0] <= ref_x <= x[2]:          # the kernel clips the vertex to the bracket
+            assert xv == pytest.approx(ref_x, rel=1e-8, abs=1e-8)
+            assert yv == pytest.approx(np.polyval([a, b, c], ref_x), rel=1e-8, abs=1e-8)
+        else:
+            assert x[0] <= xv <= x[2]
+
+
+def test_collinear_points_return_middle():
+    xv, yv = parabola_vertex(0.0, 1.0, 3.0, 1.0, 2.0, 4.0)
+    assert (xv, yv) == (1.0, 2.0)
+
+
+def test_window_extremum_refines_parabola_on_nonuniform_grid():
+    x = np.array([0.0, 0.5, 1.2, 1.6, 2.5, 3.1, 4.0])
+    y = parabola(x)
+    e = window_extremum(y, x, 0.0, 4.0)
+    assert e.position == pytest.approx(1.37, abs=1e-12)
+    assert e.value == pytest.approx(5.0, abs=1e-12)
+    assert e.index == 2 and not e.at_edge  # x=1.2 is the nearest grid point to 1.37 and e.valid_fraction == 1.0
+
+
+def test_window_extremum_min():
+    x = np.array([0.0, 0.4, 1.0, 1.9, 2.2, 3.0])
+    y = -parabola(x, xv=1.7, yv=-3.0)   # minimum 3.0 at 1.7
+    e = window_extremum(y, x, 0.0, 3.0, kind="min")
+    assert e.position == pytest.approx(1.7, abs=1e-12)
+    assert e.value == pytest.approx(3.0, abs=1e-12)
+
+
+def test_window_restricts_search_and_flags_edge():
+    x = np.arange(0.0, 11.0)
+    y = x.copy()                         # monotonic: max of window [2, 6] at x = 6 (window edge)
+    e = window_extremum(y, x, 2.0, 6.0)
+    assert bool(e.at_edge)
+    assert e.position == 6.0 and e.value == 6.0 and e.index == 6
+
+
+def test_all_nan_window():
+    x = np.arange(5.0)
+    e = window_extremum(np.full((2, 5), np.nan), x, 0.0, 4.0)
+    assert np.all(np.isnan(e.position)) and np.all(np.isnan(e.value))
+    assert np.all(e.index == -1) and not e.at_edge.any() and np.all(e.valid_fraction == 0)
+
+
+def test_empty_window():
+    x = np.arange(5.0)
+    e = window_extremum(np.ones(5), x, 10.0, 20.0)
+    assert np.isnan(e.position) and e.index == -1
+
+
+def test_partial_nan_valid_fraction_and_no_refinement_next_to_nan():
+    x = np.arange(6.0)
+    y = np.array([0.0, 1.0, 3.0, np.nan, 1.0, 0.0])
+    e = window_extremum(y, x, 0.0, 5.0)
+    assert e.valid_fraction == pytest.approx(5 / 6)
+    assert e.position == 2.0 and e.value == 3.0    # neighbour NaN: grid value, not refined
+
+
+def test_interp_at():
+    x = np.array([0.0, 1.0, 3.0])
+    y = np.array([[0.0, 2.0, 6.0]])
+    np.testing.assert_allclose(interp_at(y, x, np.array([2.0])), [4.0])
+    assert np.isnan(interp_at(y, x, np.array([3.5]))[0])
+    assert np.isnan(interp_at(y, x, np.array([np.nan]))[0])
