@@ -30,6 +30,12 @@ METRICS = [
     Metric("hadley_strength", "Hadley cell strength", "kg s-1", "hemisphere",
            "abs(psi500) at the cell's extremum (3-point parabola vertex), psi = 2 pi a cos(lat)/g * "
            "integral from the top to p of [v] dp", PSI_REF),
+    Metric("ferrel_edge_lat", "Poleward edge of the Ferrel cell", "degrees_north", "hemisphere",
+           "next zero of psi500 poleward of the Hadley edge (where the polar cell begins), up to "
+           "cells.ferrel_search_limit; linear interpolation", PSI_REF),
+    Metric("ferrel_strength", "Ferrel cell strength", "kg s-1", "hemisphere",
+           "abs(psi500) at the Ferrel cell's extremum between the Hadley edge and the Ferrel edge "
+           "(3-point parabola vertex)", PSI_REF),
     Metric("cell_boundary_lat", "Boundary between the two Hadley cells", "degrees_north", "global",
            "zero of psi500 between the southern cell's minimum and the northern cell's maximum, both "
            "searched in cells.boundary_window (the minimum south of the maximum)", PSI_REF),
@@ -56,7 +62,9 @@ def compute(fields, cfg):
     n = fields.n
     edge, strength = Result.empty(n, 2), Result.empty(n, 2)
     boundary = Result.empty(n, 1)
-    out = {"hadley_edge_lat": edge, "hadley_strength": strength, "cell_boundary_lat": boundary}
+    ferrel_edge, ferrel_strength = Result.empty(n, 2), Result.empty(n, 2)
+    out = {"hadley_edge_lat": edge, "hadley_strength": strength, "cell_boundary_lat": boundary,
+           "ferrel_edge_lat": ferrel_edge, "ferrel_strength": ferrel_strength}
     psi = streamfunction(fields)
     plev = fields.plev["va"]
     psi_l = at_level(psi, plev, c["level_hpa"], tolerance=cfg["run"]["level_tolerance_hpa"])
@@ -83,6 +91,7 @@ def compute(fields, cfg):
             r.flag[thin, h] = "too_little_data"
         edge.value[(edge.flag[:, h] != "ok"), h] = np.nan
         strength.value[thin, h] = np.nan
+        _ferrel(y, x, np.abs(edge.value[:, h]), edge.flag[:, h], hemi, h, ferrel_edge, ferrel_strength, c)
 
     lo, hi = c["boundary_window"]
     north = window_extremum(psi_l, lat, lo, hi, kind="max")
@@ -97,3 +106,19 @@ def compute(fields, cfg):
     boundary.flag[thin, 0] = "too_little_data"
     boundary.value[thin, 0] = np.nan
     return out
+
+
+def _ferrel(y, x, hadley_edge, hadley_flag, hemi, h, edge_r, strength_r, c):
+    """Ferrel cell of one hemisphere view (Hadley cell positive, Ferrel cell negative)."""
+    start = np.where(np.isfinite(hadley_edge), np.searchsorted(x, np.nan_to_num(hadley_edge, nan=0.0)), -1)
+    pos = first_crossing(y, x, start, stop=c["ferrel_search_limit"], direction="up")
+    between = (x[None, :] >= hadley_edge[:, None]) & (x[None, :] <= pos[:, None])
+    ext = window_extremum(np.where(between, y, np.nan), x, 0.0, 90.0, kind="min")
+    edge_r.value[:, h] = signed(hemi, pos)
+    edge_r.flag[:, h] = np.where(np.isnan(pos), "no_zero_crossing", "ok")
+    strength_r.value[:, h] = np.where(np.isfinite(pos) & (ext.value < 0), np.abs(ext.value), np.nan)
+    strength_r.flag[:, h] = np.where(np.isnan(strength_r.value[:, h]), "no_zero_crossing", "ok")
+    bad = hadley_flag != "ok"
+    for r in (edge_r, strength_r):
+        r.flag[bad, h] = hadley_flag[bad]
+        r.value[bad, h] = np.nan
