@@ -154,5 +154,11 @@ def metrics_cmd(fmt):
         click.echo(f"    source: {m.reference}")
 
 
+from circtrack.cli_findings import plot, season, trend  # noqa: E402
+
+for _cmd in (trend, season, plot):
+    main.add_command(_cmd)
+
+
 if __name__ == "__main__":  # pragma: no cover
     main()

@@ -1,0 +1,169 @@
+"""Commands that turn a circtrack CSV into findings: trend, season, plot. No science in here."""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+
+import click
+
+from circtrack.cli import guarded
+from circtrack.errors import InputError, UsageError
+
+CALENDARS = ("standard", "gregorian", "proleptic_gregorian", "julian", "noleap", "365_day",
+             "all_leap", "366_day", "360_day")
+
+
+def _load(path):
+    """Read and validate a circtrack CSV; return (table, path)."""
+    from circtrack import stats as S
+
+    if not os.path.exists(path):
+        raise InputError(f"{path}: no such file; give the CSV written by 'circtrack track -o FILE.csv'")
+    if os.path.isdir(path):
+        raise InputError(f"{path}: is a directory; give the CSV written by 'circtrack track -o FILE.csv'")
+    try:
+        df = S.read_csv(path)
+    except Exception as e:  # pandas raises several types for unreadable text
+        raise InputError(f"{path}: not a readable CSV ({type(e).__name__}); give the CSV written by 'circtrack track'")
+    missing = [c for c in S.REQUIRED if c not in df.columns]
+    if missing:
+        raise InputError(f"{path}: missing column(s) {', '.join(missing)}; expected the 'circtrack track' header "
+                         f"{','.join(S.REQUIRED)}")
+    cols = list(df.columns)
+    if cols.index("hemisphere") < cols.index("time"):
+        raise InputError(f"{path}: column 'time' must come before 'hemisphere' (circtrack track layout)")
+    if not (df["flag"] == "ok").any():
+        raise InputError(f"{path}: no rows with flag 'ok'; rerun 'circtrack track' or check its flag column")
+    try:
+        S.parse_times(df.loc[df["flag"] == "ok", "time"])
+    except S.StatsInputError as e:
+        raise InputError(f"{path}: {e}; times must be ISO 8601 as written by 'circtrack track'")
+    return df
+
+
+def _calendar(path, df, given):
+    """--calendar, else the provenance sidecar of 'circtrack track', else a guess from the dates."""
+    from circtrack import stats as S
+    from circtrack.output import sidecar_path
+
+    if given:
+        return given
+    side = sidecar_path(path)
+    if os.path.exists(side):
+        try:
+            with open(side) as f:
+                cal = json.load(f).get("calendar")
+            if cal:
+                return str(cal)
+        except (OSError, ValueError):
+            pass
+    return S.infer_calendar(df.loc[df["flag"] == "ok", "time"])
+
+
+def _metric_ids(metrics, df, path):
+    if not metrics:
+        return None
+    ids = [m.strip() for m in metrics.split(",") if m.strip()]
+    known = set(df["metric"].unique())
+    unknown = [m for m in ids if m not in known]
+    if unknown:
+        raise UsageError(f"--metrics: {', '.join(unknown)} not in {path}; it has {', '.join(sorted(known))}")
+    return ids
+
+
+def _emit(text, output):
+    from circtrack.output import atomic_write_text
+
+    if output in (None, "-"):
+        click.echo(text, nl=False)
+    else:
+        atomic_write_text(output, text)
+
+
+def _wrap(fn_stats, path):
+    from circtrack import stats as S
+
+    try:
+        return fn_stats()
+    except S.StatsInputError as e:
+        raise InputError(f"{path}: {e}")
+
+
+_calendar_opt = click.option("--calendar", type=click.Choice(CALENDARS), default=None,
+                             help="Calendar of the times (default: from the provenance sidecar, else guessed).")
+
+
+@click.command()
+@click.argument("csv_path", metavar="CSV")
+@click.option("-o", "--output", default=None, help="Output CSV (default: stdout).")
+@click.option("--poleward-positive", is_flag=True, help="Flip SH latitude metrics so that poleward is positive.")
+@click.option("--metrics", default=None, metavar="ID,...", help="Comma-separated metric ids (default: all).")
+@_calendar_opt
+@guarded
+def trend(csv_path, output, poleward_positive, metrics, calendar):
+    """Trends per decade (OLS with AR(1)-adjusted CI; Theil-Sen with Mann-Kendall p) per season."""
+    from circtrack import stats as S
+
+    df = _load(csv_path)
+    ids = _metric_ids(metrics, df, csv_path)
+    cal = _calendar(csv_path, df, calendar)
+    tab = _wrap(lambda: S.trends(df, poleward_positive=poleward_positive, calendar=cal, metrics=ids), csv_path)
+    if tab.empty:
+        raise InputError(f"{csv_path}: no complete season or year to fit; trends need whole months of 'ok' data")
+    _emit(S.table_to_csv(tab), output)
+
+
+def _parse_base(base):
+    if base is None:
+        return None
+    m = re.fullmatch(r"\s*(-?\d+)\s*[:\-]\s*(-?\d+)\s*", base)
+    if not m or int(m.group(1)) > int(m.group(2)):
+        raise UsageError(f"--base '{base}': expected FIRST:LAST years, e.g. --base 1981:2010")
+    return int(m.group(1)), int(m.group(2))
+
+
+@click.command()
+@click.argument("csv_path", metavar="CSV")
+@click.option("-o", "--output", default=None, help="Climatology CSV (default: stdout).")
+@click.option("--base", default=None, metavar="Y0:Y1", help="Base period for climatology/anomalies (default: all years).")
+@click.option("--anomalies", default=None, metavar="OUT2.csv", help="Also write monthly anomalies to this CSV.")
+@click.option("--metrics", default=None, metavar="ID,...", help="Comma-separated metric ids (default: all).")
+@_calendar_opt
+@guarded
+def season(csv_path, output, base, anomalies, metrics, calendar):
+    """Monthly climatology, seasonal-cycle amplitude and poleward-extreme month; optional anomalies."""
+    from circtrack import stats as S
+
+    b = _parse_base(base)
+    df = _load(csv_path)
+    ids = _metric_ids(metrics, df, csv_path)
+    cal = _calendar(csv_path, df, calendar)
+    try:
+        clim, anom = S.seasonal_cycle(df, base=b, calendar=cal, metrics=ids)
+    except S.StatsInputError as e:
+        raise UsageError(f"{csv_path}: {e}; choose --base years inside the record")
+    _emit(S.table_to_csv(clim), output)
+    if anomalies:
+        _emit(S.table_to_csv(anom), anomalies)
+
+
+@click.command()
+@click.argument("csv_path", metavar="CSV")
+@click.option("-o", "--output", required=True, help="Figure file: .png, .pdf or .svg.")
+@click.option("--metrics", default=None, metavar="ID,...", help="Comma-separated metric ids (default: all).")
+@click.option("--poleward-positive", is_flag=True, help="Flip SH latitude metrics so that poleward is positive.")
+@_calendar_opt
+@guarded
+def plot(csv_path, output, metrics, poleward_positive, calendar):
+    """Time series with OLS trend and 95 % band, and the monthly seasonal cycle, per metric."""
+    from circtrack import plots
+
+    ext = os.path.splitext(output)[1].lower().lstrip(".")
+    if ext not in plots.FORMATS:
+        raise UsageError(f"-o {output}: unknown figure format; end the name with .png, .pdf or .svg")
+    df = _load(csv_path)
+    ids = _metric_ids(metrics, df, csv_path)
+    cal = _calendar(csv_path, df, calendar)
+    _wrap(lambda: plots.save(df, output, metrics=ids, calendar=cal, poleward_positive=poleward_positive), csv_path)
