@@ -158,6 +158,26 @@ def _calendar(name):
     return "standard" if name == "gregorian" else name
 
 
+def _available_metrics(files, cfg, overrides, policy):
+    """Without --metrics: every metric whose inputs the first readable file holds."""
+    for p in files:
+        try:
+            ds = D.open_dataset(p, cfg)
+        except InputError:
+            if policy == "skip":
+                continue
+            raise
+        det = D.detect(ds, p, overrides)
+        ds.close()
+        ids = [m.id for f in registry.families().values() if set(f.inputs) <= set(det.variables) for m in f.metrics]
+        if not ids:
+            roles = sorted({r for f in registry.families().values() for r in f.inputs})
+            raise InputError(f"{p}: none of the variables the metrics need ({', '.join(roles)}) was found; "
+                             f"run 'circtrack scan {p}' and name them with --var ROLE=NAME")
+        return ids
+    raise InputError(f"{files[0]}: no readable input among {len(files)} file(s)")
+
+
 def _check_consistent(infos):
     first = infos[0]
     lat0 = np.sort(first.detected.lat)
@@ -245,9 +265,11 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
     overrides = {**cfg.get("variables", {}), **(overrides or {})}
     sectors = list(sectors) + [(k, float(v[0]), float(v[1])) for k, v in cfg.get("sectors", {}).items()
                                if k not in {s[0] for s in sectors}]
-    plan = Plan.make(metric_ids, cfg, sectors)
     files = expand(paths, stdin=stdin)
     policy = on_bad_file or cfg["run"]["on_bad_file"]
+    if metric_ids is None:
+        metric_ids = _available_metrics(files, cfg, overrides, policy)
+    plan = Plan.make(metric_ids, cfg, sectors)
     infos, skipped = [], []
     for p in files:
         try:
