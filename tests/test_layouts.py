@@ -37,8 +37,17 @@ def _longitude_pm180(ds):
     return ds
 
 
-@pytest.mark.parametrize("transform", [_latitude_descending, _plev_in_pa_with_noise, _longitude_pm180],
-                         ids=["lat_descending", "plev_pa_noise", "lon_-180_180"])
+def _plev_ascending(ds):
+    return ds.isel(plev=slice(None, None, -1))
+
+
+def _all_at_once(ds):
+    return _longitude_pm180(_plev_in_pa_with_noise(_plev_ascending(_latitude_descending(ds))))
+
+
+@pytest.mark.parametrize("transform", [_latitude_descending, _plev_in_pa_with_noise, _longitude_pm180,
+                                       _plev_ascending, _all_at_once],
+                         ids=["lat_descending", "plev_pa_noise", "lon_-180_180", "plev_ascending", "all"])
 def test_layout_gives_identical_rows(tmp_path, base_rows, transform):
     ds = transform(make_dataset(3))
     path = write(ds, tmp_path / "variant.nc")
@@ -65,6 +74,18 @@ def test_split_one_file_per_month(tmp_path, base_rows):
     assert csv_rows(out) == base_rows
     _, out_dir = run(str(d), label=LABEL)      # a directory works the same
     assert csv_rows(out_dir) == base_rows
+
+
+def test_duplicate_time_steps_across_files_are_dropped(tmp_path, base_rows):
+    ds = make_dataset(3)
+    d = tmp_path / "dup"
+    d.mkdir()
+    a = write(ds.isel(time=[0, 1]), d / "a.nc")
+    b = write(ds.isel(time=[1, 2]), d / "b.nc")            # 2000-02-15 appears twice
+    _, out = run([a, b], label=LABEL)
+    assert csv_rows(out) == base_rows
+    dropped = out.provenance["duplicate_time_steps_dropped"]
+    assert len(dropped) == 1 and dropped[0]["time"] == "2000-02-15" and dropped[0]["path"] == b
 
 
 def test_nan_below_ground_in_half_the_longitudes(tmp_path):

@@ -93,6 +93,7 @@ def test_common_practice_sanity(default_nc):
     from circtrack.kernels.vertical import mass_streamfunction
     from tests.conftest import LAT, PLEV, make_dataset
 
+    # common practice: Hadley edges within 25-35 deg of the equator; Peixoto & Oort (1992) sign convention
     table, _ = run(default_nc)
     for t in _times(table):
         nh = table[(t, "NH", "hadley_edge_lat")][0]
@@ -106,6 +107,25 @@ def test_common_practice_sanity(default_nc):
     k500 = int(np.flatnonzero(PLEV[order] == 500.0)[0])
     assert psi[k500, LAT == 15.0][0] > 0                    # NH Hadley cell
     assert psi[k500, LAT == -15.0][0] < 0                   # SH Hadley cell
+
+
+def test_subtropical_jet_speed_closed_form(default_nc):
+    # [u]200 at the stj latitude = stj_speed + the eddy jet's Gaussian tail there (closed form);
+    # NH: 30 + 12 exp(-((30-45)/10)^2) = 31.2648; SH: 35 + 15 exp(-((-32+50)/10)^2) = 35.5874
+    table, _ = run(default_nc, metric_ids=["subtropical_jet_speed"])
+    nh = 30.0 + 12.0 * math.exp(-((30.0 - 45.0) / 10.0) ** 2)
+    sh = 35.0 + 15.0 * math.exp(-((-32.0 + 50.0) / 10.0) ** 2)
+    for t in _times(table):
+        _check(table, t, "NH", "subtropical_jet_speed", nh, tol=0.05)
+        _check(table, t, "SH", "subtropical_jet_speed", sh, tol=0.05)
+
+
+def test_time_varying_cell_strength(make_nc):
+    peaks = np.array([1.0e11, 1.5e11, 0.6e11])
+    table, _ = run(make_nc("peaks.nc", hadley_peak=peaks), metric_ids=["hadley_strength"])
+    got = np.array([table[(t, "NH", "hadley_strength")][0] for t in _times(table)])
+    np.testing.assert_allclose(got / peaks, got[0] / peaks[0], rtol=1e-5)   # same shape, scaled
+    np.testing.assert_allclose(got, peaks, rtol=0.02)
 
 
 class TestFlags:
