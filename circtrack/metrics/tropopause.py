@@ -1,0 +1,60 @@
+"""The lapse-rate tropopause of the zonal-mean temperature.
+
+References
+----------
+WMO (1957) Meteorology - A three-dimensional science: second session of the Commission for
+Aerology, WMO Bulletin 4, 134-138 (the 2 K/km lapse-rate definition).
+Birner, T. (2010) JGR 115, D23109; Seidel, D. J. & Randel, W. J. (2007) JGR 112, D20113
+(the subtropical tropopause break as a tropical-width measure).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from circtrack.kernels.vertical import lapse_rate_tropopause
+from circtrack.metrics.common import HEMISPHERES, hemisphere_view, peak, signed
+from circtrack.registry import Metric, Result, register_family
+
+WMO_REF = "WMO (1957) WMO Bulletin 4, 134-138"
+BREAK_REF = "Birner (2010) JGR 115, D23109; Seidel & Randel (2007) JGR 112, D20113"
+
+METRICS = [
+    Metric("tropical_tropopause_pressure", "Tropical tropopause pressure", "hPa", "global",
+           "WMO lapse-rate tropopause (lapse rate falls to tropopause.threshold_k_per_km = 2 K/km and stays "
+           "below it on average over the 2 km above) of [T] at each latitude, cos-weighted mean over "
+           "|lat| <= tropopause.tropical_band (10 deg)", WMO_REF),
+    Metric("tropopause_break_lat", "Latitude of the subtropical tropopause break", "degrees_north", "hemisphere",
+           "latitude of the steepest poleward decrease of the lapse-rate tropopause height of [T] in "
+           "tropopause.break_window (15-50 deg poleward); centred differences, 3-point parabola", BREAK_REF),
+]
+
+
+@register_family("tropopause", inputs=("ta",), levels=lambda cfg: {"ta": None}, metrics=METRICS)
+def compute(fields, cfg):
+    c = cfg["tropopause"]
+    n = fields.n
+    out = {"tropical_tropopause_pressure": Result.empty(n, 1), "tropopause_break_lat": Result.empty(n, 2)}
+    t = np.moveaxis(fields.masked("ta", cfg), -2, -1)            # (N, J, L)
+    p_trop, z_trop = lapse_rate_tropopause(t, fields.plev["ta"], threshold=c["threshold_k_per_km"],
+                                           depth=c["depth_m"], p_bottom=c["search_hpa"][1],
+                                           p_top=c["search_hpa"][0])
+    lat = fields.lat
+    band = np.abs(lat) <= c["tropical_band"]
+    w = np.where(band, np.cos(np.deg2rad(lat)), 0.0)
+    good = np.isfinite(p_trop) & band
+    share = good.sum(axis=-1) / max(band.sum(), 1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.nansum(np.where(good, p_trop * w, 0.0), axis=-1) / np.sum(np.where(good, w, 0.0), axis=-1)
+    r = out["tropical_tropopause_pressure"]
+    enough = share >= cfg["run"]["min_window_fraction"]
+    r.value[:, 0] = np.where(enough, mean, np.nan)
+    r.flag[:, 0] = np.where(enough, "ok", "too_little_data")
+    brk = out["tropopause_break_lat"]
+    for h, hemi in enumerate(HEMISPHERES):
+        idx, x = hemisphere_view(lat, hemi)
+        z = z_trop[:, idx]
+        slope = np.gradient(z, x, axis=-1) if x.size > 2 else np.full_like(z, np.nan)
+        peak(-slope, x, c["break_window"], cfg, brk, None, h)
+        brk.value[:, h] = signed(hemi, brk.value[:, h])
+    return out
