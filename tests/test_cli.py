@@ -168,3 +168,22 @@ def test_failing_run_leaves_existing_output_untouched(tmp_path, default_nc):
     assert out.read_text() == "precious\n"
     assert side.read_text() == "{}\n"
     assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".keep")] == []
+
+
+def test_sectors_of_zonally_uniform_field_equal_zonal(make_nc):
+    # with no wave every longitude band has the zonal-mean profile: sector jets at the known latitudes
+    path = make_nc("flat.nc", wave_amplitude=0.0)
+    r = invoke("track", path, "-o", "-", "-q", "--metrics", "eddy_jet_lat,subtropical_jet_lat",
+               "--sector", "pac=150:240", "--sector", "atl=-60:0")
+    assert r.exit_code == 0, r.output
+    rows = [ln.split(",") for ln in r.stdout.splitlines()[1:]]
+    assert {row[3] for row in rows} == {"zonal", "pac", "atl"}
+    expected = {("NH", "eddy_jet_lat"): 45.0, ("SH", "eddy_jet_lat"): -50.0,
+                ("NH", "subtropical_jet_lat"): 30.0, ("SH", "subtropical_jet_lat"): -32.0}
+    for row in rows:
+        assert row[7] == "ok"
+        assert float(row[5]) == pytest.approx(expected[(row[2], row[4])], abs=0.1)
+
+
+def test_bad_sector_is_usage_error(tmp_path, default_nc):
+    assert_clean_error(invoke("track", default_nc, "-o", tmp_path / "o.csv", "--sector", "pac"), 2)

@@ -90,3 +90,15 @@ def test_interp_at():
     np.testing.assert_allclose(interp_at(y, x, np.array([2.0])), [4.0])
     assert np.isnan(interp_at(y, x, np.array([3.5]))[0])
     assert np.isnan(interp_at(y, x, np.array([np.nan]))[0])
+
+
+@pytest.mark.xfail(strict=True, reason="circtrack/kernels/extrema.py parabola_vertex: when the vertex lies "
+                   "outside [x0, x2], xv is clipped to the bracket but yv is still the unclipped vertex value, "
+                   "so (xv, yv) is not a point of the parabola (not reachable via window_extremum, whose middle "
+                   "point is a discrete extremum)")
+def test_clipped_vertex_value_matches_clipped_position():
+    x = np.array([0.0, 1.0, 2.0])
+    y = (x - 5.0) ** 2                  # vertex at x = 5, outside the bracket
+    xv, yv = parabola_vertex(*x, *y)
+    assert xv == 2.0
+    assert yv == pytest.approx((xv - 5.0) ** 2)    # 9, the parabola at the returned position
