@@ -27,7 +27,8 @@ def parabola_vertex(x0, x1, x2, y0, y1, y2):
     ``A = (x2(y1-y0) + x1(y0-y2) + x0(y2-y1)) / d`` and
     ``B = (x2^2(y0-y1) + x1^2(y2-y0) + x0^2(y1-y2)) / d``, the vertex is ``xv = -B / 2A`` and
     ``yv = y1 + A (xv-x1)^2 + (B + 2 A x1)(xv - x1)``. Where the three points are collinear
-    (``A == 0``) the middle point is returned.
+    (``A == 0``) the middle point is returned; a vertex outside ``[x0, x2]`` is clipped to the bracket
+    and the parabola's value there is returned.
     """
     x0, x1, x2, y0, y1, y2 = (np.asarray(v, dtype=float) for v in (x0, x1, x2, y0, y1, y2))
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -37,8 +38,11 @@ def parabola_vertex(x0, x1, x2, y0, y1, y2):
         xv = -b / (2 * a)
         yv = y1 + a * (xv - x1) ** 2 + (b + 2 * a * x1) * (xv - x1)
     flat = ~np.isfinite(xv) | (a == 0)
-    xv = np.where(flat, x1, np.clip(xv, np.minimum(x0, x2), np.maximum(x0, x2)))
-    yv = np.where(flat, y1, yv)
+    clipped = np.clip(xv, np.minimum(x0, x2), np.maximum(x0, x2))
+    with np.errstate(invalid="ignore"):
+        yc = y1 + a * (clipped - x1) ** 2 + (b + 2 * a * x1) * (clipped - x1)   # the parabola at the clipped point
+    yv = np.where(flat, y1, np.where(clipped == xv, yv, yc))
+    xv = np.where(flat, x1, clipped)
     return xv, yv
 
 

@@ -74,3 +74,29 @@ def compute(fields, cfg):
         width_r.value[notok, h] = np.nan
         lat_r.value[:, h] = signed(hemi, lat_r.value[:, h])
     return out
+
+
+BAROCLINIC_METRICS = [
+    Metric("baroclinic_zone_lat", "Latitude of the strongest lower-tropospheric temperature gradient",
+           "degrees_north", "hemisphere",
+           "maximum of |d[T]/dlat| at jets.baroclinic_level_hpa (850 hPa) in jets.baroclinic_window (20-70 deg "
+           "poleward), centred differences, 3-point parabola (a polar-front proxy)",
+           "Peixoto & Oort (1992) Physics of Climate, ch. 7 (meridional temperature gradient and baroclinicity)"),
+]
+
+
+@register_family("baroclinic_zone", inputs=("ta",), levels=lambda cfg: {"ta": [float(cfg["jets"]["baroclinic_level_hpa"])]},
+                 sectors=True, metrics=BAROCLINIC_METRICS)
+def compute_baroclinic(fields, cfg):
+    j = cfg["jets"]
+    res = Result.empty(fields.n, 2)
+    t = fields.level("ta", j["baroclinic_level_hpa"], cfg)
+    if t is None:
+        missing([res], "level_missing")
+        return {"baroclinic_zone_lat": res}
+    for h, hemi in enumerate(HEMISPHERES):
+        idx, x = hemisphere_view(fields.lat, hemi)
+        grad = np.abs(np.gradient(t[:, idx], x, axis=-1))
+        peak(grad, x, j["baroclinic_window"], cfg, res, None, h)
+        res.value[:, h] = signed(hemi, res.value[:, h])
+    return {"baroclinic_zone_lat": res}

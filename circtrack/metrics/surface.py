@@ -77,3 +77,61 @@ def compute_highs(fields, cfg):
              out["subtropical_high_slp"], h)
         out["subtropical_high_lat"].value[:, h] = signed(hemi, out["subtropical_high_lat"].value[:, h])
     return out
+
+
+PE_REF = "Waugh et al. (2018) J. Climate 31, 7565-7581; Davis & Rosenlof (2012) J. Climate 25, 1061-1078"
+OLR_REF = "Hu & Fu (2007) Atmos. Chem. Phys. 7, 5229-5236"
+
+PE_METRICS = [
+    Metric("p_minus_e_zero_lat", "Poleward edge of the subtropical dry zone (P - E = 0)", "degrees_north",
+           "hemisphere", "first zero of [pr - evspsbl] poleward of its subtropical minimum (searched in "
+           "surface.p_minus_e_window, 0-45 deg poleward); evaporation is made positive upward when the file "
+           "stores it negative (global mean < 0)", PE_REF),
+]
+OLR_METRICS = [
+    Metric("olr_edge_lat", "Tropical edge from outgoing longwave radiation", "degrees_north", "hemisphere",
+           "latitude where [rlut] falls below surface.olr_threshold_w_m2 (250 W m-2) poleward of its subtropical "
+           "maximum (searched in surface.olr_max_window, 0-40 deg poleward); linear interpolation", OLR_REF),
+]
+
+
+@register_family("water_balance", inputs=("pr", "evspsbl"), levels=lambda cfg: {"pr": None, "evspsbl": None},
+                 sectors=True, metrics=PE_METRICS)
+def compute_p_minus_e(fields, cfg):
+    n = fields.n
+    res = Result.empty(n, 2)
+    pr = fields.masked("pr", cfg)
+    ev = fields.masked("evspsbl", cfg)
+    w = np.cos(np.deg2rad(fields.lat))
+    with np.errstate(invalid="ignore"):
+        gmean = np.nansum(ev * w, axis=-1) / np.nansum(np.where(np.isfinite(ev), w, 0), axis=-1)
+    ev = np.where((gmean < 0)[:, None], -ev, ev)       # downward-positive files (e.g. accumulated 'e')
+    pe = pr - ev
+    for h, hemi in enumerate(HEMISPHERES):
+        idx, x = hemisphere_view(fields.lat, hemi)
+        y = pe[:, idx]
+        ext = peak(y, x, cfg["surface"]["p_minus_e_window"], cfg, None, None, h, kind="min")
+        zero = first_crossing(y, x, ext.index, direction="up")
+        flag = np.where(ext.at_edge, "extremum_at_window_edge",
+                        np.where(ext.valid_fraction < cfg["run"]["min_window_fraction"], "too_little_data", "ok"))
+        _set(res, h, hemi, zero, flag)
+    return {"p_minus_e_zero_lat": res}
+
+
+@register_family("outgoing_longwave", inputs=("rlut",), levels=lambda cfg: {"rlut": None}, sectors=True,
+                 metrics=OLR_METRICS)
+def compute_olr(fields, cfg):
+    from circtrack.kernels.crossings import level_crossing
+
+    s = cfg["surface"]
+    res = Result.empty(fields.n, 2)
+    olr = fields.masked("rlut", cfg)
+    for h, hemi in enumerate(HEMISPHERES):
+        idx, x = hemisphere_view(fields.lat, hemi)
+        y = olr[:, idx]
+        ext = peak(y, x, s["olr_max_window"], cfg, None, None, h)
+        pos = level_crossing(y, x, ext.index, s["olr_threshold_w_m2"], direction="down")
+        flag = np.where(ext.at_edge, "extremum_at_window_edge",
+                        np.where(ext.valid_fraction < cfg["run"]["min_window_fraction"], "too_little_data", "ok"))
+        _set(res, h, hemi, pos, flag)
+    return {"olr_edge_lat": res}

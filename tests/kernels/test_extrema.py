@@ -92,10 +92,6 @@ def test_interp_at():
     assert np.isnan(interp_at(y, x, np.array([np.nan]))[0])
 
 
-@pytest.mark.xfail(strict=True, reason="circtrack/kernels/extrema.py parabola_vertex: when the vertex lies "
-                   "outside [x0, x2], xv is clipped to the bracket but yv is still the unclipped vertex value, "
-                   "so (xv, yv) is not a point of the parabola (not reachable via window_extremum, whose middle "
-                   "point is a discrete extremum)")
 def test_clipped_vertex_value_matches_clipped_position():
     x = np.array([0.0, 1.0, 2.0])
     y = (x - 5.0) ** 2                  # vertex at x = 5, outside the bracket
