@@ -1,7 +1,7 @@
 """Synthetic circulations with answers known in closed form, for tests, demos and benchmarks.
 
 The mass streamfunction is prescribed as ``psi(lat, p, t) = S(lat, t) P(p)`` with
-``S = A cos(lat)^2 prod_i (lat - z_i)`` and ``P = sin(pi p / p_s)``, so the zeros of psi at any level
+``S = A cos(lat)^2 exp(-(lat/30)^2) prod_i (lat - z_i)`` and ``P = sin(pi p / p_s)``, so the zeros of psi at any level
 are exactly the chosen latitudes ``z_i`` (southern Ferrel edge, southern Hadley edge, cell
 boundary, northern Hadley edge, northern Ferrel edge). The northward wind follows from
 ``[v] = g / (2 pi a cos(lat)) dpsi/dp``; any vertical quadrature of ``[v]`` returns a multiple of
@@ -37,11 +37,14 @@ def gaussian(lat, center, width):
 
 
 def cell_shape(lat, zeros):
-    """``cos(lat) * prod(lat - z)`` (the streamfunction shape divided by cos(lat)), shape ``(T, J)``."""
+    """``cos(lat) exp(-(lat/30)^2) prod(lat - z)`` (the streamfunction shape divided by cos(lat)), ``(T, J)``.
+
+    The Gaussian envelope keeps the Ferrel and polar cells weaker than the Hadley cells; it has no
+    zeros, so the cell edges stay exactly at ``z``."""
     lat = np.asarray(lat, dtype=float)
     zeros = np.atleast_2d(np.asarray(zeros, dtype=float))          # (T, 5)
     prod = np.prod(lat[None, :, None] - zeros[:, None, :], axis=-1)
-    return np.cos(np.deg2rad(lat))[None, :] * prod
+    return (np.cos(np.deg2rad(lat)) * np.exp(-((lat / 30.0) ** 2)))[None, :] * prod
 
 
 def fields(lat, lon, plev_hpa, ntime=1, **params):
