@@ -277,7 +277,7 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
         except InputError as e:
             if policy == "skip":
                 skipped.append({"path": p, "reason": str(e)})
-                progress.line(f"skipped {e}")
+                print(f"circtrack: skipped {e}", file=sys.stderr, flush=True)
                 continue
             raise
     if not infos:
@@ -315,7 +315,14 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
     batch = max(1, int(cfg["run"]["time_chunk"])) * max(4, 2 * (os.cpu_count() or 1))
     for t0 in range(0, nt, batch):
         t1 = min(nt, t0 + batch)
-        computed = dask.compute(*[stats[r][t0:t1] for r in roles])
+        try:
+            computed = dask.compute(*[stats[r][t0:t1] for r in roles])
+        except (OSError, RuntimeError, ValueError) as e:
+            involved = sorted({infos[file_of[k]].path for k in keep[t0:t1]})
+            msg = str(e).splitlines()[0] if str(e) else type(e).__name__
+            raise InputError(f"{involved[0]}: reading data failed ({msg}) for time steps {iso_time(times[t0])}.."
+                             f"{iso_time(times[t1 - 1])} in {', '.join(involved)}; one of these files is damaged: "
+                             "re-copy it or leave it out")
         bt = t1 - t0
         for s, sname in enumerate(sector_names):
             mean, cov = {}, {}
