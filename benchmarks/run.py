@@ -1,0 +1,324 @@
+#!/usr/bin/env python
+"""Benchmark harness: circtrack vs plain netCDF4/numpy, xarray.open_mfdataset and (optionally) cdo.
+
+    python benchmarks/run.py [--months N] [--res 0.5] [--compress zlib|none|both]
+                             [--workdir DIR] [--repeat 1] [--scaling]
+
+See benchmarks/README.md.  Nothing here is a test; it only measures and prints.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import textwrap
+import threading
+import time
+from datetime import timedelta
+from pathlib import Path
+
+PLEV = [1000.0, 925.0, 850.0, 700.0, 500.0, 300.0, 200.0, 100.0]
+METRICS = "hadley_edge_lat,hadley_strength,subtropical_jet_lat,eddy_jet_lat"
+NOISE_STD = 0.1          # m/s, so zlib has real work to do
+SEED = 20010101
+TIME_CHUNK = 8
+
+# ----------------------------------------------------------------------------- data generation
+
+
+def grid(res):
+    import numpy as np
+    nlat = int(round(180.0 / res)) + 1
+    nlon = int(round(360.0 / res))
+    return np.linspace(-90.0, 90.0, nlat), np.arange(nlon) * res
+
+
+def month_starts(n):
+    import cftime
+    out = []
+    y, m = 2001, 1
+    for _ in range(n + 1):
+        out.append(cftime.datetime(y, m, 1, calendar="standard"))
+        y, m = (y + 1, 1) if m == 12 else (y, m + 1)
+    return out
+
+
+def data_dir(workdir, res, comp):
+    return Path(workdir) / f"res{res:g}" / comp
+
+
+def generate(workdir, res, comp, months, log):
+    """One file per month holding ua and va (float32, daily).  Cached: existing files are kept."""
+    import numpy as np
+    from circtrack import synthetic
+
+    d = data_dir(workdir, res, comp)
+    d.mkdir(parents=True, exist_ok=True)
+    lat, lon = grid(res)
+    starts = month_starts(months)
+    files = []
+    for i in range(months):
+        t0, t1 = starts[i], starts[i + 1]
+        path = d / f"uv_day_{t0.year:04d}{t0.month:02d}.nc"
+        files.append(path)
+        if path.exists():
+            continue
+        t_start = time.perf_counter()
+        ndays = (t1 - t0).days
+        times = [t0 + timedelta(days=k) for k in range(ndays)]
+        ds = synthetic.dataset(lat, lon, PLEV, times)
+        rng = np.random.default_rng(SEED + i)
+        for v in ("ua", "va"):
+            noise = rng.standard_normal(ds[v].shape, dtype=np.float32)
+            noise *= np.float32(NOISE_STD)
+            ds[v].values += noise
+            del noise
+        enc = dict(synthetic.time_encoding())
+        for v in ("ua", "va"):
+            e = {"dtype": "float32", "chunksizes": (min(TIME_CHUNK, ndays), 1, lat.size, lon.size)}
+            if comp == "zlib":
+                e.update(zlib=True, complevel=1, shuffle=True)
+            else:
+                e.update(zlib=False, contiguous=False)
+            enc[v] = e
+        tmp = path.with_suffix(".nc.part")
+        ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=enc)
+        os.replace(tmp, path)
+        log(f"  generated {path} ({path.stat().st_size / 1e6:.0f} MB, {time.perf_counter() - t_start:.0f} s)")
+    return files
+
+
+def payload_bytes(files):
+    """Uncompressed bytes of ua + va in the files (what every approach has to decode)."""
+    import netCDF4
+    total = 0
+    for f in files:
+        with netCDF4.Dataset(f) as nc:
+            for v in ("ua", "va"):
+                var = nc.variables[v]
+                n = 1
+                for s in var.shape:
+                    n *= s
+                total += n * var.dtype.itemsize
+    return total
+
+
+# ----------------------------------------------------------------------------- approaches
+
+BASELINE_A = textwrap.dedent('''
+    import sys, numpy as np, netCDF4
+    out = {}
+    for f in sys.argv[1:]:
+        with netCDF4.Dataset(f) as nc:
+            for name in ("ua", "va"):
+                var = nc.variables[name]
+                var.set_auto_mask(False)
+                var.set_var_chunk_cache(size=1 << 20, nelems=521, preemption=0.75)
+                tc = (var.chunking() or [8])[0] if var.chunking() != "contiguous" else 8
+                nt = var.shape[0]
+                for t0 in range(0, nt, tc):
+                    block = var[t0:t0 + tc]
+                    out.setdefault(name, []).append(block.mean(axis=-1, dtype=np.float64))
+    res = {k: np.concatenate(v) for k, v in out.items()}
+    print({k: v.shape for k, v in res.items()})
+''')
+
+BASELINE_B = textwrap.dedent('''
+    import sys, xarray as xr
+    ds = xr.open_mfdataset(sys.argv[1:], engine="netcdf4", combine="by_coords")
+    zm = ds[["ua", "va"]].mean("lon").compute()
+    print(dict(zm.sizes))
+''')
+
+
+def approaches(files, outdir):
+    files = [str(f) for f in files]
+    py = sys.executable
+    ct = shutil.which("circtrack", path=str(Path(sys.executable).parent) + os.pathsep + os.environ.get("PATH", ""))
+    ct_cmd = [ct] if ct else [py, "-m", "circtrack.cli"]
+    out = []
+    out.append(("baseline A: netCDF4 + numpy, file by file", [py, "-c", BASELINE_A, *files]))
+    out.append(("baseline B: xarray open_mfdataset + mean", [py, "-c", BASELINE_B, *files]))
+    out.append(("circtrack track (default threads)",
+                ct_cmd + ["track", *files, "-o", str(outdir / "track_threads.csv"), "--metrics", METRICS, "-q"]))
+    out.append(("circtrack track --workers 2",
+                ct_cmd + ["track", *files, "-o", str(outdir / "track_w2.csv"), "--metrics", METRICS, "-q",
+                          "--workers", "2"]))
+    cdo = shutil.which("cdo")
+    if cdo:
+        script = "set -e\n" + "\n".join(
+            f'{cdo} -s zonmean "{f}" "{outdir}/cdo_zm_{i}.nc"' for i, f in enumerate(files))
+        out.append(("cdo zonmean per file", ["bash", "-c", script]))
+    return out
+
+
+def measure(cmd, log_path):
+    """Wall time, max RSS of the largest single process (wait4 / time -v) and sampled peak of the
+    summed RSS of the whole process tree (matters for --workers, where workers are separate processes)."""
+    import psutil
+
+    use_time = os.path.exists("/usr/bin/time")
+    full = (["/usr/bin/time", "-v"] + cmd) if use_time else cmd
+    peak_tree = 0
+    stop = threading.Event()
+
+    with open(log_path, "w") as log:
+        t0 = time.perf_counter()
+        proc = subprocess.Popen(full, stdout=log, stderr=subprocess.PIPE, text=True)
+
+        def sample():
+            nonlocal peak_tree
+            try:
+                root = psutil.Process(proc.pid)
+            except psutil.Error:
+                return
+            while not stop.is_set():
+                total = 0
+                try:
+                    procs = [root] + root.children(recursive=True)
+                except psutil.Error:
+                    break
+                for p in procs:
+                    if use_time and p.pid == proc.pid:
+                        continue            # /usr/bin/time itself
+                    try:
+                        total += p.memory_info().rss
+                    except psutil.Error:
+                        pass
+                peak_tree = max(peak_tree, total)
+                stop.wait(0.05)
+
+        th = threading.Thread(target=sample, daemon=True)
+        th.start()
+        _, err = proc.communicate()
+        wall = time.perf_counter() - t0
+        stop.set()
+        th.join()
+        log.write("\n--- stderr ---\n" + err)
+
+    maxrss = None
+    if use_time:
+        for line in err.splitlines():
+            if "Maximum resident set size" in line:
+                maxrss = int(line.rsplit(":", 1)[1]) * 1024
+    if maxrss is None:
+        import resource
+        maxrss = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss * 1024  # upper bound
+    return dict(rc=proc.returncode, wall=wall, maxrss=maxrss, tree=peak_tree)
+
+
+def run_config(files, outdir, nbytes, repeat, log):
+    rows = []
+    for name, cmd in approaches(files, outdir):
+        best = None
+        for r in range(repeat):
+            slug = "".join(c if c.isalnum() else "_" for c in name)[:40]
+            m = measure(cmd, outdir / f"{slug}.{r}.log")
+            log(f"  {name}: rc={m['rc']} wall={m['wall']:.1f}s maxrss={m['maxrss'] / 1e9:.2f}GB "
+                f"tree={m['tree'] / 1e9:.2f}GB")
+            if m["rc"] != 0:
+                best = m
+                break
+            if best is None or m["wall"] < best["wall"]:
+                best = {**m, "maxrss": max(m["maxrss"], (best or m)["maxrss"]),
+                        "tree": max(m["tree"], (best or m)["tree"])}
+        rows.append((name, best))
+    base = rows[0][1]["wall"] if rows and rows[0][1]["rc"] == 0 else None
+    table = []
+    for name, m in rows:
+        if m["rc"] != 0:
+            table.append((name, f"FAILED rc={m['rc']}", "", "", "", ""))
+            continue
+        ratio = f"{m['wall'] / base:.2f}" if base else ""
+        table.append((name, f"{m['wall']:.1f}", ratio, f"{nbytes / 1e6 / m['wall']:.0f}",
+                      f"{m['maxrss'] / 1e9:.2f}", f"{m['tree'] / 1e9:.2f}"))
+    return table
+
+
+HEAD = ("approach", "wall s", "ratio to A", "input MB/s", "peak RSS GB (largest proc)", "peak RSS GB (tree sum)")
+
+
+def markdown(table, head=HEAD):
+    lines = ["| " + " | ".join(head) + " |", "|" + "|".join("---" for _ in head) + "|"]
+    lines += ["| " + " | ".join(r) + " |" for r in table]
+    return "\n".join(lines)
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[1])
+    ap.add_argument("--months", type=int, default=2)
+    ap.add_argument("--res", type=float, default=0.5)
+    ap.add_argument("--compress", choices=["zlib", "none", "both"], default="both")
+    ap.add_argument("--workdir", default=os.path.join(tempfile.gettempdir(), "circtrack-bench"))
+    ap.add_argument("--repeat", type=int, default=1, help="runs per approach; the fastest is reported")
+    ap.add_argument("--scaling", action="store_true",
+                    help="also compare circtrack peak RSS for 1 month vs --months months")
+    a = ap.parse_args(argv)
+
+    workdir = Path(a.workdir).resolve()
+    repo = Path(__file__).resolve().parents[1]
+    if repo in workdir.parents or workdir == repo:
+        ap.error("--workdir must be outside the repository")
+    workdir.mkdir(parents=True, exist_ok=True)
+
+    def log(msg):
+        print(msg, file=sys.stderr, flush=True)
+
+    comps = ["zlib", "none"] if a.compress == "both" else [a.compress]
+    import platform
+    import numpy, xarray, dask, netCDF4
+    report = [f"# circtrack benchmark",
+              "",
+              f"{time.strftime('%Y-%m-%d %H:%M:%S')}, host {platform.node()}, {os.cpu_count()} CPUs, "
+              f"python {platform.python_version()}, numpy {numpy.__version__}, xarray {xarray.__version__}, "
+              f"dask {dask.__version__}, netCDF4 {netCDF4.__version__}, cdo: {shutil.which('cdo') or 'not found'}",
+              "",
+              f"months={a.months}, res={a.res:g} deg, levels={len(PLEV)}, daily, ua+va float32, "
+              f"chunks=({TIME_CHUNK}, 1, lat, lon), repeat={a.repeat} (fastest kept), warm page cache.",
+              ""]
+    for comp in comps:
+        log(f"[{comp}] data in {data_dir(workdir, a.res, comp)}")
+        files = generate(workdir, a.res, comp, a.months, log)
+        nbytes = payload_bytes(files)
+        ondisk = sum(f.stat().st_size for f in files)
+        outdir = workdir / "runs" / f"res{a.res:g}-{comp}-{a.months}m"
+        outdir.mkdir(parents=True, exist_ok=True)
+        # warm the page cache so every approach sees the same state
+        for f in files:
+            with open(f, "rb") as fh:
+                while fh.read(1 << 24):
+                    pass
+        table = run_config(files, outdir, nbytes, a.repeat, log)
+        report += [f"## compression: {comp}",
+                   "",
+                   f"{len(files)} files, {nbytes / 1e6:.0f} MB of ua+va values, {ondisk / 1e6:.0f} MB on disk "
+                   f"(ratio {nbytes / ondisk:.2f}). Logs: {outdir}",
+                   "",
+                   markdown(table), ""]
+
+        if a.scaling:
+            rows = []
+            for n in sorted({1, a.months}):
+                m = measure([shutil.which("circtrack") or "circtrack", "track", *map(str, files[:n]), "-o",
+                             str(outdir / f"scaling_{n}.csv"), "--metrics", METRICS, "-q"],
+                            outdir / f"scaling_{n}.log")
+                log(f"  scaling {n} month(s): rc={m['rc']} wall={m['wall']:.1f}s maxrss={m['maxrss'] / 1e9:.2f}GB")
+                rows.append((n, m))
+            r1 = rows[0][1]["maxrss"]
+            report += [f"### memory vs record length ({comp}, circtrack track, default threads)", "",
+                       markdown([(str(n), f"{m['wall']:.1f}" if m["rc"] == 0 else f"FAILED rc={m['rc']}",
+                                  f"{m['maxrss'] / 1e9:.2f}", f"{m['maxrss'] / r1:.2f}") for n, m in rows],
+                                head=("months", "wall s", "peak RSS GB", "RSS ratio to 1 month")), ""]
+
+    text = "\n".join(report)
+    (workdir / "results.md").write_text(text + "\n")
+    print(text)
+    log(f"written {workdir / 'results.md'}")
+
+
+if __name__ == "__main__":
+    main()
