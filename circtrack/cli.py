@@ -159,6 +159,10 @@ from circtrack.cli_findings import plot, season, trend  # noqa: E402
 for _cmd in (trend, season, plot):
     main.add_command(_cmd)
 
+from circtrack.update import make_command as _make_update  # noqa: E402
+
+main.add_command(_make_update())
+
 
 if __name__ == "__main__":  # pragma: no cover
     main()
