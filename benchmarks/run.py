@@ -135,16 +135,24 @@ BASELINE_B = textwrap.dedent('''
 ''')
 
 
+def circtrack_cmd():
+    """The circtrack entry point next to this interpreter (the venv's), else the one on PATH."""
+    ct = shutil.which("circtrack", path=str(Path(sys.executable).parent) + os.pathsep + os.environ.get("PATH", ""))
+    return [ct] if ct else [sys.executable, "-c", "import sys; from circtrack.cli import main; sys.exit(main())"]
+
+
 def approaches(files, outdir):
     files = [str(f) for f in files]
     py = sys.executable
-    ct = shutil.which("circtrack", path=str(Path(sys.executable).parent) + os.pathsep + os.environ.get("PATH", ""))
-    ct_cmd = [ct] if ct else [py, "-m", "circtrack.cli"]
+    ct_cmd = circtrack_cmd()
     out = []
     out.append(("baseline A: netCDF4 + numpy, file by file", [py, "-c", BASELINE_A, *files]))
     out.append(("baseline B: xarray open_mfdataset + mean", [py, "-c", BASELINE_B, *files]))
     out.append(("circtrack track (default threads)",
                 ct_cmd + ["track", *files, "-o", str(outdir / "track_threads.csv"), "--metrics", METRICS, "-q"]))
+    out.append(("circtrack track --workers 1",
+                ct_cmd + ["track", *files, "-o", str(outdir / "track_w1.csv"), "--metrics", METRICS, "-q",
+                          "--workers", "1"]))
     out.append(("circtrack track --workers 2",
                 ct_cmd + ["track", *files, "-o", str(outdir / "track_w2.csv"), "--metrics", METRICS, "-q",
                           "--workers", "2"]))
@@ -303,7 +311,7 @@ def main(argv=None):
         if a.scaling:
             rows = []
             for n in sorted({1, a.months}):
-                m = measure([shutil.which("circtrack") or "circtrack", "track", *map(str, files[:n]), "-o",
+                m = measure(circtrack_cmd() + ["track", *map(str, files[:n]), "-o",
                              str(outdir / f"scaling_{n}.csv"), "--metrics", METRICS, "-q"],
                             outdir / f"scaling_{n}.log")
                 log(f"  scaling {n} month(s): rc={m['rc']} wall={m['wall']:.1f}s maxrss={m['maxrss'] / 1e9:.2f}GB")
