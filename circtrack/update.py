@@ -183,6 +183,9 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
         elif rebuild:
             state = None
         old_files = state["files"] if state else {}
+        if state is not None and label and label != state["source"]:
+            raise UsageError(f"--label '{label}' differs from the source '{state['source']}' in {output}; "
+                             "rerun with --rebuild to relabel everything")
 
         files = expand(list(paths), stdin=stdin)
         ab = [os.path.abspath(p) for p in files]
@@ -225,9 +228,6 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
         # ---- the source column must stay what a clean track over all files would write
         source = label or engine.derive_source([shown[a] for a in used], entries[used[0]].get("attrs", {}))
         if state is not None and source != state["source"]:
-            if label:
-                raise UsageError(f"--label '{label}' differs from the source '{state['source']}' in {output}; "
-                                 "rerun with --rebuild to relabel everything")
             raise UsageError(f"the source derived from the file names would change from '{state['source']}' to "
                              f"'{source}'; give --label '{state['source']}' to keep it, or --rebuild")
 

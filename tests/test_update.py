@@ -1,0 +1,201 @@
+"""circtrack update: incremental runs equal one clean track; state, lock, refusals, kill safety."""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import pytest
+from click.testing import CliRunner
+
+from circtrack import output as O
+from circtrack import synthetic
+from circtrack import update as U
+from circtrack.cli import main
+
+from .conftest import CALENDAR, LAT, LON, PLEV
+
+MAIN = "import sys; from circtrack.cli import main; main()"
+
+
+def monthly(tmp_path, k, nt=2, name=None, **params):
+    """File k holds months k*nt .. k*nt+nt-1 counted from January 2000 (noleap)."""
+    times = synthetic.monthly_times(2000, 10, CALENDAR)[k * nt:(k + 1) * nt]
+    ds = synthetic.dataset(LAT, LON, PLEV, times, **params)
+    path = tmp_path / "data" / (name or f"mon_{k:02d}.nc")
+    path.parent.mkdir(exist_ok=True)
+    ds.to_netcdf(str(path), encoding=synthetic.time_encoding(CALENDAR))
+    return str(path)
+
+
+def invoke(*args):
+    return CliRunner().invoke(main, [str(a) for a in args])
+
+
+def track_bytes(tmp_path, files, *extra):
+    ref = tmp_path / "ref.csv"
+    r = invoke("track", *files, "-o", ref, "-q", *extra)
+    assert r.exit_code == 0, r.output
+    return ref.read_bytes()
+
+
+def one_error_line(r, code):
+    assert r.exit_code == code, r.output
+    lines = [ln for ln in r.output.splitlines() if ln.strip()]
+    assert len(lines) == 1, r.output
+    assert lines[0].startswith("circtrack: error:")
+    return lines[0]
+
+
+def test_drops_one_at_a_time_equal_clean_track(tmp_path):
+    out = tmp_path / "out.csv"
+    files = []
+    for k in range(4):
+        files.append(monthly(tmp_path, k))
+        r = invoke("update", *files, "-o", out, "-q", "--label", "L")
+        assert r.exit_code == 0, r.output
+        assert out.read_bytes() == track_bytes(tmp_path, files, "--label", "L")
+    state = json.loads((tmp_path / "out.state.json").read_text())
+    assert state["source"] == "L"
+    rec = state["files"][os.path.abspath(files[2])]
+    assert rec["times"] == ["2000-05-15", "2000-06-15"] == rec["owned"]
+    assert rec["size"] == os.path.getsize(files[2]) and len(rec["checksum"]) == 64
+    side = json.loads((tmp_path / "out.provenance.json").read_text())
+    assert [i["path"] for i in side["inputs"]] == [os.path.abspath(f) for f in files]
+    assert side["time_steps"] == 8
+    # the unchanged files were not reprocessed on the last drop
+    assert side["updated_incrementally"]["processed"] == [files[3]]
+
+
+def test_nothing_new(tmp_path):
+    out = tmp_path / "out.csv"
+    files = [monthly(tmp_path, k) for k in range(2)]
+    assert invoke("update", *files, "-o", out, "-q", "--label", "L").exit_code == 0
+    before = out.read_bytes()
+    r = invoke("update", *files, "-o", out, "--label", "L")
+    assert r.exit_code == 0
+    assert r.output.strip().splitlines() == [f"circtrack: nothing new for {out} (2 files up to date)"]
+    assert out.read_bytes() == before
+
+
+def test_modified_and_removed_files_are_reprocessed(tmp_path):
+    out = tmp_path / "out.csv"
+    files = [monthly(tmp_path, k) for k in range(3)]
+    assert invoke("update", *files, "-o", out, "-q", "--label", "L").exit_code == 0
+    before = out.read_bytes()
+    monthly(tmp_path, 1, edj=(40.0, -45.0))                 # rewrite in place, different circulation
+    r = invoke("update", *files, "-o", out, "-q", "--label", "L")
+    assert r.exit_code == 0, r.output
+    assert out.read_bytes() != before
+    assert out.read_bytes() == track_bytes(tmp_path, files, "--label", "L")
+    assert b"2000-03-15,NH,zonal,eddy_jet_lat,40," in out.read_bytes()
+    # a file left out of PATH... loses its rows
+    r = invoke("update", files[0], files[2], "-o", out, "-q", "--label", "L")
+    assert r.exit_code == 0, r.output
+    assert out.read_bytes() == track_bytes(tmp_path, [files[0], files[2]], "--label", "L")
+
+
+def test_changed_parameters_refused_then_rebuild(tmp_path):
+    out = tmp_path / "out.csv"
+    files = [monthly(tmp_path, k) for k in range(2)]
+    assert invoke("update", *files, "-o", out, "-q", "--label", "L").exit_code == 0
+    before = out.read_bytes()
+    line = one_error_line(invoke("update", *files, "-o", out, "-q", "--label", "L", "--metrics", "eddy_jet_lat"), 2)
+    assert "--rebuild" in line
+    line = one_error_line(invoke("update", *files, "-o", out, "-q", "--label", "M"), 2)
+    assert "--label" in line and "--rebuild" in line
+    assert out.read_bytes() == before
+    r = invoke("update", *files, "-o", out, "-q", "--label", "L", "--metrics", "eddy_jet_lat", "--rebuild")
+    assert r.exit_code == 0, r.output
+    assert out.read_bytes() == track_bytes(tmp_path, files, "--label", "L", "--metrics", "eddy_jet_lat")
+
+
+def test_derived_source_change_needs_label(tmp_path):
+    out = tmp_path / "out.csv"
+    f0 = monthly(tmp_path, 0)
+    assert invoke("update", f0, "-o", out, "-q").exit_code == 0        # source 'mon_00' from the one name
+    f1 = monthly(tmp_path, 1)
+    line = one_error_line(invoke("update", f0, f1, "-o", out, "-q"), 2)
+    assert "--label 'mon_00'" in line and "--rebuild" in line
+    r = invoke("update", f0, f1, "-o", out, "-q", "--label", "mon_00")
+    assert r.exit_code == 0, r.output
+    assert out.read_bytes() == track_bytes(tmp_path, [f0, f1], "--label", "mon_00")
+
+
+def test_duplicate_time_steps(tmp_path):
+    out = tmp_path / "out.csv"
+    files = [monthly(tmp_path, k) for k in range(2)]
+    assert invoke("update", *files, "-o", out, "-q", "--label", "L").exit_code == 0
+    dup = monthly(tmp_path, 1, name="mon_01b.nc", edj=(40.0, -45.0))   # same months as mon_01
+    line = one_error_line(invoke("update", *files, dup, "-o", out, "-q", "--label", "L"), 1)
+    assert "mon_01b.nc" in line and "mon_01.nc" in line and "--duplicates" in line
+    r = invoke("update", *files, dup, "-o", out, "-q", "--label", "L", "--duplicates", "keep-first")
+    assert r.exit_code == 0, r.output
+    assert out.read_bytes() == track_bytes(tmp_path, [*files, dup], "--label", "L")
+    r = invoke("update", *files, dup, "-o", out, "-q", "--label", "L", "--duplicates", "keep-last", "--rebuild")
+    assert r.exit_code == 0, r.output
+    assert b"2000-03-15,NH,zonal,eddy_jet_lat,40," in out.read_bytes()
+
+
+def test_lock_held_by_another_process(tmp_path):
+    out = tmp_path / "out.csv"
+    files = [monthly(tmp_path, 0)]
+    holder = subprocess.Popen([sys.executable, "-c",
+                               "import fcntl, sys, time; f = open(sys.argv[1], 'w'); fcntl.flock(f, fcntl.LOCK_EX); "
+                               "print('locked', flush=True); time.sleep(60)", U.lock_path(str(out))],
+                              stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "locked"
+        line = one_error_line(invoke("update", *files, "-o", out, "-q"), 1)
+        assert "another update is running on" in line and U.lock_path(str(out)) in line
+        assert not out.exists()
+    finally:
+        holder.kill()
+        holder.wait()
+    assert invoke("update", *files, "-o", out, "-q").exit_code == 0
+
+
+def test_kill_between_csv_and_state_is_recovered(tmp_path, monkeypatch):
+    out = tmp_path / "out.csv"
+    files = [monthly(tmp_path, k) for k in range(3)]
+    assert invoke("update", *files[:2], "-o", out, "-q", "--label", "L").exit_code == 0
+    real = O.atomic_write_text
+
+    def dies_at_state(path, text):
+        if path.endswith(".state.json"):
+            raise KeyboardInterrupt
+        real(path, text)
+
+    monkeypatch.setattr(O, "atomic_write_text", dies_at_state)
+    assert invoke("update", *files, "-o", out, "-q", "--label", "L").exit_code == 130
+    monkeypatch.setattr(O, "atomic_write_text", real)
+    r = invoke("update", *files, "-o", out, "--label", "L")
+    assert r.exit_code == 0, r.output
+    assert "rebuilding" in r.output
+    assert out.read_bytes() == track_bytes(tmp_path, files, "--label", "L")
+
+
+@pytest.mark.parametrize("delay", [0.5, 1.5])
+def test_sigkill_mid_run(tmp_path, delay):
+    out = tmp_path / "out.csv"
+    files = [monthly(tmp_path, k, nt=6) for k in range(8)]
+    assert invoke("update", *files[:2], "-o", out, "-q", "--label", "L").exit_code == 0
+    before = out.read_bytes()
+    state_before = (tmp_path / "out.state.json").read_bytes()
+    cmd = [sys.executable, "-c", MAIN, "update", *files, "-o", str(out), "-q", "--label", "L"]
+    t0 = time.time()
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    time.sleep(delay)
+    proc.send_signal(signal.SIGKILL)
+    proc.wait()
+    if proc.returncode != -signal.SIGKILL:                  # pragma: no cover - machine too fast
+        pytest.skip(f"update finished in {time.time() - t0:.1f} s before the kill")
+    assert out.read_bytes() == before
+    assert (tmp_path / "out.state.json").read_bytes() == state_before
+    done = subprocess.run(cmd, capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr
+    assert out.read_bytes() == track_bytes(tmp_path, files, "--label", "L")
