@@ -8,7 +8,7 @@ import re
 
 import click
 
-from circtrack.cli import guarded
+from circtrack.cli_support import guarded
 from circtrack.errors import InputError, UsageError
 
 CALENDARS = ("standard", "gregorian", "proleptic_gregorian", "julian", "noleap", "365_day",

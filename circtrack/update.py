@@ -137,7 +137,7 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
     from circtrack import config as C
     from circtrack import engine
     from circtrack import output as O
-    from circtrack.cli import parse_vars
+    from circtrack.cli_support import parse_vars
     from circtrack.cluster import scheduler_context
     from circtrack.inputs.files import expand
 
@@ -333,7 +333,8 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
 # --------------------------------------------------------------------------- the command
 def make_command():
     """The click command; built on demand so circtrack.cli and this module import in any order."""
-    from circtrack.cli import _track_options, guarded
+    from circtrack.cli import _track_options
+    from circtrack.cli_support import guarded
 
     @click.command("update")
     @_track_options

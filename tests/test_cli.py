@@ -187,3 +187,14 @@ def test_sectors_of_zonally_uniform_field_equal_zonal(make_nc):
 
 def test_bad_sector_is_usage_error(tmp_path, default_nc):
     assert_clean_error(invoke("track", default_nc, "-o", tmp_path / "o.csv", "--sector", "pac"), 2)
+
+
+def test_module_entry_point_imports_cleanly():
+    """``python -m circtrack.cli`` loads cli.py as __main__; the command modules must not import it back."""
+    import subprocess
+    import sys
+
+    r = subprocess.run([sys.executable, "-m", "circtrack.cli", "--help"], capture_output=True, text=True, timeout=120)
+    assert r.returncode == 0, r.stderr
+    for cmd in ("track", "scan", "metrics", "trend", "season", "plot", "update"):
+        assert cmd in r.stdout

@@ -1,0 +1,59 @@
+"""What every command shares: one clear error line and exit status, ROLE=NAME parsing.
+
+Kept apart from circtrack.cli so command modules (findings, update) can import it while cli.py
+imports them, whichever module Python loads first (``python -m circtrack.cli`` included).
+"""
+
+from __future__ import annotations
+
+import functools
+import sys
+import traceback
+
+import click
+
+from circtrack.errors import CircError, UsageError
+
+
+def _fail(message, code):
+    click.echo(f"circtrack: error: {message}", err=True)
+    sys.exit(code)
+
+
+def guarded(fn):
+    """One clear line and an exit status for every failure; a traceback only with --debug."""
+
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        debug = click.get_current_context().find_root().params.get("debug", False)
+        try:
+            return fn(*args, **kwargs)
+        except CircError as e:
+            if debug:
+                traceback.print_exc()
+            _fail(str(e), e.exit_code)
+        except KeyboardInterrupt:
+            _fail("interrupted; the previous output is untouched", 130)
+        except (click.exceptions.Exit, click.ClickException, SystemExit):
+            raise
+        except Exception as e:  # pragma: no cover - the safety net
+            if debug:
+                traceback.print_exc()
+            first = str(e).splitlines()[0] if str(e) else ""
+            _fail(f"unexpected {type(e).__name__}: {first} (rerun with --debug for the traceback and report it)", 1)
+
+    return wrapper
+
+
+def parse_vars(pairs):
+    from circtrack.inputs.rules import VARIABLES
+
+    out = {}
+    for p in pairs:
+        if "=" not in p:
+            raise UsageError(f"--var '{p}': expected ROLE=NAME, e.g. --var ua=U")
+        role, name = (x.strip() for x in p.split("=", 1))
+        if role not in VARIABLES:
+            raise UsageError(f"--var '{p}': unknown role '{role}'; roles are {' '.join(VARIABLES)}")
+        out[role] = name
+    return out
