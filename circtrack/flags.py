@@ -8,5 +8,6 @@ FLAGS = {
     "too_little_data": "too few valid points in the search window (see run.min_window_fraction); value is NaN",
     "level_missing": "a pressure level the metric needs lies outside the data's levels; value is NaN",
     "no_half_max": "the wind does not fall to half its maximum on one side of the jet; width is NaN",
+    "lowpass_window_incomplete": "the low-pass filter window reaches past the record's ends or across a gap in time; value is NaN",
     "cells_out_of_order": "the southern cell's minimum lies north of the northern cell's maximum; boundary is NaN",
 }
