@@ -165,10 +165,10 @@ def test_kill_between_csv_and_state_is_recovered(tmp_path, monkeypatch):
     assert invoke("update", *files[:2], "-o", out, "-q", "--label", "L").exit_code == 0
     real = O.atomic_write_text
 
-    def dies_at_state(path, text):
+    def dies_at_state(path, text, **kw):
         if path.endswith(".state.json"):
             raise KeyboardInterrupt
-        real(path, text)
+        real(path, text, **kw)
 
     monkeypatch.setattr(O, "atomic_write_text", dies_at_state)
     assert invoke("update", *files, "-o", out, "-q", "--label", "L").exit_code == 130
