@@ -241,7 +241,7 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
 
         # ---- open the new files (lazily) for their time axes; unreadable ones stop or are skipped
         entries = {a: dict(old_files[a]) for a in unchanged}
-        skipped = []
+        skipped, infos = [], []
         for a in fresh:
             try:
                 info = engine._prepare_file(shown[a], plan, cfg, all_secs, overrides)
@@ -251,8 +251,16 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
                     entries[a] = {**records[a], "skipped": str(e), "times": [], "owned": [], "attrs": {}}
                     continue
                 raise
+            infos.append(info)
             times = list(dict.fromkeys(engine.iso_time(t) for t in info.detected.times))
             entries[a] = {**records[a], "times": times, "owned": [], "attrs": info.detected.attrs}
+        # new files must fit those already in OUT (grid, levels, calendar, extra dimensions), as in
+        # one track over all files; only new files are computed, so compare them with a kept one
+        kept = [a for a in unchanged if not entries[a].get("skipped")]
+        if infos and kept:
+            infos.insert(0, engine._prepare_file(shown[kept[0]], plan, cfg, all_secs, overrides))
+        if len(infos) > 1:
+            engine._check_consistent(infos)
         for a in ab:
             if entries[a].get("skipped"):
                 skipped.append({"path": shown[a], "reason": entries[a]["skipped"]})

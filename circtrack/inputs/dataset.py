@@ -99,20 +99,26 @@ def _check_classic_complete(path):
         magic = f.read(4)
     if magic not in _CLASSIC_MAGIC:
         return
+    import gc
     import warnings
 
     from scipy.io import netcdf_file
 
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
+    problem = None
+    with warnings.catch_warnings():
+        # scipy warns when a mapped file is freed while views on it exist; nothing is read here
+        warnings.simplefilter("ignore")
+        try:
             f = netcdf_file(path, "r", mmap=True)
+            f.variables.clear()
             f.close()
-    except (ValueError, TypeError, OSError, EOFError) as e:
-        size = os.path.getsize(path)
-        raise InputError(f"{path}: netCDF classic file shorter than its header says ({size} bytes; "
-                         f"{str(e).splitlines()[0] if str(e) else type(e).__name__}); the file is truncated: "
-                         "re-copy it, or pass --on-bad-file skip")
+            del f
+        except (ValueError, TypeError, OSError, EOFError) as e:
+            problem = str(e).splitlines()[0] if str(e) else type(e).__name__
+            gc.collect()                   # free the half-built reader while the warning is ignored
+    if problem is not None:
+        raise InputError(f"{path}: netCDF classic file shorter than its header says ({os.path.getsize(path)} "
+                         f"bytes; {problem}); the file is truncated: re-copy it, or pass --on-bad-file skip")
 
 
 def _attr(obj, name):
