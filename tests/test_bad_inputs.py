@@ -180,7 +180,7 @@ def unknown_units(tmp_path):
 
 
 @case
-def all_longitudes_missing_axes(tmp_path):
+def no_lat_lon_axes(tmp_path):
     # variables on (time, plev, j, i) with no coordinate variables: no latitude/longitude axis
     p = nc(tmp_path, "no_axes.nc", edit=lambda ds: ds.drop_vars(["lat", "lon"]).rename({"lat": "j", "lon": "i"}))
     return Case([p], p, "name it 'lat'")
@@ -460,8 +460,9 @@ def test_track_skips_corrupt_file_and_reports_it(tmp_path):
 
 
 def test_track_skips_a_first_file_whose_time_cannot_be_decoded(tmp_path):
-    # before this corpus, only a first file that could not be opened at all was skipped
-    a = set_attrs(nc(tmp_path, "a_bad_time.nc"), "time", units="fortnights since 2000-01-01")
+    # before this corpus, only a first file that could not be opened at all was skipped; one that
+    # opens but fails detection (a time axis without units) stopped the run despite skip
+    a = set_attrs(nc(tmp_path, "a_bad_time.nc"), "time", units=None, calendar=None)
     b = nc(tmp_path, "b_good.nc", k0=3)
     out = tmp_path / "OUT.csv"
     r = invoke("track", a, b, "-o", out, "-q", "--on-bad-file", "skip")
@@ -481,3 +482,10 @@ def test_update_skips_bad_new_file_and_equals_track_of_the_good_ones(tmp_path):
     # the skipped file is remembered: nothing new until it changes
     r = invoke("update", a, b, c, "-o", out, "--label", "L", "--on-bad-file", "skip")
     assert r.exit_code == 0 and "nothing new" in r.output
+
+
+def test_scan_names_level_units_that_are_not_pressure(tmp_path):
+    p = set_attrs(nc(tmp_path, "plev_degc.nc"), "plev", units="degC")
+    r = invoke("scan", p)
+    assert r.exit_code == 0, r.output
+    assert "no usable pressure levels: vertical axis 'plev' has units 'degC'" in r.output
