@@ -254,12 +254,15 @@ def _available_metrics(files, cfg, overrides, policy):
     for p in files:
         try:
             ds = D.open_dataset(p, cfg)
+            try:
+                det = D.detect(ds, p, overrides)
+            finally:
+                ds.close()
+            D.require_axes(det)
         except InputError:
-            if policy == "skip":
+            if policy == "skip":           # reported when the file is prepared
                 continue
             raise
-        det = D.detect(ds, p, overrides)
-        ds.close()
         ids = [m.id for f in registry.families().values() if set(f.inputs) <= set(det.variables) for m in f.metrics]
         if not ids:
             roles = sorted({r for f in registry.families().values() for r in f.inputs})

@@ -60,12 +60,15 @@ def open_dataset(path, cfg) -> xr.Dataset:
         raise InputError(f"{path}: file not found; check the path")
     if os.path.isfile(path) and os.path.getsize(path) == 0:
         raise InputError(f"{path}: the file is empty; re-copy or re-download it, or pass --on-bad-file skip")
+    if os.path.isfile(path):
+        _check_classic_complete(path)
     coder = xr.coders.CFDatetimeCoder(use_cftime=True)
     try:
-        return xr.open_dataset(path, engine=engine, chunks=None, cache=False,
-                               decode_times=coder, decode_timedelta=False)
+        ds = xr.open_dataset(path, engine=engine, chunks=None, cache=False,
+                             decode_times=coder, decode_timedelta=False)
     except ValueError as e:
-        msg = str(e).splitlines()[0]
+        # xarray's advice (decode_times=False, install cftime) is for library users, not for this command
+        msg = str(e).splitlines()[0].split(" Try opening", 1)[0]
         if "time" in msg.lower() or "calendar" in msg.lower() or "units" in msg.lower():
             raise InputError(f"{path}: the time axis cannot be decoded ({msg}); fix its 'units'/'calendar' "
                              "attributes (e.g. 'days since 1979-01-01') or convert the file with CF time units")
@@ -75,6 +78,47 @@ def open_dataset(path, cfg) -> xr.Dataset:
         msg = str(e).splitlines()[0] if str(e) else type(e).__name__
         raise InputError(f"{path}: cannot be read as netCDF ({msg}); the file may be truncated or not "
                          "netCDF: re-copy it, or pass --on-bad-file skip")
+    if ds.sizes and all(str(d).startswith("phony_dim_") for d in ds.sizes):
+        ds.close()
+        raise InputError(f"{path}: is a plain HDF5 file, not netCDF (its arrays have no named dimensions or "
+                         "coordinates); write it as netCDF with time/lat/lon (and plev) coordinates, or pass "
+                         "--on-bad-file skip")
+    return ds
+
+
+_CLASSIC_MAGIC = (b"CDF\x01", b"CDF\x02")
+
+
+def _check_classic_complete(path):
+    """A netCDF classic file cut short still opens and reads zeros past its end; check its length.
+
+    The header states where every variable's data begins and how long it is; scipy's reader maps
+    the file (nothing is read) and fails when the file is shorter than that.
+    """
+    with open(path, "rb") as f:
+        magic = f.read(4)
+    if magic not in _CLASSIC_MAGIC:
+        return
+    import gc
+    import warnings
+
+    from scipy.io import netcdf_file
+
+    problem = None
+    with warnings.catch_warnings():
+        # scipy warns when a mapped file is freed while views on it exist; nothing is read here
+        warnings.simplefilter("ignore")
+        try:
+            f = netcdf_file(path, "r", mmap=True)
+            f.variables.clear()
+            f.close()
+            del f
+        except (ValueError, TypeError, OSError, EOFError) as e:
+            problem = str(e).splitlines()[0] if str(e) else type(e).__name__
+            gc.collect()                   # free the half-built reader while the warning is ignored
+    if problem is not None:
+        raise InputError(f"{path}: netCDF classic file shorter than its header says ({os.path.getsize(path)} "
+                         f"bytes; {problem}); the file is truncated: re-copy it, or pass --on-bad-file skip")
 
 
 def _attr(obj, name):
@@ -132,6 +176,9 @@ def detect(ds, path, overrides=None) -> Detected:
         tv = ds[det.coords["time"]]
         det.times = np.asarray(tv.values)
         det.calendar = str(tv.encoding.get("calendar", tv.attrs.get("calendar", "standard")))
+        if det.times.size == 0:
+            raise InputError(f"{path}: the time axis '{det.coords['time']}' holds no time steps; the file may be "
+                             "incomplete: re-copy it, or pass --on-bad-file skip")
         if det.times.size and not hasattr(det.times.flat[0], "calendar"):
             raise InputError(f"{path}: time variable '{det.coords['time']}' has no decodable units "
                              f"('{_attr(tv, 'units')}'); give it CF units such as 'days since 2000-01-01'")
@@ -139,12 +186,18 @@ def detect(ds, path, overrides=None) -> Detected:
         pv = ds[det.coords["plev"]]
         det.plev_units = _attr(pv, "units")
         conv = U.conversion(det.plev_units, "pressure")
-        if conv is None:
+        if conv is None and det.plev_units.strip():
+            # units that are not pressure (e.g. 'degC', or '1' for model levels): never guess
+            det.problems["plev"] = (f"vertical axis '{det.coords['plev']}' has units '{det.plev_units}', which are "
+                                    "not pressure units; set its units attribute to 'Pa' or 'hPa' (e.g. ncatted -a "
+                                    f"units,{det.coords['plev']},o,c,hPa) if it holds pressure levels")
+        elif conv is None:
             vals = np.asarray(pv.values, float)
-            # no usable units: decide by magnitude (documented in DEVELOPERS.md)
+            # no units at all: decide by magnitude (recorded in the sidecar as '... (by magnitude)')
             conv = (0.01, 0.0) if np.nanmax(vals) > 2000 else (1.0, 0.0)
-            det.plev_units = det.plev_units or ("Pa (by magnitude)" if conv[0] == 0.01 else "hPa (by magnitude)")
-        det.plev_hpa = np.round(np.asarray(pv.values, float) * conv[0], 6)
+            det.plev_units = "Pa (by magnitude)" if conv[0] == 0.01 else "hPa (by magnitude)"
+        if conv is not None:
+            det.plev_hpa = np.round(np.asarray(pv.values, float) * conv[0], 6)
     core = {det.coords.get(k) for k in ("time", "lat", "lon", "plev")} - {None}
     for role, rule in VARIABLES.items():
         _detect_role(ds, det, role, rule, overrides.get(role))
@@ -156,6 +209,17 @@ def detect(ds, path, overrides=None) -> Detected:
     for d in sorted(extra):
         det.extra_dims[d] = np.asarray(ds[d].values) if d in ds.variables else np.arange(ds.sizes[d])
     return det
+
+
+def require_axes(det):
+    """The time, latitude and longitude axes every metric needs, or one clear error naming the fix."""
+    path = det.path
+    if "time" not in det.coords:
+        raise InputError(f"{path}: no time axis found; name it 'time' or give it CF units ('days since ...')")
+    for key in ("lat", "lon"):
+        if key not in det.coords:
+            raise InputError(f"{path}: no {'latitude' if key == 'lat' else 'longitude'} axis found; name it "
+                             f"'{key}' or give it units '{'degrees_north' if key == 'lat' else 'degrees_east'}'")
 
 
 def _detect_role(ds, det, role, rule, override):
@@ -213,6 +277,8 @@ def standardise(ds, det: Detected, role, levels_hpa, cfg):
             what = {"time": "a time axis", "lat": "a latitude axis", "lon": "a longitude axis"}[need]
             raise InputError(f"{path}: variable '{name}' ({role}) has no {what}; name its dimension "
                              f"'{need}' or give it CF attributes (standard_name/units)")
+    if rule["levels"] and "plev" in det.problems:
+        raise InputError(f"{path}: variable '{name}' ({role}): {det.problems['plev']}")
     conv = U.conversion(det.units.get(role, ""), rule["kind"])
     if conv is None:
         raise InputError(f"{path}: variable '{name}' ({role}) has units '{det.units.get(role, '')}', which circtrack "
