@@ -8,6 +8,7 @@ chunks along time only.
 from __future__ import annotations
 
 import os
+import re
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -66,6 +67,10 @@ def open_dataset(path, cfg) -> xr.Dataset:
                                decode_times=coder, decode_timedelta=False)
     except ValueError as e:
         msg = str(e).splitlines()[0]
+        if "time" in msg.lower() or "zero" in msg.lower():
+            ds = _open_year_zero(path, engine, coder)
+            if ds is not None:
+                return ds
         if "time" in msg.lower() or "calendar" in msg.lower() or "units" in msg.lower():
             raise InputError(f"{path}: the time axis cannot be decoded ({msg}); fix its 'units'/'calendar' "
                              "attributes (e.g. 'days since 1979-01-01') or convert the file with CF time units")
@@ -75,6 +80,47 @@ def open_dataset(path, cfg) -> xr.Dataset:
         msg = str(e).splitlines()[0] if str(e) else type(e).__name__
         raise InputError(f"{path}: cannot be read as netCDF ({msg}); the file may be truncated or not "
                          "netCDF: re-copy it, or pass --on-bad-file skip")
+
+
+YEAR_ZERO_CALENDAR = "proleptic_gregorian"
+_YEAR_ZERO = re.compile(r"\bsince\s+0{1,4}-")
+_MIXED_CALENDARS = {"", "standard", "gregorian", "julian"}
+
+
+def year_zero_time(units, calendar):
+    """True for a time axis counted from year 0 in a calendar that has no year 0 (CF 'standard',
+    'gregorian', 'julian', or no calendar attribute), the usual layout of climatology files
+    (e.g. 'hour since 0000-01-01 00:00:00')."""
+    return bool(_YEAR_ZERO.search(str(units))) and str(calendar).strip().lower() in _MIXED_CALENDARS
+
+
+def _open_year_zero(path, engine, coder):
+    """Reopen a file whose time axis counts from year 0 and decode it in the proleptic Gregorian
+    calendar with astronomical year numbering (year 0 exists, as ISO 8601 has it); None when the
+    failure had another cause. The decision is recorded by :func:`detect` (``why['time']``)."""
+    try:
+        ds = xr.open_dataset(path, engine=engine, chunks=None, cache=False, decode_times=False,
+                             decode_timedelta=False)
+    except (ValueError, OSError, RuntimeError, KeyError, IndexError, TypeError):
+        return None
+    fixed = {}
+    for name, var in ds.variables.items():
+        if year_zero_time(var.attrs.get("units", ""), var.attrs.get("calendar", "")):
+            v = var.copy()
+            v.attrs["calendar"] = YEAR_ZERO_CALENDAR
+            try:
+                fixed[name] = coder.decode(v, name=name)
+            except (ValueError, OverflowError):
+                return None
+    if not fixed:
+        ds.close()
+        return None
+    ds = ds.assign_coords({k: v for k, v in fixed.items() if k in ds.coords})
+    for k, v in fixed.items():
+        if k not in ds.coords:
+            ds[k] = v
+    ds.attrs["_circtrack_year_zero"] = ",".join(fixed)
+    return ds
 
 
 def _attr(obj, name):
@@ -132,6 +178,9 @@ def detect(ds, path, overrides=None) -> Detected:
         tv = ds[det.coords["time"]]
         det.times = np.asarray(tv.values)
         det.calendar = str(tv.encoding.get("calendar", tv.attrs.get("calendar", "standard")))
+        if det.coords["time"] in str(ds.attrs.get("_circtrack_year_zero", "")).split(","):
+            det.why["time"] = (f"'{det.coords['time']}' counts from year 0 ('{_attr(tv, 'units') or tv.encoding.get('units', '')}'), "
+                               f"which its calendar lacks; decoded as {YEAR_ZERO_CALENDAR} with year 0 (climatology)")
         if det.times.size and not hasattr(det.times.flat[0], "calendar"):
             raise InputError(f"{path}: time variable '{det.coords['time']}' has no decodable units "
                              f"('{_attr(tv, 'units')}'); give it CF units such as 'days since 2000-01-01'")
