@@ -33,6 +33,9 @@ def _track_options(fn):
         click.option("--scheduler", default=None, metavar="ADDRESS", help="Use a running dask.distributed scheduler."),
         click.option("--on-bad-file", type=click.Choice(["stop", "skip"]), default=None,
                      help="Stop at an unreadable input (default) or skip it and report it."),
+        click.option("--repeated-times", type=click.Choice(["refuse", "keep-first", "keep-last"]), default=None,
+                     help="A time step found in two files with different values: refuse (default) or keep the "
+                          "one from the file given first/last."),
         click.option("-q", "--quiet", is_flag=True, help="No progress output."),
     ]
     for o in reversed(opts):
@@ -40,7 +43,8 @@ def _track_options(fn):
     return fn
 
 
-def _run_track(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet):
+def _run_track(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
+               repeated_times=None):
     from circtrack import config as C
     from circtrack import engine, output as O
     from circtrack.cluster import scheduler_context
@@ -48,6 +52,8 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
     if workers and scheduler:
         raise UsageError("--workers and --scheduler exclude each other; give one")
     cfg = C.load(config)
+    if repeated_times:
+        cfg["run"]["repeated_times"] = repeated_times
     ids = [m.strip() for m in metrics.split(",") if m.strip()] if metrics else None
     secs = [engine.parse_sector(s) for s in sectors]
     prog = engine.Progress(quiet=quiet)

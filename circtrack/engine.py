@@ -1,21 +1,27 @@
-"""The streaming pipeline: open lazily, reduce to zonal (and sector) means per time chunk, detect.
+"""The streaming pipeline: plan, read and reduce per time chunk in workers, detect, tidy rows.
 
-Only the variables and levels the chosen metrics need are read. Each dask task reads one time
-chunk of one variable and returns its zonal statistics (mean of valid points and the fraction of
-valid longitudes, per sector), so everything after the read is small. The reduced arrays are
-computed in batches of chunks, the metric families run on each batch in numpy, and tidy rows come
-out. Memory is bounded by the batch, never by the record length.
+Only the variables and levels the chosen metrics need are read. The parent process opens each
+file once for its coordinates, builds a picklable :class:`~circtrack.inputs.dataset.RoleReader`
+per role and closes it again. Each task (one dask.delayed call of :func:`reduce_chunk`) opens its
+file inside the worker, reads one time chunk of every role the metrics need, and returns its
+zonal statistics (mean of valid points and the fraction of valid longitudes, per sector) plus the
+families' own reductions (products, per-longitude features); everything after the read is small.
+Tasks run in worker processes by default, because HDF5 decompresses one call at a time per
+process (see DEVELOPERS.md). Results are gathered in batches, the metric families run on each
+batch in numpy, and tidy rows come out. Memory is bounded by the batch, never by the record length.
 """
 
 from __future__ import annotations
 
+import collections
+import multiprocessing
 import os
 import sys
 import time as _time
+from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 
 import dask
-import dask.array as da
 import numpy as np
 
 from circtrack import registry
@@ -74,12 +80,54 @@ def _zonal_block(block, masks):
     return out
 
 
-def zonal_stats(arr, lon, sectors):
-    """Dask array ``(time, ..., lat, lon)`` -> ``(time, ..., lat, S, 2)``; S = 1 + number of sectors."""
-    masks = [None] + [sector_mask(lon, a, b) for _, a, b in sectors]
-    nd = arr.ndim
-    return da.map_blocks(_zonal_block, arr, masks, dtype=np.float64, drop_axis=nd - 1,
-                         new_axis=[nd - 1, nd], chunks=arr.chunks[:-1] + ((len(masks),), (2,)))
+def sector_masks(lon, sectors):
+    """The full circle (None) first, then one boolean longitude mask per sector."""
+    return [None] + [sector_mask(lon, a, b) for _, a, b in sectors]
+
+
+_OPEN = collections.OrderedDict()   # per process: path -> open dataset (a few, least recently used out)
+_OPEN_MAX = 2
+
+
+def _open_cached(path, cfg):
+    ds = _OPEN.pop(path, None)
+    if ds is None:
+        ds = D.open_dataset(path, cfg)
+        while len(_OPEN) >= _OPEN_MAX:
+            _OPEN.popitem(last=False)[1].close()
+    _OPEN[path] = ds
+    return ds
+
+
+def close_cached():
+    while _OPEN:
+        _OPEN.popitem()[1].close()
+
+
+def reduce_chunk(job):
+    """One task: read time steps ``t0:t1`` of every role of one file and reduce them.
+
+    ``job`` is a plain dict (path, cfg, readers, t0, t1, masks, reducers) so it pickles cheaply.
+    Returns ``{"stats": {role: (t, *extra, [L], J, S, 2)}, "extras": {name: (t, *extra, ..., S)}}``.
+    """
+    ds = _open_cached(job["path"], job["cfg"])
+    slabs = {}
+    try:
+        for role, reader in job["readers"].items():
+            slabs[role] = reader.read(ds, job["t0"], job["t1"])
+    except Exception:
+        # a damaged file: drop the handle so a retry reopens it, and let the caller name the file
+        _OPEN.pop(job["path"], None)
+        ds.close()
+        raise
+    stats = {role: _zonal_block(a, job["masks"]) for role, a in slabs.items()}
+    extras = {}
+    if job["reducers"]:
+        as64 = {r: a.astype(np.float64, copy=False) for r, a in slabs.items()}
+        plev = {r: rd.plev for r, rd in job["readers"].items()}
+        for name, fn in job["reducers"].items():
+            extras[name] = np.asarray(fn(as64, plev, job["lon"], job["masks"], job["cfg"]), dtype=np.float64)
+    return {"stats": stats, "extras": extras}
 
 
 # --------------------------------------------------------------------------- planning
@@ -88,6 +136,7 @@ class Plan:
     metric_ids: list
     families: list
     roles: dict            # role -> levels (None for all)
+    reducers: dict = field(default_factory=dict)   # name -> in-task reduction (registry.Family.reducers)
 
     @classmethod
     def make(cls, metric_ids, cfg, sectors):
@@ -114,14 +163,20 @@ class Plan:
                     roles[role] = sorted(set(roles[role]) | set(lev))
                 else:
                     roles[role] = lev
-        return cls(metric_ids, chosen, roles)
+        reducers = {}
+        for f in chosen:
+            for name, fn in f.reducers.items():
+                if name in reducers and reducers[name] is not fn:
+                    raise ValueError(f"reducer {name} declared by two families")
+                reducers[name] = fn
+        return cls(metric_ids, chosen, roles, reducers)
 
 
 @dataclass
 class FileInfo:
     path: str
     detected: D.Detected
-    arrays: dict = field(default_factory=dict)     # role -> dask stats array
+    readers: dict = field(default_factory=dict)    # role -> RoleReader
     plev: dict = field(default_factory=dict)       # role -> hPa levels
 
 
@@ -132,7 +187,15 @@ def _stat(path):
 
 
 def _prepare_file(path, plan, cfg, sectors, overrides):
+    """Open once for coordinates and readers, then close: workers reopen by path."""
     ds = D.open_dataset(path, cfg)
+    try:
+        return _prepare_open(ds, path, plan, cfg, overrides)
+    finally:
+        ds.close()
+
+
+def _prepare_open(ds, path, plan, cfg, overrides):
     det = D.detect(ds, path, overrides)
     if "time" not in det.coords:
         raise InputError(f"{path}: no time axis found; name it 'time' or give it CF units ('days since ...')")
@@ -147,8 +210,8 @@ def _prepare_file(path, plan, cfg, sectors, overrides):
             raise InputError(f"{path}: {VARIABLES[role]['long']} ({role}) not found ({hint}); "
                              f"add --var {role}=NAME or '{role} = \"NAME\"' under [variables] in the config "
                              f"('circtrack scan {path}' lists the variables)")
-        arr, plev = D.standardise(ds, det, role, levels, cfg)
-        info.arrays[role] = zonal_stats(arr.data, det.lon, sectors)
+        reader, plev = D.standardise(ds, det, role, levels, cfg)
+        info.readers[role] = reader
         info.plev[role] = plev
     return info
 
@@ -186,7 +249,7 @@ def _check_consistent(infos):
         if lat.shape != lat0.shape or not np.allclose(lat, lat0, atol=1e-4):
             raise InputError(f"{inf.path}: its latitude grid ({lat.size} points) differs from {first.path} "
                              f"({lat0.size} points); regrid to one grid or run the files separately")
-        for role in first.arrays:
+        for role in first.readers:
             a, b = first.plev[role], inf.plev[role]
             if (a is None) != (b is None) or (a is not None and (a.shape != b.shape or not np.allclose(a, b))):
                 raise InputError(f"{inf.path}: the pressure levels of {role} differ from {first.path}; "
@@ -220,6 +283,118 @@ def derive_source(paths, attrs):
         return prefix
     parent = os.path.basename(os.path.dirname(os.path.abspath(paths[0])))
     return parent or "data"
+
+
+# --------------------------------------------------------------------------- execution
+class _Runner:
+    """Runs a list of reduce tasks as dask.delayed calls on the chosen scheduler.
+
+    * a dask.distributed client is active (``--workers``/``--scheduler``): its cluster;
+    * ``run.scheduler = "processes"`` (default): a pool of forked worker processes, started once
+      per run (HDF5 decompresses one call at a time per process, so threads cannot share it);
+    * ``"threads"`` or ``"sync"``: dask's threaded or single-threaded scheduler in this process.
+    With a single task, or a single core, everything runs in this process.
+    """
+
+    def __init__(self, cfg, n_tasks):
+        self.mode = str(cfg["run"].get("scheduler", "processes"))
+        if self.mode not in ("processes", "threads", "sync"):
+            raise UsageError(f"run.scheduler = '{self.mode}' in the config: use processes, threads or sync")
+        self.nproc = int(cfg["run"].get("processes") or 0) or (os.cpu_count() or 1)
+        self.client = _active_client()
+        self.pool = None
+        if self.client is None and (n_tasks < 2 or self.nproc < 2) and self.mode == "processes":
+            self.mode = "sync"
+
+    def run(self, fn, jobs):
+        if not jobs:
+            return []
+        tasks = [dask.delayed(fn, pure=False)(j) for j in jobs]
+        if self.client is not None:
+            return list(dask.compute(*tasks))
+        if self.mode == "processes":
+            if self.pool is None:
+                close_cached()   # the children must not inherit open HDF5 handles
+                self.pool = ProcessPoolExecutor(max_workers=self.nproc,
+                                                mp_context=multiprocessing.get_context("fork"))
+            return list(dask.compute(*tasks, scheduler="processes", pool=self.pool))
+        return list(dask.compute(*tasks, scheduler=self.mode))
+
+    def close(self):
+        if self.pool is not None:
+            self.pool.shutdown(wait=True, cancel_futures=True)
+            self.pool = None
+
+
+def _active_client():
+    if "distributed" not in sys.modules:
+        return None
+    try:
+        from distributed import default_client
+        return default_client()
+    except (ValueError, ImportError):
+        return None
+
+
+def _choose_time_steps(times, last=False):
+    """Chronological positions to keep, the repeated ones dropped, and for each its kept twin."""
+    order = np.argsort(times, kind="stable")
+    keep, dropped, partner = [], [], []
+    i = 0
+    while i < order.size:
+        j = i
+        while j + 1 < order.size and times[order[j + 1]] == times[order[i]]:
+            j += 1
+        group = list(order[i:j + 1])
+        chosen = group[-1] if last else group[0]
+        keep.append(chosen)
+        for g in group:
+            if g != chosen:
+                dropped.append(int(g))
+                partner.append(int(chosen))
+        i = j + 1
+    return np.array(keep, dtype=int), dropped, partner
+
+
+def _gather(cache, kind, name, positions, chunk_of, chunks, starts):
+    """Rows of the cached chunk results at global ``positions``, in that order (runs are sliced)."""
+    parts = []
+    i = 0
+    while i < len(positions):
+        c = int(chunk_of[positions[i]])
+        k, a, _ = chunks[c]
+        lo = positions[i] - starts[k] - a
+        j = i
+        while (j + 1 < len(positions) and chunk_of[positions[j + 1]] == c
+               and positions[j + 1] == positions[j] + 1):
+            j += 1
+        parts.append(cache[c][kind][name][lo:lo + (j - i + 1)])
+        i = j + 1
+    return np.concatenate(parts, axis=0)
+
+
+def _compare_repeat(d, p, cache, chunks, chunk_of, starts, infos, times_all, policy):
+    """A time step present in two files: identical -> drop one; different -> refuse unless a policy says."""
+    same = True
+    for r in cache[int(chunk_of[p])]["stats"]:
+        a = _gather(cache, "stats", r, [p], chunk_of, chunks, starts)
+        b = _gather(cache, "stats", r, [d], chunk_of, chunks, starts)
+        if not np.array_equal(a, b, equal_nan=True):
+            same = False
+            break
+    if not same and policy == "refuse":
+        fa, fb = infos[chunks[chunk_of[p]][0]].path, infos[chunks[chunk_of[d]][0]].path
+        raise InputError(f"{fb}: time step {iso_time(times_all[d])} is also in {fa} with different values; "
+                         "leave one file out, or choose which wins with --repeated-times keep-first|keep-last")
+
+
+def _time_step_days(times):
+    """Median spacing of the time axis in days (NaN for a single step)."""
+    if times.size < 2:
+        return float("nan")
+    d = np.diff(times)
+    days = np.array([x.total_seconds() / 86400.0 for x in d[: min(d.size, 400)]])
+    return float(np.median(days))
 
 
 # --------------------------------------------------------------------------- the run
@@ -285,22 +460,15 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
     _check_consistent(infos)
     progress.line(f"{len(infos)} file(s), metrics: {', '.join(plan.metric_ids)}")
 
-    # ---- the time axis across files: chronological, duplicated steps dropped (first file wins)
-    times = np.concatenate([i.detected.times for i in infos])
+    # ---- the time axis across files: chronological; a repeated time step is read from every file
+    # that has it and compared: identical repeats are dropped, conflicting ones refused (or
+    # resolved by run.repeated_times = "keep-first" / "keep-last", in the order the files were given)
+    times_all = np.concatenate([i.detected.times for i in infos])
     file_of = np.concatenate([np.full(i.detected.times.size, k) for k, i in enumerate(infos)])
-    order = np.argsort(times, kind="stable")
-    keep, dropped = [], []
-    for k in order:
-        if keep and times[k] == times[keep[-1]]:
-            dropped.append(k)
-            continue
-        keep.append(k)
-    keep = np.array(keep, dtype=int)
+    repeat_policy = cfg["run"].get("repeated_times", "refuse")
+    keep, dropped, partner = _choose_time_steps(times_all, last=(repeat_policy == "keep-last"))
+    times = times_all[keep]
     roles = list(plan.roles)
-    stats = {r: da.concatenate([i.arrays[r] for i in infos], axis=0) for r in roles}
-    if not np.array_equal(keep, np.arange(times.size)):
-        stats = {r: a[keep] for r, a in stats.items()}
-    times = times[keep]
     lat = np.sort(infos[0].detected.lat)
     plev = {r: infos[0].plev[r] for r in roles}
     extra = infos[0].detected.extra_dims
@@ -308,49 +476,96 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
     n_extra = int(np.prod([len(v) for v in extra.values()])) if extra else 1
     sector_names = ["zonal"] + [s[0] for s in sectors]
 
+    # ---- tasks: one per file and time chunk (chunk along time only; lat/level/lon stay whole)
+    tc = max(1, int(cfg["run"]["time_chunk"]))
+    starts = np.concatenate([[0], np.cumsum([i.detected.times.size for i in infos])])
+    chunks = [(k, a, min(i.detected.times.size, a + tc)) for k, i in enumerate(infos)
+              for a in range(0, i.detected.times.size, tc)]
+    chunk_of = np.empty(times_all.size, dtype=int)
+    for c, (k, a, b) in enumerate(chunks):
+        chunk_of[starts[k] + a:starts[k] + b] = c
+    masks_of = [sector_masks(i.detected.lon, sectors) for i in infos]
+
+    def job(c):
+        k, a, b = chunks[c]
+        inf = infos[k]
+        return {"path": inf.path, "cfg": cfg, "readers": inf.readers, "t0": a, "t1": b,
+                "masks": masks_of[k], "lon": np.asarray(inf.detected.lon, float), "reducers": plan.reducers}
+
+    nt = times.size
+    batch = tc * max(4, 2 * (os.cpu_count() or 1))
+    batches = [(b0, min(nt, b0 + batch)) for b0 in range(0, nt, batch)]
+    batch_of_pos = np.empty(times_all.size, dtype=int)
+    for bi, (b0, b1) in enumerate(batches):
+        batch_of_pos[keep[b0:b1]] = bi
+    for d, p in zip(dropped, partner):
+        batch_of_pos[d] = batch_of_pos[p]
+    last_use = collections.defaultdict(int)
+    for pos in range(times_all.size):
+        last_use[chunk_of[pos]] = max(last_use[chunk_of[pos]], batch_of_pos[pos])
+
     cat = registry.catalogue()
     wanted = set(plan.metric_ids)
     cols = {k: [] for k in ["t", "e", "hemisphere", "sector", "metric", "value", "flag"]}
-    nt = times.size
-    batch = max(1, int(cfg["run"]["time_chunk"])) * max(4, 2 * (os.cpu_count() or 1))
-    for t0 in range(0, nt, batch):
-        t1 = min(nt, t0 + batch)
-        try:
-            computed = dask.compute(*[stats[r][t0:t1] for r in roles])
-        except (OSError, RuntimeError, ValueError) as e:
-            involved = sorted({infos[file_of[k]].path for k in keep[t0:t1]})
-            msg = str(e).splitlines()[0] if str(e) else type(e).__name__
-            raise InputError(f"{involved[0]}: reading data failed ({msg}) for time steps {iso_time(times[t0])}.."
-                             f"{iso_time(times[t1 - 1])} in {', '.join(involved)}; one of these files is damaged: "
-                             "re-copy it or leave it out")
-        bt = t1 - t0
-        for s, sname in enumerate(sector_names):
-            mean, cov = {}, {}
-            for r, arr in zip(roles, computed):
-                a = arr[..., s, :]
-                shp = (bt * n_extra,) + a.shape[1 + len(extra_names):-1]
-                mean[r] = a[..., 0].reshape(shp)
-                cov[r] = a[..., 1].reshape(shp)
-            fields = Fields(lat=lat, plev=plev, mean=mean, coverage=cov, sector=sname)
+    step_days = _time_step_days(times)
+    cache = {}
+    runner = _Runner(cfg, len(chunks))
+    try:
+        for bi, (t0, t1) in enumerate(batches):
+            positions = keep[t0:t1]
+            mine = [d for d in dropped if batch_of_pos[d] == bi]
+            need = sorted({int(chunk_of[q]) for q in list(positions) + mine} - set(cache))
+            try:
+                results = runner.run(reduce_chunk, [job(c) for c in need])
+            except (OSError, RuntimeError, ValueError, KeyError, IndexError) as e:
+                involved = sorted({infos[chunks[c][0]].path for c in need})
+                msg = str(e).splitlines()[0] if str(e) else type(e).__name__
+                raise InputError(f"{involved[0]}: reading data failed ({msg}) for time steps {iso_time(times[t0])}.."
+                                 f"{iso_time(times[t1 - 1])} in {', '.join(involved)}; one of these files is damaged: "
+                                 "re-copy it or leave it out")
+            cache.update(zip(need, results))
+            for d in mine:
+                _compare_repeat(d, partner[dropped.index(d)], cache, chunks, chunk_of, starts, infos, times_all,
+                                repeat_policy)
+            computed = {r: _gather(cache, "stats", r, positions, chunk_of, chunks, starts) for r in roles}
+            xtra = {n: _gather(cache, "extras", n, positions, chunk_of, chunks, starts) for n in plan.reducers}
+            for c in [c for c in cache if last_use[c] <= bi]:
+                del cache[c]
+            bt = t1 - t0
             tidx = np.repeat(np.arange(t0, t1), n_extra)
             eidx = np.tile(np.arange(n_extra), bt)
-            for fam in plan.families:
-                if sname != "zonal" and not fam.sectors:
-                    continue
-                results = fam.compute(fields, cfg)
-                for m in fam.metrics:
-                    if m.id not in wanted:
+            for s, sname in enumerate(sector_names):
+                mean, cov, ext = {}, {}, {}
+                for r, arr in computed.items():
+                    a = arr[..., s, :]
+                    shp = (bt * n_extra,) + a.shape[1 + len(extra_names):-1]
+                    mean[r] = a[..., 0].reshape(shp)
+                    cov[r] = a[..., 1].reshape(shp)
+                for n_, arr in xtra.items():
+                    a = arr[..., s]
+                    ext[n_] = a.reshape((bt * n_extra,) + a.shape[1 + len(extra_names):])
+                fields = Fields(lat=lat, plev=plev, mean=mean, coverage=cov, sector=sname, extras=ext,
+                                info={"time_step_days": step_days})
+                for fam in plan.families:
+                    if sname != "zonal" and not fam.sectors:
                         continue
-                    res = results[m.id]
-                    for h, hemi in enumerate(registry.hemispheres(m)):
-                        cols["t"].append(tidx)
-                        cols["e"].append(eidx)
-                        cols["hemisphere"].append(np.full(tidx.size, hemi, dtype=object))
-                        cols["sector"].append(np.full(tidx.size, sname, dtype=object))
-                        cols["metric"].append(np.full(tidx.size, m.id, dtype=object))
-                        cols["value"].append(res.value[:, h])
-                        cols["flag"].append(res.flag[:, h].astype(object))
-        progress.step(t1, nt)
+                    results = fam.compute(fields, cfg)
+                    for m in fam.metrics:
+                        if m.id not in wanted:
+                            continue
+                        res = results[m.id]
+                        for h, hemi in enumerate(registry.hemispheres(m)):
+                            cols["t"].append(tidx)
+                            cols["e"].append(eidx)
+                            cols["hemisphere"].append(np.full(tidx.size, hemi, dtype=object))
+                            cols["sector"].append(np.full(tidx.size, sname, dtype=object))
+                            cols["metric"].append(np.full(tidx.size, m.id, dtype=object))
+                            cols["value"].append(res.value[:, h])
+                            cols["flag"].append(res.flag[:, h].astype(object))
+            progress.step(t1, nt)
+    finally:
+        runner.close()
+        close_cached()
 
     flat = {k: (np.concatenate(v) if v else np.array([], dtype=object)) for k, v in cols.items()}
     iso = np.array([iso_time(t) for t in times], dtype=object)
@@ -375,8 +590,9 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
                     "pressure_units_in_file": i.detected.plev_units}
                    for i in infos],
         "skipped_inputs": skipped,
-        "duplicate_time_steps_dropped": [{"time": iso_time(np.concatenate([i.detected.times for i in infos])[k]),
-                                          "path": infos[file_of[k]].path} for k in dropped],
+        "repeated_time_steps_dropped": [{"time": iso_time(times_all[k]), "path": infos[file_of[k]].path,
+                                         "kept_from": infos[file_of[p]].path} for k, p in zip(dropped, partner)],
+        "repeated_times_policy": repeat_policy,
         "calendar": infos[0].detected.calendar,
         "time_span": [iso[0], iso[-1]] if nt else None,
         "time_steps": int(nt),

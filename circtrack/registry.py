@@ -49,17 +49,21 @@ class Family:
     sectors: bool = False
     metrics: list = field(default_factory=list)
     optional_inputs: tuple = ()
+    # name -> module-level fn(slabs, plev, lon, masks, cfg) run inside each read task on the full
+    # fields (not zonal means): e.g. zonal means of products, per-longitude features. Returns an
+    # array (t, *extra, *rest, S); the family sees fields.extras[name] as (N, *rest) per sector.
+    reducers: dict = field(default_factory=dict)
 
 
 _FAMILIES: dict[str, Family] = {}
 _METRICS: dict[str, Metric] = {}
 
 
-def register_family(name, *, inputs, levels, sectors=False, metrics, optional_inputs=()):
+def register_family(name, *, inputs, levels, sectors=False, metrics, optional_inputs=(), reducers=None):
     """Decorator registering a family's compute function and the metrics it produces."""
 
     def wrap(fn):
-        fam = Family(name, tuple(inputs), levels, fn, sectors, [], tuple(optional_inputs))
+        fam = Family(name, tuple(inputs), levels, fn, sectors, [], tuple(optional_inputs), dict(reducers or {}))
         for m in metrics:
             m = Metric(**{**m.__dict__, "family": name, "inputs": tuple(inputs), "sectors": sectors})
             if m.id in _METRICS:

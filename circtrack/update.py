@@ -133,7 +133,7 @@ def _disjoint_groups(files, times_of):
 
 # --------------------------------------------------------------------------- the run
 def run_update(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file,
-               quiet, rebuild=False, duplicates=None, stdin=None, echo=None):
+               quiet, rebuild=False, repeated_times=None, stdin=None, echo=None):
     from circtrack import config as C
     from circtrack import engine
     from circtrack import output as O
@@ -241,13 +241,13 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
         fresh_set = set(fresh_used)
         for t, hs in holders.items():
             if len(hs) > 1 and fresh_set & set(hs):
-                if duplicates is None:
+                if repeated_times in (None, "refuse"):
                     new = next(h for h in hs if h in fresh_set)
                     other = next(h for h in hs if h != new)
                     raise InputError(f"{shown[new]}: time step {t} is also in {shown[other]}; remove one of the "
-                                     "files or rerun with --duplicates keep-first (the file listed first wins, as "
-                                     "track does) or --duplicates keep-last")
-                owner[t] = hs[0] if duplicates == "keep-first" else hs[-1]
+                                     "files or rerun with --repeated-times keep-first (the file listed first wins) "
+                                     "or --repeated-times keep-last")
+                owner[t] = hs[0] if repeated_times == "keep-first" else hs[-1]
             elif old_owner.get(t) in hs:
                 owner[t] = old_owner[t]
             else:
@@ -339,10 +339,6 @@ def make_command():
     @click.command("update")
     @_track_options
     @click.option("--rebuild", is_flag=True, help="Recompute everything (needed after changing parameters or --label).")
-    @click.option("--duplicates", type=click.Choice(["keep-first", "keep-last"]), default=None,
-                  help="When a new file holds time steps another file already holds: keep-first keeps the rows of "
-                       "the file listed first (what track does), keep-last those of the file listed last. "
-                       "Without it such overlaps are refused, naming both files.")
     @guarded
     def update(**kw):
         """Bring OUT up to date with PATH..., processing only new or changed files (for cron).

@@ -6,6 +6,8 @@ import numpy as np
 import pytest
 
 from tests.conftest import csv_rows, make_dataset, run, write
+from circtrack import config, engine
+from circtrack.errors import InputError
 
 LABEL = "layout"
 
@@ -84,8 +86,31 @@ def test_duplicate_time_steps_across_files_are_dropped(tmp_path, base_rows):
     b = write(ds.isel(time=[1, 2]), d / "b.nc")            # 2000-02-15 appears twice
     _, out = run([a, b], label=LABEL)
     assert csv_rows(out) == base_rows
-    dropped = out.provenance["duplicate_time_steps_dropped"]
+    dropped = out.provenance["repeated_time_steps_dropped"]
     assert len(dropped) == 1 and dropped[0]["time"] == "2000-02-15" and dropped[0]["path"] == b
+    assert dropped[0]["kept_from"] == a
+
+
+def test_conflicting_repeated_time_step_is_refused_unless_a_policy_says(tmp_path, base_rows):
+    ds = make_dataset(3)
+    d = tmp_path / "conflict"
+    d.mkdir()
+    a = write(ds.isel(time=[0, 1]), d / "a.nc")
+    other = ds.isel(time=[1, 2]).copy(deep=True)
+    other["ua"] = other["ua"] + 1.0                          # same time stamp, different wind
+    b = write(other, d / "b.nc")
+    with pytest.raises(InputError, match=r"b\.nc: time step 2000-02-15 is also in .*a\.nc with different values"):
+        run([a, b], label=LABEL)
+    cfg = config.load()
+    cfg["run"]["repeated_times"] = "keep-first"
+    first = engine.track([a, b], cfg, label=LABEL)
+    cfg["run"]["repeated_times"] = "keep-last"
+    last = engine.track([a, b], cfg, label=LABEL)
+    assert first.provenance["repeated_time_steps_dropped"][0]["path"] == b
+    assert last.provenance["repeated_time_steps_dropped"][0]["path"] == a
+    v_first = first.columns["value"][(first.columns["time"] == "2000-02-15") & (first.columns["metric"] == "eddy_jet_speed")]
+    v_last = last.columns["value"][(last.columns["time"] == "2000-02-15") & (last.columns["metric"] == "eddy_jet_speed")]
+    assert np.allclose(v_last - v_first, 1.0, atol=0.05)     # u + 1 m/s everywhere moves the jet speed by 1
 
 
 def test_nan_below_ground_in_half_the_longitudes(tmp_path):

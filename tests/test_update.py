@@ -132,13 +132,14 @@ def test_duplicate_time_steps(tmp_path):
     assert invoke("update", *files, "-o", out, "-q", "--label", "L").exit_code == 0
     dup = monthly(tmp_path, 1, name="mon_01b.nc", edj=(40.0, -45.0))   # same months as mon_01
     line = one_error_line(invoke("update", *files, dup, "-o", out, "-q", "--label", "L"), 1)
-    assert "mon_01b.nc" in line and "mon_01.nc" in line and "--duplicates" in line
-    r = invoke("update", *files, dup, "-o", out, "-q", "--label", "L", "--duplicates", "keep-first")
+    assert "mon_01b.nc" in line and "mon_01.nc" in line and "--repeated-times" in line
+    r = invoke("update", *files, dup, "-o", out, "-q", "--label", "L", "--repeated-times", "keep-first")
     assert r.exit_code == 0, r.output
-    assert out.read_bytes() == track_bytes(tmp_path, [*files, dup], "--label", "L")
-    r = invoke("update", *files, dup, "-o", out, "-q", "--label", "L", "--duplicates", "keep-last", "--rebuild")
+    assert out.read_bytes() == track_bytes(tmp_path, [*files, dup], "--label", "L", "--repeated-times", "keep-first")
+    r = invoke("update", *files, dup, "-o", out, "-q", "--label", "L", "--repeated-times", "keep-last", "--rebuild")
     assert r.exit_code == 0, r.output
     assert b"2000-03-15,NH,zonal,eddy_jet_lat,40," in out.read_bytes()
+    assert out.read_bytes() == track_bytes(tmp_path, [*files, dup], "--label", "L", "--repeated-times", "keep-last")
 
 
 def test_lock_held_by_another_process(tmp_path):

@@ -1,8 +1,8 @@
 """Opening one input lazily, detecting its coordinates and variables, and standardising roles.
 
-Every role array leaves here with dimensions ``(time, *extra, [plev], lat, lon)``, latitude
-ascending, pressure in hPa ascending (top first), values in canonical units, backed by dask with
-chunks along time only.
+Every role is read through a :class:`RoleReader` as ``(time, *extra, [plev], lat, lon)``, latitude
+ascending, pressure in hPa ascending (top first), values in canonical units, one time chunk at a
+time inside the worker that reduces it.
 """
 
 from __future__ import annotations
@@ -246,11 +246,11 @@ def _detect_role(ds, det, role, rule, override):
 
 
 def standardise(ds, det: Detected, role, levels_hpa, cfg):
-    """The role's array, lazily converted to the canonical layout and units.
+    """How to read the role in the canonical layout and units: a :class:`RoleReader`.
 
     ``levels_hpa``: None for every level, else the wanted levels; the nearest level within the
     tolerance is taken, or the two levels bracketing a wanted level (for log-p interpolation).
-    Returns ``(DataArray, plev_hpa or None)``.
+    Returns ``(RoleReader, plev_hpa or None)``; nothing is read here.
     """
     path = det.path
     name = det.variables[role]
@@ -267,9 +267,11 @@ def standardise(ds, det: Detected, role, levels_hpa, cfg):
         raise InputError(f"{path}: variable '{name}' ({role}) has units '{det.units.get(role, '')}', which circtrack "
                          f"does not know for {rule['kind'].replace('_', ' ')}; set its units attribute to "
                          f"'{U.CANONICAL[rule['kind']]}' (e.g. ncatted -a units,{name},o,c,'{U.CANONICAL[rule['kind']]}')")
+    sel = {}
     # squeeze size-1 dimensions that are not core (e.g. height = 10 m)
     for d in list(da.dims):
         if d not in (c["time"], c["lat"], c["lon"], c.get("plev")) and da.sizes[d] == 1:
+            sel[d] = 0
             da = da.isel({d: 0}, drop=True)
     lat = det.lat
     if not np.all(np.isfinite(lat)) or np.any(np.abs(lat) > 90.0 + 1e-6):
@@ -279,8 +281,10 @@ def standardise(ds, det: Detected, role, levels_hpa, cfg):
     if not np.all(np.isfinite(det.lon)):
         raise InputError(f"{path}: longitude '{c['lon']}' has missing values; fix the coordinate")
     order = np.argsort(lat)
-    if not np.array_equal(order, np.arange(lat.size)):
-        da = da.isel({c["lat"]: order})
+    if np.array_equal(order, np.arange(lat.size)[::-1]):
+        sel[c["lat"]] = (None, None, -1)          # descending: a reversed slice reads fastest
+    elif not np.array_equal(order, np.arange(lat.size)):
+        sel[c["lat"]] = order
     plev_out = None
     if rule["levels"]:
         p = det.plev_hpa
@@ -301,18 +305,47 @@ def standardise(ds, det: Detected, role, levels_hpa, cfg):
             idx = np.array(sorted(idx, key=lambda k: p[k]), dtype=int)
             if idx.size == 0:
                 idx = np.argsort(p)[:1]
-        da = da.isel({c["plev"]: idx})
+        sel[c["plev"]] = idx
         plev_out = p[idx]
-    ren = {c["time"]: "time", c["lat"]: "lat", c["lon"]: "lon"}
-    if rule["levels"]:
-        ren[c["plev"]] = "plev"
-    da = da.rename(ren)
-    da = da.drop_vars(list(da.coords))
-    extra = [d for d in da.dims if d not in ("time", "plev", "lat", "lon")]
-    order_dims = ["time", *extra] + (["plev"] if rule["levels"] else []) + ["lat", "lon"]
-    da = da.transpose(*order_dims)
-    da = da.chunk({d: (cfg["run"]["time_chunk"] if d == "time" else -1) for d in da.dims})
-    factor, offset = conv
-    if factor != 1.0 or offset != 0.0:
-        da = da * factor + offset
-    return da, plev_out
+    extra = [d for d in da.dims if d not in (c["time"], c["lat"], c["lon"], c.get("plev"))]
+    order_dims = [c["time"], *extra] + ([c["plev"]] if rule["levels"] else []) + [c["lat"], c["lon"]]
+    reader = RoleReader(path=path, role=role, name=name, time_dim=c["time"], dims=order_dims,
+                        selection={d: (v.tolist() if isinstance(v, np.ndarray) else v) for d, v in sel.items()},
+                        factor=float(conv[0]), offset=float(conv[1]), plev=plev_out,
+                        ntime=int(ds.sizes[c["time"]]))
+    return reader, plev_out
+
+
+@dataclass
+class RoleReader:
+    """How to read one role of one file in the canonical layout, as plain picklable data.
+
+    Worker processes receive readers, open the file themselves and call :meth:`read` per time
+    chunk, so nothing but a path and a few indices crosses process boundaries and nothing is read
+    before the chunk's task runs. ``read`` returns ``(time, *extra, [plev], lat, lon)`` with latitude
+    ascending, levels ascending in hPa, values in canonical units (the file's float type when no
+    conversion is needed, float64 otherwise).
+    """
+
+    path: str
+    role: str
+    name: str
+    time_dim: str
+    dims: list                      # the variable's dims in output order
+    selection: dict                 # dim -> int (squeezed), slice or list of indices
+    factor: float = 1.0
+    offset: float = 0.0
+    plev: np.ndarray | None = None
+    ntime: int = 0
+
+    def read(self, ds, t0, t1):
+        var = ds[self.name]
+        sel = {d: (slice(*v) if isinstance(v, tuple) else v) for d, v in self.selection.items()}
+        sel[self.time_dim] = slice(int(t0), int(t1))
+        var = var.isel(sel)
+        arr = np.asarray(var.transpose(*self.dims).values)
+        if self.factor != 1.0 or self.offset != 0.0:
+            arr = arr.astype(np.float64) * self.factor + self.offset
+        elif not np.issubdtype(arr.dtype, np.floating):
+            arr = arr.astype(np.float64)
+        return arr
