@@ -104,6 +104,12 @@ def close_cached():
         _OPEN.popitem()[1].close()
 
 
+def _wants_lat(fn):
+    """A reducer may take the ascending latitudes as a keyword ``lat`` (e.g. to locate a maximum)."""
+    import inspect
+    return "lat" in inspect.signature(fn).parameters
+
+
 def reduce_chunk(job):
     """One task: read time steps ``t0:t1`` of every role of one file and reduce them.
 
@@ -126,7 +132,8 @@ def reduce_chunk(job):
         as64 = {r: a.astype(np.float64, copy=False) for r, a in slabs.items()}
         plev = {r: rd.plev for r, rd in job["readers"].items()}
         for name, fn in job["reducers"].items():
-            extras[name] = np.asarray(fn(as64, plev, job["lon"], job["masks"], job["cfg"]), dtype=np.float64)
+            kw = {"lat": job["lat"]} if _wants_lat(fn) else {}     # latitudes for per-longitude features
+            extras[name] = np.asarray(fn(as64, plev, job["lon"], job["masks"], job["cfg"], **kw), dtype=np.float64)
     return {"stats": stats, "extras": extras}
 
 
@@ -490,7 +497,8 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
         k, a, b = chunks[c]
         inf = infos[k]
         return {"path": inf.path, "cfg": cfg, "readers": inf.readers, "t0": a, "t1": b,
-                "masks": masks_of[k], "lon": np.asarray(inf.detected.lon, float), "reducers": plan.reducers}
+                "masks": masks_of[k], "lon": np.asarray(inf.detected.lon, float),
+                "lat": np.sort(np.asarray(inf.detected.lat, float)), "reducers": plan.reducers}
 
     nt = times.size
     batch = tc * max(4, 2 * (os.cpu_count() or 1))
