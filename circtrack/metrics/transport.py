@@ -34,7 +34,8 @@ MOMENTUM_METRICS = [
            "hemisphere",
            "maximum of the poleward eddy momentum flux [u'v'] = [uv] - [u][v] (zonal covariance of the instantaneous "
            "winds; northward positive, so the SH uses -[u'v']) at eddies.momentum_level_hpa (250 hPa) in "
-           "eddies.momentum_window (15-60 deg poleward), 3-point parabola; transient plus stationary eddies from "
+           "eddies.momentum_window (15-60 deg poleward), 3-point parabola (NaN, flag weak_peak, when the peak is below "
+           "eddies.min_momentum_flux_m2_s2); transient plus stationary eddies from "
            "sub-daily or daily input, stationary only from time means (flag time_mean_input)", MOMENTUM_REF),
     Metric("eddy_momentum_flux_max", "Strongest poleward eddy momentum flux", "m2 s-2", "hemisphere",
            "parabola vertex value of the poleward [u'v'] at eddy_momentum_flux_lat (positive poleward in both "
@@ -46,7 +47,8 @@ ENERGY_METRICS = [
            "F = 2 pi a cos(lat)/g (integral [v E] dp - M_net E_mean), E = cp T + g z + L q, with the barotropic mass "
            "correction: M_net = integral [v] dp is the net column mass flux across the latitude circle and E_mean "
            "the mass-weighted mean of E over the section (no net mass crosses the latitude); integral from the top "
-           "to the lowest level, below-ground points left out; 3-point parabola; time-mean input gives the "
+           "to the lowest level, below-ground points left out; 3-point parabola (its latitude NaN, flag weak_peak, "
+           "below energy.min_transport_pw); time-mean input gives the "
            "mean-circulation and stationary-eddy part only (flag time_mean_input)", ENERGY_REF),
     Metric("energy_transport_max_lat", "Latitude of the peak poleward atmospheric energy transport", "degrees_north",
            "hemisphere", "latitude of energy_transport_max (3-point parabola)", ENERGY_REF),
@@ -67,6 +69,21 @@ def _apply_time_flag(results, flag):
         return
     for r in results:
         r.flag[r.flag == "ok"] = flag
+
+
+def _weak_peak(lat_res, val_res, h, threshold, y, x, window):
+    """A poleward peak weaker than ``threshold`` has no meaningful latitude: NaN, flag weak_peak; the
+    peak value is kept (the largest grid value in the window), with the same flag. Rows already
+    flagged too_little_data keep that flag."""
+    inwin = (x >= window[0]) & (x <= window[1])
+    with np.errstate(invalid="ignore"):
+        part = np.where(np.isfinite(y[:, inwin]), y[:, inwin], -np.inf)
+        top = part.max(axis=1) if part.shape[1] else np.full(y.shape[0], -np.inf)
+        weak = np.isfinite(top) & (top < threshold) & (val_res.flag[:, h] != "too_little_data")
+    lat_res.value[weak, h] = np.nan
+    lat_res.flag[weak, h] = "weak_peak"
+    val_res.value[weak, h] = top[weak]
+    val_res.flag[weak, h] = "weak_peak"
 
 
 def _common_levels(plev, roles):
@@ -129,6 +146,8 @@ def compute_momentum(fields, cfg):
         poleward = flux[:, idx] * (1.0 if hemi == "NH" else -1.0)
         peak(poleward, x, e["momentum_window"], cfg, out["eddy_momentum_flux_lat"], out["eddy_momentum_flux_max"], h)
         out["eddy_momentum_flux_lat"].value[:, h] = signed(hemi, out["eddy_momentum_flux_lat"].value[:, h])
+        _weak_peak(out["eddy_momentum_flux_lat"], out["eddy_momentum_flux_max"], h, e["min_momentum_flux_m2_s2"],
+                   poleward, x, e["momentum_window"])
     _apply_time_flag(out.values(), time_mean_flag(fields, cfg))
     return out
 
@@ -199,5 +218,7 @@ def compute_energy(fields, cfg):
         peak(poleward, x, cfg["energy"]["window"], cfg, out["energy_transport_max_lat"],
              out["energy_transport_max"], h)
         out["energy_transport_max_lat"].value[:, h] = signed(hemi, out["energy_transport_max_lat"].value[:, h])
+        _weak_peak(out["energy_transport_max_lat"], out["energy_transport_max"], h, cfg["energy"]["min_transport_pw"],
+                   poleward, x, cfg["energy"]["window"])
     _apply_time_flag(out.values(), time_mean_flag(fields, cfg))
     return out

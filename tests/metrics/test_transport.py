@@ -221,3 +221,23 @@ def test_physical_constants_against_named_sources():
     assert LATENT_HEAT_VAPORIZATION == pytest.approx(2.501e6, rel=1e-3)
     # Earth's mean radius 6371.0 km (IUGG mean radius R1 = 6371.0088 km, from memory)
     assert EARTH_RADIUS == pytest.approx(6371.0088e3, abs=100.0)
+
+
+def test_no_eddies_gives_no_flux_latitude(tmp_path):
+    # v zonally uniform: [u'v'] = 0 everywhere, so there is no latitude of the strongest flux
+    f = _eddy_winds()
+    f["va"] = np.zeros_like(f["va"]) + 1.0
+    path = _write(tmp_path / "none.nc", f, _times(2, 1.0))
+    t = _table(engine.track([path], config.load(), metric_ids=["eddy_momentum_flux_lat", "eddy_momentum_flux_max"]))
+    lat, flag = _first(t, "NH", "eddy_momentum_flux_lat")
+    assert np.isnan(lat) and flag == "weak_peak"
+    assert _first(t, "NH", "eddy_momentum_flux_max")[0] == pytest.approx(0.0, abs=1e-9)
+
+
+def test_atmosphere_at_rest_transports_nothing(tmp_path):
+    f = _hadley_like(np.zeros_like(LAT))
+    path = _write(tmp_path / "rest.nc", f, _times(2, 0.25))
+    t = _table(engine.track([path], config.load(), metric_ids=METRICS))
+    lat, flag = _first(t, "SH", "energy_transport_max_lat")
+    assert np.isnan(lat) and flag == "weak_peak"
+    assert _first(t, "SH", "energy_transport_max")[0] == pytest.approx(0.0, abs=1e-9)
