@@ -159,7 +159,7 @@ class Plan:
             zonal_only = [m for m in metric_ids if not cat[m].sectors]
             if zonal_only and len(zonal_only) == len(metric_ids):
                 raise UsageError(f"{', '.join(zonal_only)} are defined for the full zonal mean only "
-                                 "(the streamfunction needs the whole latitude circle); drop --sector or choose "
+                                 "(the streamfunction, Fourier amplitudes and eddy fluxes need the whole latitude circle); drop --sector or choose "
                                  "sector metrics such as eddy_jet_lat")
         roles = {}
         for f in chosen:
