@@ -241,3 +241,27 @@ def test_atmosphere_at_rest_transports_nothing(tmp_path):
     lat, flag = _first(t, "SH", "energy_transport_max_lat")
     assert np.isnan(lat) and flag == "weak_peak"
     assert _first(t, "SH", "energy_transport_max")[0] == pytest.approx(0.0, abs=1e-9)
+
+
+def test_eddy_momentum_flux_per_ensemble_member(tmp_path):
+    # two members, the second with its eddy winds scaled by 0.5 each: [u'v'] scales by 0.25 (40 -> 10 m2 s-2)
+    w = _eddy_winds()
+    u2 = 20.0 + 0.5 * (w["ua"] - 20.0)
+    ua = np.stack([w["ua"], u2])
+    va = np.stack([w["va"], 0.5 * w["va"]])
+    times = _times(2, 1.0)
+    dims = ("time", "member", "plev", "lat", "lon")
+    ds = xr.Dataset({"ua": (dims, np.broadcast_to(ua[None], (2,) + ua.shape), {"standard_name": "eastward_wind", "units": "m s-1"}),
+                     "va": (dims, np.broadcast_to(va[None], (2,) + va.shape), {"standard_name": "northward_wind", "units": "m s-1"})},
+                    coords={"time": times, "member": ["r1", "r2"],
+                            "plev": ("plev", PLEV, {"units": "hPa", "axis": "Z"}),
+                            "lat": ("lat", LAT, {"units": "degrees_north"}), "lon": ("lon", LON, {"units": "degrees_east"})})
+    path = tmp_path / "ens.nc"
+    ds.to_netcdf(path, encoding={"time": {"units": "days since 2001-01-01", "calendar": "noleap"}})
+    out = engine.track([str(path)], config.load(), metric_ids=["eddy_momentum_flux_max", "eddy_momentum_flux_lat"])
+    c = out.columns
+    got = {(c["member"][i], c["hemisphere"][i], c["metric"][i]): c["value"][i] for i in range(len(c["metric"]))
+           if c["time"][i] == "2001-01-01"}
+    assert got[("r1", "NH", "eddy_momentum_flux_max")] == pytest.approx(40.0, abs=0.05)
+    assert got[("r2", "NH", "eddy_momentum_flux_max")] == pytest.approx(10.0, abs=0.02)
+    assert got[("r2", "SH", "eddy_momentum_flux_lat")] == pytest.approx(-35.0, abs=0.02)
