@@ -111,6 +111,7 @@ def _open_year_zero(path, engine, coder):
             try:
                 fixed[name] = coder.decode(v, name=name)
             except (ValueError, OverflowError):
+                ds.close()
                 return None
     if not fixed:
         ds.close()
