@@ -117,10 +117,10 @@ def eddy_momentum_reducer(slabs, plev, lon, masks, cfg):
     if u is None or v is None:
         out[..., 1, :] = 0.0
         return out
-    for s, m in enumerate(masks):
-        cov, frac = Z.zonal_covariance(u, v, m)
-        out[..., 0, s] = cov
-        out[..., 1, s] = frac
+    # the family is zonal only: the full circle (mask None, first) is reduced, the sectors stay NaN
+    cov, frac = Z.zonal_covariance(u, v, masks[0])
+    out[..., 0, 0] = cov
+    out[..., 1, 0] = frac
     return out
 
 
@@ -159,7 +159,7 @@ ENERGY_ROLES = ("va", "ta", "zg", "hus")
 def energy_reducer(slabs, plev, lon, masks, cfg):
     """In-task reduction for the energy transport on the levels all four roles share.
 
-    Returns ``(T, *extra, J, 5, S)``: zonal means over the band's longitudes of the column sums
+    Returns ``(T, *extra, J, 5, S)``: zonal means over all longitudes of the column sums
     ``sum w v E``, ``sum w v``, ``sum w E``, ``sum w`` (Pa-weighted, :func:`kernels.zonal.column_sums`;
     a longitude without valid levels contributes zeros) and the share of longitudes with data.
     """
@@ -173,12 +173,10 @@ def energy_reducer(slabs, plev, lon, masks, cfg):
     take = {r: np.take(slabs[r], idx[r], axis=-3) for r in ENERGY_ROLES}
     e = Z.moist_static_energy(take["ta"], take["zg"], take["hus"])
     sums = Z.column_sums(take["va"], e, levels * HPA)          # four (..., J, I)
-    has = sums[3] > 0
-    for s, m in enumerate(masks):
-        sel = (lambda a: a) if m is None else (lambda a, m=m: a[..., m])
-        for k in range(4):
-            out[..., k, s] = sel(sums[k]).mean(axis=-1)
-        out[..., 4, s] = sel(has).mean(axis=-1)
+    # the family is zonal only: the full circle (first mask) is reduced, the sectors stay NaN
+    for k in range(4):
+        out[..., k, 0] = sums[k].mean(axis=-1)
+    out[..., 4, 0] = (sums[3] > 0).mean(axis=-1)
     return out
 
 
