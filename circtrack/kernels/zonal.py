@@ -82,7 +82,10 @@ def layer_weights(p):
 def moist_static_energy(t, z, q):
     """``cp T + g z + L q`` in J kg-1 from temperature (K), geopotential height (m) and specific
     humidity (kg kg-1); NaN where any is missing."""
-    return CP_DRY * np.asarray(t, float) + GRAVITY * np.asarray(z, float) + LATENT_HEAT_VAPORIZATION * np.asarray(q, float)
+    e = np.multiply(np.asarray(t, float), CP_DRY)
+    e += GRAVITY * np.asarray(z, float)
+    e += LATENT_HEAT_VAPORIZATION * np.asarray(q, float)
+    return e
 
 
 def column_sums(v, e, p_pa):
@@ -94,11 +97,16 @@ def column_sums(v, e, p_pa):
     """
     v = np.asarray(v, dtype=np.float64)
     e = np.asarray(e, dtype=np.float64)
+    w = layer_weights(p_pa)
     ok = np.isfinite(v) & np.isfinite(e)
-    w = layer_weights(p_pa)[:, None, None] * ok
+    if ok.all():                                     # the usual case above the ground: no masking
+        sw = np.broadcast_to(w.sum(), v.shape[:-3] + v.shape[-2:])
+        return (np.einsum("...ljk,l->...jk", v * e, w), np.einsum("...ljk,l->...jk", v, w),
+                np.einsum("...ljk,l->...jk", e, w), sw)
     v0 = np.where(ok, v, 0.0)
     e0 = np.where(ok, e, 0.0)
-    return (np.sum(w * v0 * e0, axis=-3), np.sum(w * v0, axis=-3), np.sum(w * e0, axis=-3), np.sum(w, axis=-3))
+    return (np.einsum("...ljk,l->...jk", v0 * e0, w), np.einsum("...ljk,l->...jk", v0, w),
+            np.einsum("...ljk,l->...jk", e0, w), np.einsum("...ljk,l->...jk", ok.astype(np.float64), w))
 
 
 def fourier_amplitudes(y, lon, wavenumbers):

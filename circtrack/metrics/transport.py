@@ -170,7 +170,8 @@ def energy_reducer(slabs, plev, lon, masks, cfg):
     if levels.size < 2:
         out[..., 4, :] = 0.0
         return out
-    take = {r: np.take(slabs[r], idx[r], axis=-3) for r in ENERGY_ROLES}
+    take = {r: (slabs[r] if np.array_equal(idx[r], np.arange(slabs[r].shape[-3])) else np.take(slabs[r], idx[r], axis=-3))
+            for r in ENERGY_ROLES}
     e = Z.moist_static_energy(take["ta"], take["zg"], take["hus"])
     sums = Z.column_sums(take["va"], e, levels * HPA)          # four (..., J, I)
     # the family is zonal only: the full circle (first mask) is reduced, the sectors stay NaN
