@@ -76,3 +76,24 @@ def test_summer_poleward_migration(table, metric):
     sh_shift = _season(rows, metric, "SH", djf) - _season(rows, metric, "SH", jja)
     assert nh_shift > 2.0, nh_shift
     assert sh_shift > 2.0, sh_shift
+
+
+def test_through_the_command_line(tmp_path):
+    # the file as it ships, no edits: CSV with year-0 ISO times and a sidecar naming the calendar choice
+    import json
+
+    from click.testing import CliRunner
+
+    from circtrack.cli import main
+    from circtrack.output import sidecar_path
+
+    out = tmp_path / "coads.csv"
+    r = CliRunner().invoke(main, ["track", PATH, "-o", str(out), "--metrics", "subtropical_high_lat", "-q"])
+    assert r.exit_code == 0, r.output
+    lines = out.read_text().splitlines()
+    assert lines[0] == "source,time,hemisphere,sector,metric,value,units,flag"
+    assert len(lines) == 1 + 12 * 2
+    assert lines[1].split(",")[1].startswith("0000-01-")
+    side = json.loads(open(sidecar_path(str(out))).read())
+    assert side["calendar"] == "proleptic_gregorian"
+    assert "year 0" in side["inputs"][0]["found_by"]["time"]
