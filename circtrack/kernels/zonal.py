@@ -109,6 +109,16 @@ def column_sums(v, e, p_pa):
             np.einsum("...ljk,l->...jk", e0, w), np.einsum("...ljk,l->...jk", ok.astype(np.float64), w))
 
 
+def covers_circle(lon):
+    """True when the longitudes go round the whole circle: no cyclic gap wider than 1.5 times the
+    median spacing (a regional grid has one large gap)."""
+    lam = np.sort(np.mod(np.asarray(lon, float), 360.0))
+    if lam.size < 3:
+        return False
+    gaps = np.diff(np.concatenate([lam, [lam[0] + 360.0]]))
+    return bool(gaps.max() <= 1.5 * np.median(gaps))
+
+
 def fourier_amplitudes(y, lon, wavenumbers):
     """Amplitudes ``A_k`` of zonal wavenumbers ``k`` of ``y (..., I)`` on longitudes ``lon`` (degrees).
 

@@ -46,7 +46,8 @@ WAVE_METRICS = [
            "m s-1", "hemisphere",
            f"amplitude A_{k} of v(lon) = [v] + sum_k A_k cos(k lon - theta_k) at waves.level_hpa (300 hPa), "
            "per latitude (discrete Fourier transform weighted by the longitude spacing), cos(lat)-weighted mean "
-           "over waves.band (35-65 deg poleward); latitudes with any missing longitude are left out", WAVE_REF)
+           "over waves.band (35-65 deg poleward); latitudes with any missing longitude are left out; NaN (too_little_data) "
+           "when the grid does not go round the circle", WAVE_REF)
     for k in WAVENUMBERS
 ]
 
@@ -98,7 +99,7 @@ def planetary_wave_reducer(slabs, plev, lon, masks, cfg):
                         tolerance=cfg["run"]["level_tolerance_hpa"])
     lead = slabs["va"].shape[:-3]
     out = np.full(lead + (slabs["va"].shape[-2], len(WAVENUMBERS), len(masks)), np.nan)
-    if v is not None:
+    if v is not None and Z.covers_circle(lon):      # a regional grid has no zonal wavenumbers: NaN
         out[..., 0] = Z.fourier_amplitudes(v, lon, WAVENUMBERS)
     return out
 

@@ -131,3 +131,10 @@ def test_per_longitude_peak_on_window_edge_is_left_out():
     assert pos[0] == pytest.approx(45.0, abs=0.01) and np.isnan(pos[1])
     sh = Z.per_longitude_peak(u[::-1] * 1.0, lat, "SH", (15.0, 70.0), min_fraction=0.5)   # mirrored field
     assert sh[0] == pytest.approx(45.0, abs=0.01)
+
+
+def test_covers_circle():
+    assert Z.covers_circle(LON) and Z.covers_circle(LON - 180.0) and Z.covers_circle(LON + 20.0)
+    assert not Z.covers_circle(np.arange(-60.0, 40.1, 1.0))            # a regional grid
+    irregular = np.sort(np.concatenate([np.arange(0, 360, 10.0), [5.0, 15.0]]))
+    assert Z.covers_circle(irregular)

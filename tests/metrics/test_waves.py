@@ -104,3 +104,11 @@ def test_planetary_waves_are_zonal_only(tmp_path):
     path = _write(tmp_path / "w.nc", "va", np.cos(2 * LAM)[None, :].repeat(LAT.size, 0))
     with pytest.raises(UsageError):
         engine.track([path], config.load(), metric_ids=["planetary_wave_2_amplitude"], sectors=[("east", 0.0, 90.0)])
+
+
+def test_regional_grid_has_no_planetary_waves(tmp_path):
+    lon = np.arange(-60.0, 40.1, 10.0)
+    path = _write(tmp_path / "reg.nc", "va", np.cos(np.deg2rad(lon))[None, :].repeat(LAT.size, 0), lon=lon)
+    r = _rows(engine.track([path], config.load(), metric_ids=["planetary_wave_1_amplitude"]))
+    val, flag = r[("NH", "zonal", "planetary_wave_1_amplitude")]
+    assert np.isnan(val) and flag == "too_little_data"
