@@ -47,7 +47,8 @@ ENERGY_METRICS = [
            "F = 2 pi a cos(lat)/g (integral [v E] dp - M_net E_mean), E = cp T + g z + L q, with the barotropic mass "
            "correction: M_net = integral [v] dp is the net column mass flux across the latitude circle and E_mean "
            "the mass-weighted mean of E over the section (no net mass crosses the latitude); integral from the top "
-           "to the lowest level, below-ground points left out; 3-point parabola (its latitude NaN, flag weak_peak, "
+           "to the lowest level, below-ground points left out; NaN (too_little_data) on grids that do not go round "
+           "the circle; 3-point parabola (its latitude NaN, flag weak_peak, "
            "below energy.min_transport_pw); time-mean input gives the "
            "mean-circulation and stationary-eddy part only (flag time_mean_input)", ENERGY_REF),
     Metric("energy_transport_max_lat", "Latitude of the peak poleward atmospheric energy transport", "degrees_north",
@@ -167,7 +168,7 @@ def energy_reducer(slabs, plev, lon, masks, cfg):
     lead = slabs["va"].shape[:-3]
     nj = slabs["va"].shape[-2]
     out = np.full(lead + (nj, 5, len(masks)), np.nan)
-    if levels.size < 2:
+    if levels.size < 2 or not Z.covers_circle(lon):   # the transport crosses the whole latitude circle
         out[..., 4, :] = 0.0
         return out
     take = {r: (slabs[r] if np.array_equal(idx[r], np.arange(slabs[r].shape[-3])) else np.take(slabs[r], idx[r], axis=-3))

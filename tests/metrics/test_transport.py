@@ -265,3 +265,21 @@ def test_eddy_momentum_flux_per_ensemble_member(tmp_path):
     assert got[("r1", "NH", "eddy_momentum_flux_max")] == pytest.approx(40.0, abs=0.05)
     assert got[("r2", "NH", "eddy_momentum_flux_max")] == pytest.approx(10.0, abs=0.02)
     assert got[("r2", "SH", "eddy_momentum_flux_lat")] == pytest.approx(-35.0, abs=0.02)
+
+
+def test_energy_transport_needs_the_whole_circle(tmp_path):
+    f = {k: np.asarray(v)[..., :12] for k, v in _hadley_like(_sigma()).items()}      # 0-110 E only
+    times = _times(2, 0.25)
+    dims = ("time", "plev", "lat", "lon")
+    attrs = {"va": ("northward_wind", "m s-1"), "ta": ("air_temperature", "K"), "zg": ("geopotential_height", "m"),
+             "hus": ("specific_humidity", "1")}
+    ds = xr.Dataset({k: (dims, np.broadcast_to(v[None], (2,) + v.shape), {"standard_name": attrs[k][0], "units": attrs[k][1]})
+                     for k, v in f.items()},
+                    coords={"time": times, "plev": ("plev", PLEV, {"units": "hPa", "axis": "Z"}),
+                            "lat": ("lat", LAT, {"units": "degrees_north"}),
+                            "lon": ("lon", LON[:12], {"units": "degrees_east"})})
+    path = tmp_path / "regional.nc"
+    ds.to_netcdf(path, encoding={"time": {"units": "days since 2001-01-01", "calendar": "noleap"}})
+    t = _table(engine.track([str(path)], config.load(), metric_ids=METRICS))
+    val, flag = _first(t, "NH", "energy_transport_max")
+    assert np.isnan(val) and flag == "too_little_data"
