@@ -180,8 +180,9 @@ def detect(ds, path, overrides=None) -> Detected:
         det.times = np.asarray(tv.values)
         det.calendar = str(tv.encoding.get("calendar", tv.attrs.get("calendar", "standard")))
         if det.coords["time"] in str(ds.attrs.get("_circtrack_year_zero", "")).split(","):
-            det.why["time"] = (f"'{det.coords['time']}' counts from year 0 ('{_attr(tv, 'units') or tv.encoding.get('units', '')}'), "
-                               f"which its calendar lacks; decoded as {YEAR_ZERO_CALENDAR} with year 0 (climatology)")
+            units = _attr(tv, "units") or tv.encoding.get("units", "")
+            det.why["time"] = (f"'{det.coords['time']}' counts from year 0 ('{units}'), which its calendar lacks; "
+                               f"decoded as {YEAR_ZERO_CALENDAR} with year 0 (climatology)")
         if det.times.size and not hasattr(det.times.flat[0], "calendar"):
             raise InputError(f"{path}: time variable '{det.coords['time']}' has no decodable units "
                              f"('{_attr(tv, 'units')}'); give it CF units such as 'days since 2000-01-01'")
