@@ -131,6 +131,12 @@ def close_cached():
                 g.popitem()[1].close()
 
 
+def _wants_lat(fn):
+    """A reducer may take the ascending latitudes as a keyword ``lat`` (e.g. to locate a maximum)."""
+    import inspect
+    return "lat" in inspect.signature(fn).parameters
+
+
 def reduce_chunk(job):
     """One task: read time steps ``t0:t1`` of every role of one file and reduce them.
 
@@ -154,7 +160,8 @@ def reduce_chunk(job):
         as64 = {r: a.astype(np.float64, copy=False) for r, a in slabs.items()}
         plev = {r: rd.plev for r, rd in job["readers"].items()}
         for name, fn in job["reducers"].items():
-            extras[name] = np.asarray(fn(as64, plev, job["lon"], job["masks"], job["cfg"]), dtype=np.float64)
+            kw = {"lat": job["lat"]} if _wants_lat(fn) else {}     # latitudes for per-longitude features
+            extras[name] = np.asarray(fn(as64, plev, job["lon"], job["masks"], job["cfg"], **kw), dtype=np.float64)
     return {"stats": stats, "extras": extras}
 
 
@@ -180,7 +187,7 @@ class Plan:
             zonal_only = [m for m in metric_ids if not cat[m].sectors]
             if zonal_only and len(zonal_only) == len(metric_ids):
                 raise UsageError(f"{', '.join(zonal_only)} are defined for the full zonal mean only "
-                                 "(the streamfunction needs the whole latitude circle); drop --sector or choose "
+                                 "(the streamfunction, Fourier amplitudes and eddy fluxes need the whole circle of longitudes); drop --sector or choose "
                                  "sector metrics such as eddy_jet_lat")
         roles = {}
         for f in chosen:
@@ -526,7 +533,7 @@ class Run:
         inf = self.infos[k]
         return {"path": inf.path, "cfg": self.cfg, "readers": inf.readers, "t0": a, "t1": b,
                 "masks": self.masks_of[k], "lon": np.asarray(inf.detected.lon, float),
-                "reducers": self.plan.reducers}
+                "lat": np.sort(np.asarray(inf.detected.lat, float)), "reducers": self.plan.reducers}
 
     def tasks(self):
         """The dask.delayed reduce calls of every chunk; building them reads nothing."""

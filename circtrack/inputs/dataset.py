@@ -8,6 +8,7 @@ time inside the worker that reduces it.
 from __future__ import annotations
 
 import os
+import re
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -69,6 +70,10 @@ def open_dataset(path, cfg) -> xr.Dataset:
     except ValueError as e:
         # xarray's advice (decode_times=False, install cftime) is for library users, not for this command
         msg = str(e).splitlines()[0].split(" Try opening", 1)[0]
+        if "time" in msg.lower() or "zero" in msg.lower():
+            ds = _open_year_zero(path, engine, coder)
+            if ds is not None:
+                return ds
         if "time" in msg.lower() or "calendar" in msg.lower() or "units" in msg.lower():
             raise InputError(f"{path}: the time axis cannot be decoded ({msg}); fix its 'units'/'calendar' "
                              "attributes (e.g. 'days since 1979-01-01') or convert the file with CF time units")
@@ -119,6 +124,48 @@ def _check_classic_complete(path):
     if problem is not None:
         raise InputError(f"{path}: netCDF classic file shorter than its header says ({os.path.getsize(path)} "
                          f"bytes; {problem}); the file is truncated: re-copy it, or pass --on-bad-file skip")
+
+
+YEAR_ZERO_CALENDAR = "proleptic_gregorian"
+_YEAR_ZERO = re.compile(r"\bsince\s+0{1,4}-")
+_MIXED_CALENDARS = {"", "standard", "gregorian", "julian"}
+
+
+def year_zero_time(units, calendar):
+    """True for a time axis counted from year 0 in a calendar that has no year 0 (CF 'standard',
+    'gregorian', 'julian', or no calendar attribute), the usual layout of climatology files
+    (e.g. 'hour since 0000-01-01 00:00:00')."""
+    return bool(_YEAR_ZERO.search(str(units))) and str(calendar).strip().lower() in _MIXED_CALENDARS
+
+
+def _open_year_zero(path, engine, coder):
+    """Reopen a file whose time axis counts from year 0 and decode it in the proleptic Gregorian
+    calendar with astronomical year numbering (year 0 exists, as ISO 8601 has it); None when the
+    failure had another cause. The decision is recorded by :func:`detect` (``why['time']``)."""
+    try:
+        ds = xr.open_dataset(path, engine=engine, chunks=None, cache=False, decode_times=False,
+                             decode_timedelta=False)
+    except (ValueError, OSError, RuntimeError, KeyError, IndexError, TypeError):
+        return None
+    fixed = {}
+    for name, var in ds.variables.items():
+        if year_zero_time(var.attrs.get("units", ""), var.attrs.get("calendar", "")):
+            v = var.copy()
+            v.attrs["calendar"] = YEAR_ZERO_CALENDAR
+            try:
+                fixed[name] = coder.decode(v, name=name)
+            except (ValueError, OverflowError):
+                ds.close()
+                return None
+    if not fixed:
+        ds.close()
+        return None
+    ds = ds.assign_coords({k: v for k, v in fixed.items() if k in ds.coords})
+    for k, v in fixed.items():
+        if k not in ds.coords:
+            ds[k] = v
+    ds.attrs["_circtrack_year_zero"] = ",".join(fixed)
+    return ds
 
 
 def _attr(obj, name):
@@ -179,6 +226,10 @@ def detect(ds, path, overrides=None) -> Detected:
         if det.times.size == 0:
             raise InputError(f"{path}: the time axis '{det.coords['time']}' holds no time steps; the file may be "
                              "incomplete: re-copy it, or pass --on-bad-file skip")
+        if det.coords["time"] in str(ds.attrs.get("_circtrack_year_zero", "")).split(","):
+            units = _attr(tv, "units") or tv.encoding.get("units", "")
+            det.why["time"] = (f"'{det.coords['time']}' counts from year 0 ('{units}'), which its calendar lacks; "
+                               f"decoded as {YEAR_ZERO_CALENDAR} with year 0 (climatology)")
         if det.times.size and not hasattr(det.times.flat[0], "calendar"):
             raise InputError(f"{path}: time variable '{det.coords['time']}' has no decodable units "
                              f"('{_attr(tv, 'units')}'); give it CF units such as 'days since 2000-01-01'")
