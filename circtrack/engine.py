@@ -91,8 +91,9 @@ def sector_masks(lon, sectors):
 _OPEN = {}                # (process id, thread id) -> {path: open dataset}, least recently used first
 _OPEN_LOCK = threading.Lock()
 _OPEN_MAX = 2             # open files per thread of a worker
-# netCDF-C/HDF5 are not thread-safe while opening and closing files (xarray locks only the data
-# reads), so threads of one process open and close one at a time
+# netCDF-C/HDF5 are not thread-safe (xarray locks its data reads, but not every open, close or
+# attribute read), and HDF5 serialises inside a process anyway: threads of one process open, read
+# and close under this lock and only reduce in parallel
 _NC_LOCK = threading.RLock()
 
 
@@ -143,17 +144,17 @@ def reduce_chunk(job):
     ``job`` is a plain dict (path, cfg, readers, t0, t1, masks, reducers) so it pickles cheaply.
     Returns ``{"stats": {role: (t, *extra, [L], J, S, 2)}, "extras": {name: (t, *extra, ..., S)}}``.
     """
-    ds = _open_cached(job["path"], job["cfg"])
     slabs = {}
-    try:
-        for role, reader in job["readers"].items():
-            slabs[role] = reader.read(ds, job["t0"], job["t1"])
-    except Exception:
-        # a damaged file: drop the handle so a retry reopens it, and let the caller name the file
-        _forget(job["path"])
-        with _NC_LOCK:
+    with _NC_LOCK:     # one netCDF/HDF5 call at a time per process; the reductions below run freely
+        ds = _open_cached(job["path"], job["cfg"])
+        try:
+            for role, reader in job["readers"].items():
+                slabs[role] = reader.read(ds, job["t0"], job["t1"])
+        except Exception:
+            # a damaged file: drop the handle so a retry reopens it, and let the caller name the file
+            _forget(job["path"])
             ds.close()
-        raise
+            raise
     stats = {role: _zonal_block(a, job["masks"]) for role, a in slabs.items()}
     extras = {}
     if job["reducers"]:
