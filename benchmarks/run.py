@@ -148,7 +148,7 @@ def approaches(files, outdir):
     out = []
     out.append(("baseline A: netCDF4 + numpy, file by file", [py, "-c", BASELINE_A, *files]))
     out.append(("baseline B: xarray open_mfdataset + mean", [py, "-c", BASELINE_B, *files]))
-    out.append(("circtrack track (default threads)",
+    out.append(("circtrack track (default: worker processes)",
                 ct_cmd + ["track", *files, "-o", str(outdir / "track_threads.csv"), "--metrics", METRICS, "-q"]))
     out.append(("circtrack track --workers 1",
                 ct_cmd + ["track", *files, "-o", str(outdir / "track_w1.csv"), "--metrics", METRICS, "-q",
@@ -317,7 +317,7 @@ def main(argv=None):
                 log(f"  scaling {n} month(s): rc={m['rc']} wall={m['wall']:.1f}s maxrss={m['maxrss'] / 1e9:.2f}GB")
                 rows.append((n, m))
             r1 = rows[0][1]["maxrss"]
-            report += [f"### memory vs record length ({comp}, circtrack track, default threads)", "",
+            report += [f"### memory vs record length ({comp}, circtrack track, default worker processes)", "",
                        markdown([(str(n), f"{m['wall']:.1f}" if m["rc"] == 0 else f"FAILED rc={m['rc']}",
                                   f"{m['maxrss'] / 1e9:.2f}", f"{m['maxrss'] / r1:.2f}") for n, m in rows],
                                 head=("months", "wall s", "peak RSS GB", "RSS ratio to 1 month")), ""]
