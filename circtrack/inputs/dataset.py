@@ -65,8 +65,10 @@ def open_dataset(path, cfg) -> xr.Dataset:
         _check_classic_complete(path)
     coder = xr.coders.CFDatetimeCoder(use_cftime=True)
     try:
+        # no pandas indexes: circtrack only reads coordinate values, and building indexes
+        # took two thirds of the time of opening a small file
         ds = xr.open_dataset(path, engine=engine, chunks=None, cache=False,
-                             decode_times=coder, decode_timedelta=False)
+                             decode_times=coder, decode_timedelta=False, create_default_indexes=False)
     except ValueError as e:
         # xarray's advice (decode_times=False, install cftime) is for library users, not for this command
         msg = str(e).splitlines()[0].split(" Try opening", 1)[0]
@@ -144,7 +146,7 @@ def _open_year_zero(path, engine, coder):
     failure had another cause. The decision is recorded by :func:`detect` (``why['time']``)."""
     try:
         ds = xr.open_dataset(path, engine=engine, chunks=None, cache=False, decode_times=False,
-                             decode_timedelta=False)
+                             decode_timedelta=False, create_default_indexes=False)
     except (ValueError, OSError, RuntimeError, KeyError, IndexError, TypeError):
         return None
     fixed = {}
