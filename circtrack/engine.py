@@ -166,6 +166,28 @@ def reduce_chunk(job):
     return {"stats": stats, "extras": extras}
 
 
+def reduce_chunks(jobs):
+    """One task over several small chunks (e.g. one-day files), to keep the per-task cost small."""
+    return [reduce_chunk(j) for j in jobs]
+
+
+def group_chunks(need, sizes, target, min_groups):
+    """Consecutive chunks grouped to about ``target`` time steps per task, but into at least
+    ``min_groups`` tasks when there are that many chunks (so every worker has work)."""
+    total = sum(sizes[c] for c in need)
+    per = max(1, min(target, -(-total // max(1, min_groups))))
+    groups, cur, n = [], [], 0
+    for c in need:
+        cur.append(c)
+        n += sizes[c]
+        if n >= per:
+            groups.append(cur)
+            cur, n = [], 0
+    if cur:
+        groups.append(cur)
+    return groups
+
+
 # --------------------------------------------------------------------------- planning
 @dataclass
 class Plan:
@@ -348,7 +370,7 @@ class _Runner:
     def run(self, fn, jobs):
         if not jobs:
             return []
-        tasks = [dask.delayed(fn, pure=False)(j) for j in jobs]
+        tasks = [dask.delayed(fn, pure=False, traverse=False)(j) for j in jobs]
         if self.client is not None:
             return list(dask.compute(*tasks))
         if self.mode == "processes":
@@ -546,7 +568,7 @@ class Run:
 
     def tasks(self):
         """The dask.delayed reduce calls of every chunk; building them reads nothing."""
-        return [dask.delayed(reduce_chunk, pure=False)(self.job(c)) for c in range(len(self.chunks))]
+        return [dask.delayed(reduce_chunk, pure=False, traverse=False)(self.job(c)) for c in range(len(self.chunks))]
 
     # ---------------------------------------------------------------- execution
     def _reduce_batch(self, bi, runner, cache, last_use, batch_of_pos):
@@ -555,8 +577,10 @@ class Run:
         positions = self.keep[t0:t1]
         mine = [(d, p) for d, p in zip(self.dropped, self.partner) if batch_of_pos[d] == bi]
         need = sorted({int(self.chunk_of[q]) for q in list(positions) + [d for d, _ in mine]} - set(cache))
+        sizes = {c: self.chunks[c][2] - self.chunks[c][1] for c in need}
+        groups = group_chunks(need, sizes, int(self.cfg["run"]["time_chunk"]), 2 * runner.nproc)
         try:
-            results = runner.run(reduce_chunk, [self.job(c) for c in need])
+            results = [r for rs in runner.run(reduce_chunks, [[self.job(c) for c in g] for g in groups]) for r in rs]
         except (OSError, RuntimeError, ValueError, KeyError, IndexError) as e:
             involved = sorted({self.infos[self.chunks[c][0]].path for c in need})
             msg = str(e).splitlines()[0] if str(e) else type(e).__name__
