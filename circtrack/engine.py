@@ -378,7 +378,8 @@ class _Runner:
                 close_cached()   # the children must not inherit open HDF5 handles
                 self.pool = ProcessPoolExecutor(max_workers=self.nproc,
                                                 mp_context=multiprocessing.get_context("fork"))
-            return list(dask.compute(*tasks, scheduler="processes", pool=self.pool))
+            # chunksize=1: dask would otherwise hand up to 6 tasks to one worker as a single batch
+            return list(dask.compute(*tasks, scheduler="processes", pool=self.pool, chunksize=1))
         return list(dask.compute(*tasks, scheduler=self.mode))
 
     def close(self):
@@ -553,7 +554,7 @@ class Run:
         self.masks_of = [sector_masks(i.detected.lon, sectors) for i in infos]
         nt = self.times.size
         self.lowpass = _lowpass_setup(cfg, self.times, plan, infos[0].path)
-        per_batch = int(cfg["run"].get("batch_time_steps") or 0) or tc * max(4, 2 * (os.cpu_count() or 1))
+        per_batch = int(cfg["run"].get("batch_time_steps") or 0) or tc * max(8, 4 * (os.cpu_count() or 1))
         if self.lowpass:
             per_batch = max(per_batch, self.lowpass.half_width)   # the halo fits in one neighbour
         self.batches = [(b0, min(nt, b0 + per_batch)) for b0 in range(0, nt, per_batch)]

@@ -199,3 +199,22 @@ def test_progress_lines_in_logs_and_bar_on_terminals(monkeypatch):
     r.step(100, 100)
     r.line("x")
     assert quiet.getvalue() == ""
+
+
+def _pid_after_a_nap(job):
+    import os
+    import time
+
+    time.sleep(0.3)
+    return [os.getpid()]
+
+
+def test_process_pool_runs_tasks_in_parallel_workers():
+    cfg = C.load(None)
+    cfg["run"]["processes"] = 2
+    runner = engine._Runner(cfg, 4)
+    try:
+        pids = runner.run(_pid_after_a_nap, [1, 2, 3, 4])
+    finally:
+        runner.close()
+    assert runner.mode == "processes" and len({p[0] for p in pids}) == 2   # not one batch in one worker
