@@ -111,10 +111,11 @@ def reduce_chunk(job):
     Returns ``{"stats": {role: (t, *extra, [L], J, S, 2)}, "extras": {name: (t, *extra, ..., S)}}``.
     """
     ds = _open_cached(job["path"], job["cfg"])
-    slabs = {}
+    slabs, notes = {}, []
     try:
         for role, reader in job["readers"].items():
-            slabs[role] = reader.read(ds, job["t0"], job["t1"])
+            slabs[role], note = reader.read_noted(ds, job["t0"], job["t1"])
+            notes.append(note)
     except Exception:
         # a damaged file: drop the handle so a retry reopens it, and let the caller name the file
         _OPEN.pop(job["path"], None)
@@ -127,7 +128,8 @@ def reduce_chunk(job):
         plev = {r: rd.plev for r, rd in job["readers"].items()}
         for name, fn in job["reducers"].items():
             extras[name] = np.asarray(fn(as64, plev, job["lon"], job["masks"], job["cfg"]), dtype=np.float64)
-    return {"stats": stats, "extras": extras}
+    # per time step layout notes (e.g. provisional_data), joined into the rows' flags
+    return {"stats": stats, "extras": extras, "notes": {"time": D.merge_notes(notes)}}
 
 
 # --------------------------------------------------------------------------- planning
@@ -508,6 +510,7 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
     wanted = set(plan.metric_ids)
     cols = {k: [] for k in ["t", "e", "hemisphere", "sector", "metric", "value", "flag"]}
     step_days = _time_step_days(times)
+    step_notes = np.full(times.size, "", dtype=object)
     cache = {}
     runner = _Runner(cfg, len(chunks))
     try:
@@ -529,6 +532,7 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
                                 repeat_policy)
             computed = {r: _gather(cache, "stats", r, positions, chunk_of, chunks, starts) for r in roles}
             xtra = {n: _gather(cache, "extras", n, positions, chunk_of, chunks, starts) for n in plan.reducers}
+            step_notes[t0:t1] = _gather(cache, "notes", "time", positions, chunk_of, chunks, starts)
             for c in [c for c in cache if last_use[c] <= bi]:
                 del cache[c]
             bt = t1 - t0
@@ -581,13 +585,17 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
     out["value"] = flat["value"].astype(float)
     out["units"] = np.array([cat[m].units for m in flat["metric"]], dtype=object)
     out["flag"] = flat["flag"]
+    if nt and flat["t"].size and (step_notes != "").any():
+        row_notes = step_notes[flat["t"]]
+        noted = row_notes != ""
+        out["flag"] = np.where(noted, flat["flag"].astype(str).astype(object) + ";" + row_notes, flat["flag"])
     prov = {
         "inputs": [{**_stat(i.path), "variables": i.detected.variables, "units": i.detected.units,
                     "found_by": i.detected.why, "time_steps": int(i.detected.times.size),
                     "first_time": iso_time(i.detected.times[0]) if i.detected.times.size else None,
                     "last_time": iso_time(i.detected.times[-1]) if i.detected.times.size else None,
                     "pressure_levels_hpa": {r: (None if v is None else [float(x) for x in v]) for r, v in i.plev.items()},
-                    "pressure_units_in_file": i.detected.plev_units}
+                    "pressure_units_in_file": i.detected.plev_units, "layout": i.detected.layout}
                    for i in infos],
         "skipped_inputs": skipped,
         "repeated_time_steps_dropped": [{"time": iso_time(times_all[k]), "path": infos[file_of[k]].path,
@@ -599,6 +607,8 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
         "metrics": plan.metric_ids,
         "sectors": {n: [a, b] for n, a, b in sectors},
         "extra_key_columns": extra_names,
+        "time_step_notes": {code: [iso[k] for k in range(nt) if code in str(step_notes[k]).split(";")]
+                            for code in sorted({c for n in step_notes for c in str(n).split(";") if c})},
     }
     return Outcome(out, ["source", "time", *extra_names, "hemisphere", "sector", "metric"], prov,
                    flat["t"])

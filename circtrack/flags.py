@@ -9,4 +9,5 @@ FLAGS = {
     "level_missing": "a pressure level the metric needs lies outside the data's levels; value is NaN",
     "no_half_max": "the wind does not fall to half its maximum on one side of the jet; width is NaN",
     "cells_out_of_order": "the southern cell's minimum lies north of the northern cell's maximum; boundary is NaN",
+    "provisional_data": "appended after ';' (e.g. 'ok;provisional_data'): the time step comes from a provisional data stream (expver other than 1) because the final one has no data there",
 }
