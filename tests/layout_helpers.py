@@ -43,8 +43,17 @@ def keyed(rows, ncols=8):
     return out
 
 
-def assert_rows_close(rows, base_rows, atol_lat=0.05, rtol=1e-3, same_flags=True):
+# The synthetic NH Hadley edge sits exactly on a grid latitude (28 deg), and hadley_rossby_number
+# averages over the latitudes equatorward of the edge, so a perturbation of 1e-5 m/s can add or drop
+# that latitude and move the number by ~5 %: comparisons of perturbed fields leave it out.
+EDGE_SENSITIVE = ("hadley_rossby_number",)
+
+
+def assert_rows_close(rows, base_rows, atol_lat=0.05, rtol=1e-3, same_flags=True, skip=EDGE_SENSITIVE):
     """Same keys and flags; values within ``atol_lat`` (degrees) or ``rtol`` (everything else)."""
+    rows = [r for r in rows if r.split(",")[-4] not in skip]
+    base_rows = [r for r in base_rows if r.split(",")[-4] not in skip]
+    assert rows and base_rows
     a, b = keyed(rows), keyed(base_rows)
     assert a.keys() == b.keys()
     for k in b:

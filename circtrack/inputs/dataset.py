@@ -10,6 +10,7 @@ from __future__ import annotations
 import hashlib
 import os
 import tempfile
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -111,8 +112,11 @@ def open_dataset(path, cfg) -> xr.Dataset:
     coder = xr.coders.CFDatetimeCoder(use_cftime=True)
     try:
         try:
-            return xr.open_dataset(path, engine=engine, chunks=None, cache=False,
-                                   decode_times=coder, decode_timedelta=False, **extra)
+            with warnings.catch_warnings():
+                # stores without consolidated metadata are read fine, only their opening is slower
+                warnings.filterwarnings("ignore", message="Failed to open Zarr store with consolidated metadata")
+                return xr.open_dataset(path, engine=engine, chunks=None, cache=False,
+                                       decode_times=coder, decode_timedelta=False, **extra)
         except ValueError as e:
             if "months since" not in str(e).lower():
                 raise
