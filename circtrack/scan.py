@@ -29,10 +29,12 @@ def report(paths, cfg, overrides) -> str:
     files = expand(paths)
     lines = []
     dets, bad = [], []
+    det_dims = {}
     for p in files:
         try:
             ds = D.open_dataset(p, cfg)
             dets.append((D.detect(ds, p, overrides), sorted(map(str, ds.data_vars))))
+            det_dims[p] = [str(d) for d in ds.dims]
             ds.close()
         except InputError as e:
             bad.append(str(e))
@@ -48,6 +50,19 @@ def report(paths, cfg, overrides) -> str:
     det, names = dets[0]
     lines.append(f"first input: {det.path}")
     lines.append(f"  grid: {_grid(det)}")
+    lines.append("  coordinates: " + "; ".join(
+        f"{k} = '{det.coords[k]}' ({det.coord_why.get(k, '')})" for k in ("time", "lat", "lon", "plev") if k in det.coords))
+    for key, what, unit in (("time", "time", "days since 2000-01-01"), ("lat", "latitude", "degrees_north"),
+                            ("lon", "longitude", "degrees_east")):
+        if key not in det.coords:
+            spare = [d for d in det_dims.get(det.path, []) if d not in det.coords.values()]
+            problem = det.problems.get(key, "not found by name, standard_name, axis or units")
+            lines.append(f"  {what} axis: {problem}; add --var {key}=DIM  or in a config file:  [variables] {key} = \"DIM\""
+                         f"  (or give it units '{unit}')" + (f"; dimensions without a part: {', '.join(spare)}" if spare else ""))
+    for what, note in det.layout.items():
+        lines.append(f"  {what}: {note}")
+    if det.problems.get("vertical"):
+        lines.append(f"  vertical axis: {det.problems['vertical']}")
     ntime = sum(d.times.size for d, _ in dets if d.times is not None)
     times = [d.times for d, _ in dets if d.times is not None and d.times.size]
     if times:
@@ -62,8 +77,10 @@ def report(paths, cfg, overrides) -> str:
     lines.append("variables found:")
     for role, rule in VARIABLES.items():
         if role in det.variables:
-            extra = f"; other candidates not used: {', '.join(det.others[role])}" if det.others.get(role) else ""
-            lines.append(f"  {role:8s} = '{det.variables[role]}' ({det.why[role]}; units '{det.units.get(role, '')}'){extra}")
+            lines.append(f"  {role:8s} = '{det.variables[role]}' ({det.why[role]}; units '{det.units.get(role, '')}')")
+            if det.others.get(role):
+                lines.append(f"  {'':8s}   to use another, add --var {role}={det.others[role][0]}  or in a config file:  "
+                             f"[variables] {role} = \"{det.others[role][0]}\"")
     lines.append("metrics:")
     missing_roles = set()
     for fam in registry.families().values():
@@ -80,8 +97,11 @@ def report(paths, cfg, overrides) -> str:
         lines.append("to run the rest, name the missing variables:")
         for r in sorted(missing_roles):
             hint = det.problems.get(r, "")
-            lines.append(f"  {r} ({VARIABLES[r]['long']}): add --var {r}=NAME  or in a config file:  "
-                         f"[variables] {r} = \"NAME\"" + (f"  ({hint})" if hint else ""))
+            fits = [t.split("=", 1)[1] for t in hint.split(": ", 1)[-1].split(" or ") if t.startswith(f"--var {r}=")] \
+                if "fit" in hint else []
+            name = fits[0] if len(fits) == 1 else "NAME"
+            lines.append(f"  {r} ({VARIABLES[r]['long']}): add --var {r}={name}  or in a config file:  "
+                         f"[variables] {r} = \"{name}\"" + (f"  ({hint})" if hint else ""))
         if spare:
             lines.append(f"  unassigned variables in the file: {', '.join(spare)}")
     return "\n".join(lines)

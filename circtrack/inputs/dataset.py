@@ -392,6 +392,7 @@ def detect(ds, path, overrides=None) -> Detected:
         core.add(det.streams["name"])
     for role, rule in VARIABLES.items():
         _detect_role(ds, det, role, rule, overrides.get(role))
+    _suggest(ds, det)
     extra = set()
     for role, name in det.variables.items():
         for d in ds[name].dims:
@@ -460,6 +461,37 @@ def _detect_role(ds, det, role, rule, override):
                 reasons.append(f"'{f[2]}' ({f[3]}): same rank, '{best[2]}' comes first alphabetically")
         det.why[role] += "; chosen over " + "; ".join(reasons)
     det.units[role] = _attr(ds[best[2]], "units")
+
+
+def _suggest(ds, det):
+    """For roles not found: unassigned variables whose units and shape fit, as the exact line to add."""
+    lat, lon, plev = det.coords.get("lat"), det.coords.get("lon"), det.coords.get("plev")
+    if lat is None or lon is None:
+        return
+    assigned = set(det.variables.values()) | {n for names in det.others.values() for n in names}
+    for role, rule in VARIABLES.items():
+        if role in det.variables:
+            continue
+        fits = []
+        for name in ds.data_vars:
+            v = ds[name]
+            if name in assigned or lat not in v.dims or lon not in v.dims:
+                continue
+            has_lev = plev is not None and plev in v.dims and ds.sizes[plev] > 1
+            if has_lev != rule["levels"] or U.conversion(_attr(v, "units"), rule["kind"]) is None:
+                continue
+            if not _attr(v, "units"):          # no units: "fits" any dimensionless kind, too weak a hint
+                continue
+            if rule["kind"] != "speed" and U.conversion(_attr(v, "units"), "speed") is not None:
+                continue                       # "m/s" is a wind before it is a water flux
+            fits.append(str(name))
+        if fits:
+            where = "on pressure levels" if rule["levels"] else "without a level axis"
+            lines = " or ".join(f"--var {role}={n}" for n in fits)
+            hint = (f"{', '.join(repr(n) for n in fits)} {'fits' if len(fits) == 1 else 'fit'} by units and "
+                    f"shape ({where}): {lines}")
+            det.problems[role] = (f"{det.problems[role]}; {hint}" if role in det.problems
+                                  else f"no name or standard_name matched; {hint}")
 
 
 def model_level_targets(det, levels_hpa, cfg):
