@@ -14,6 +14,7 @@ batch in numpy, and tidy rows come out. Memory is bounded by the batch, never by
 from __future__ import annotations
 
 import collections
+import copy
 import multiprocessing
 import os
 import sys
@@ -27,7 +28,7 @@ import numpy as np
 from circtrack import registry
 from circtrack.errors import InputError, UsageError
 from circtrack.inputs import dataset as D
-from circtrack.inputs.files import expand
+from circtrack.inputs.files import expand, same_period_siblings
 from circtrack.inputs.rules import VARIABLES
 from circtrack.metrics.common import Fields
 
@@ -89,11 +90,11 @@ _OPEN = collections.OrderedDict()   # per process: path -> open dataset (a few, 
 _OPEN_MAX = 2
 
 
-def _open_cached(path, cfg):
+def _open_cached(path, cfg, keep=_OPEN_MAX):
     ds = _OPEN.pop(path, None)
     if ds is None:
         ds = D.open_dataset(path, cfg)
-        while len(_OPEN) >= _OPEN_MAX:
+        while len(_OPEN) >= max(_OPEN_MAX, keep):
             _OPEN.popitem(last=False)[1].close()
     _OPEN[path] = ds
     return ds
@@ -110,11 +111,14 @@ def reduce_chunk(job):
     ``job`` is a plain dict (path, cfg, readers, t0, t1, masks, reducers) so it pickles cheaply.
     Returns ``{"stats": {role: (t, *extra, [L], J, S, 2)}, "extras": {name: (t, *extra, ..., S)}}``.
     """
-    ds = _open_cached(job["path"], job["cfg"])
+    # variables may come from several files with the same time steps (one variable per file)
+    paths = list(dict.fromkeys([job["path"]] + [r.path for r in job["readers"].values()]))
+    ds = _open_cached(job["path"], job["cfg"], keep=len(paths))
     slabs, notes = {}, []
     try:
         for role, reader in job["readers"].items():
-            slabs[role], note = reader.read_noted(ds, job["t0"], job["t1"])
+            rds = ds if reader.path == job["path"] else _open_cached(reader.path, job["cfg"], keep=len(paths))
+            slabs[role], note = reader.read_noted(rds, job["t0"], job["t1"])
             notes.append(note)
     except Exception:
         # a damaged file: drop the handle so a retry reopens it, and let the caller name the file
@@ -206,16 +210,70 @@ def _prepare_open(ds, path, plan, cfg, overrides):
             raise InputError(f"{path}: no {'latitude' if key == 'lat' else 'longitude'} axis found; name it "
                              f"'{key}' or give it units '{'degrees_north' if key == 'lat' else 'degrees_east'}'")
     info = FileInfo(path, det)
+    missing = []
     for role, levels in plan.roles.items():
         if role not in det.variables:
-            hint = det.problems.get(role) or "no variable matched"
-            raise InputError(f"{path}: {VARIABLES[role]['long']} ({role}) not found ({hint}); "
-                             f"add --var {role}=NAME or '{role} = \"NAME\"' under [variables] in the config "
-                             f"('circtrack scan {path}' lists the variables)")
+            missing.append(role)
+            continue
         reader, plev = D.standardise(ds, det, role, levels, cfg)
         info.readers[role] = reader
         info.plev[role] = plev
+    if missing:
+        role = missing[0]
+        hint = det.problems.get(role) or "no variable matched"
+        raise MissingRoles(f"{path}: {VARIABLES[role]['long']} ({role}) not found ({hint}); "
+                           f"add --var {role}=NAME or '{role} = \"NAME\"' under [variables] in the config "
+                           f"('circtrack scan {path}' lists the variables)", info, missing)
     return info
+
+
+class MissingRoles(InputError):
+    """A file lacks some roles; files with the same time steps may hold them (one variable per file)."""
+
+    def __init__(self, message, info, missing):
+        super().__init__(message)
+        self.info, self.missing = info, missing
+
+
+def _join_split_variables(partial, plan):
+    """Join files that hold different roles for the same time steps and grid into one input.
+
+    ``partial``: MissingRoles errors in the order the files were given. Returns ``(infos, errors)``:
+    joined inputs, and the errors of files whose roles no file with the same time steps supplies.
+    """
+    groups = collections.OrderedDict()
+    for e in partial:
+        det = e.info.detected
+        key = (tuple(iso_time(t) for t in det.times), _calendar(det.calendar), det.lat.size, det.lon.size)
+        groups.setdefault(key, []).append(e)
+    infos, errors = [], []
+    for members in groups.values():
+        first = members[0].info
+        readers, plevs, origin = {}, {}, {}
+        for e in members:
+            for role, reader in e.info.readers.items():
+                if role not in readers:
+                    readers[role], plevs[role], origin[role] = reader, e.info.plev[role], e.info
+        lacking = [r for r in plan.roles if r not in readers]
+        if lacking:
+            if len(members) == 1:
+                errors.append(members[0])
+            else:
+                role = lacking[0]
+                others = ", ".join(os.path.basename(e.info.path) for e in members[1:])
+                errors.append(MissingRoles(
+                    f"{first.path}: {VARIABLES[role]['long']} ({role}) is neither in this file nor in the "
+                    f"{len(members) - 1} other file(s) with the same time steps ({others}); add the file that holds "
+                    f"{role} for these times, or name it with --var {role}=NAME if it is there under another name",
+                    first, lacking))
+            continue
+        det = copy.copy(first.detected)
+        det.variables = {r: o.detected.variables[r] for r, o in origin.items()}
+        det.units = {r: o.detected.units[r] for r, o in origin.items()}
+        det.why = {r: o.detected.why[r] for r, o in origin.items()}
+        det.layout = {**det.layout, "files": {r: o.path for r, o in origin.items()}}
+        infos.append(FileInfo(first.path, det, readers, plevs))
+    return infos, errors
 
 
 def _calendar(name):
@@ -234,7 +292,21 @@ def _available_metrics(files, cfg, overrides, policy):
             raise
         det = D.detect(ds, p, overrides)
         ds.close()
-        ids = [m.id for f in registry.families().values() if set(f.inputs) <= set(det.variables) for m in f.metrics]
+        found = set(det.variables)
+        # one variable per file: the files named like this one but for another variable, same time steps
+        for q in same_period_siblings(p, files):
+            try:
+                qs = D.open_dataset(q, cfg)
+            except InputError:
+                continue
+            try:
+                qd = D.detect(qs, q, overrides)
+            finally:
+                qs.close()
+            if qd.times is not None and det.times is not None and qd.times.size == det.times.size \
+                    and all(iso_time(a) == iso_time(b) for a, b in zip(qd.times, det.times)):
+                found |= set(qd.variables)
+        ids = [m.id for f in registry.families().values() if set(f.inputs) <= found for m in f.metrics]
         if not ids:
             roles = sorted({r for f in registry.families().values() for r in f.inputs})
             raise InputError(f"{p}: none of the variables the metrics need ({', '.join(roles)}) was found; "
@@ -447,16 +519,25 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
     if metric_ids is None:
         metric_ids = _available_metrics(files, cfg, overrides, policy)
     plan = Plan.make(metric_ids, cfg, sectors)
-    infos, skipped = [], []
+    infos, skipped, partial = [], [], []
     for p in files:
         try:
             infos.append(_prepare_file(p, plan, cfg, sectors, overrides))
+        except MissingRoles as e:
+            partial.append(e)
         except InputError as e:
             if policy == "skip":
                 skipped.append({"path": p, "reason": str(e)})
                 print(f"circtrack: skipped {e}", file=sys.stderr, flush=True)
                 continue
             raise
+    joined, unmatched = _join_split_variables(partial, plan)
+    infos += joined
+    for e in unmatched:
+        if policy != "skip":
+            raise e
+        skipped.append({"path": e.info.path, "reason": str(e)})
+        print(f"circtrack: skipped {e}", file=sys.stderr, flush=True)
     if not infos:
         raise InputError(f"{files[0]}: no usable input among {len(files)} file(s); see the messages above")
     _check_consistent(infos)

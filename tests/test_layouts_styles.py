@@ -12,6 +12,7 @@ import pytest
 import xarray as xr
 
 from circtrack import output as O
+from circtrack.errors import InputError
 from tests.layout_helpers import (LABEL, assert_rows_close, baseline, dates, extra_fields, keyed, make_dataset,
                                   run_cfg, with_time_column, write)
 
@@ -161,7 +162,8 @@ def _write_cmip(ds, path, calendar):
     enc = {"time": {"units": "days since 0001-01-01", "calendar": calendar, "dtype": "float64"},
            "time_bnds": {"units": "days since 0001-01-01", "calendar": calendar, "dtype": "float64"}}
     for n in ("ua", "va", "ta", "zg", "hus"):
-        enc[n] = {"_FillValue": np.float32(1e20), "dtype": "float32"}
+        if n in ds:
+            enc[n] = {"_FillValue": np.float32(1e20), "dtype": "float32"}
     ds.to_netcdf(str(path), encoding=enc)
     return str(path)
 
@@ -256,3 +258,45 @@ def test_older_reanalysis_capital_names_on_half_degree_grid(tmp_path, base):
     # a finer latitude grid: positions agree to the grid's interpolation error, amounts to 0.5 %
     assert_rows_close(O.sorted_lines(out)[1:], first, atol_lat=0.2, rtol=5e-3)
     assert out.provenance["inputs"][0]["variables"] == {"ua": "U", "va": "V"}
+
+
+# --------------------------------------------------------------------------- one variable per file
+def test_one_variable_per_file_split_by_period(tmp_path, masked_base):
+    rows, metrics = masked_base
+    ds = _cmip(_masked(make_dataset(3)), "noleap", 2000)
+    d = tmp_path / "cmip"
+    d.mkdir()
+    for var in ("ua", "va", "ta"):
+        for sl, span in ((slice(0, 2), "200001-200002"), (slice(2, 3), "200003-200003")):
+            part = ds[[var, "time_bnds", "lat_bnds", "lon_bnds"]].isel(time=sl)
+            _write_cmip(part, d / f"{var}_Amon_INVENTED-1_historical_r1i1p1f1_gn_{span}.nc", "noleap")
+    # without --metrics: what the files hold together (ta here too), found through the sibling files
+    out = run_cfg(d)
+    assert {"hadley_edge_lat", "eddy_jet_lat", "baroclinic_zone_lat"} <= set(out.columns["metric"])
+    got = [r for r in O.sorted_lines(out)[1:] if r.split(",")[-4] in metrics]
+    assert got == rows
+    files = out.provenance["inputs"][0]["layout"]["files"]
+    assert files["ua"].endswith("ua_Amon_INVENTED-1_historical_r1i1p1f1_gn_200001-200002.nc")
+    assert files["va"].endswith("va_Amon_INVENTED-1_historical_r1i1p1f1_gn_200001-200002.nc")
+    # a period whose va file is missing: one clear error naming the file
+    (d / "va_Amon_INVENTED-1_historical_r1i1p1f1_gn_200003-200003.nc").unlink()
+    with pytest.raises(InputError) as e:
+        run_cfg(d, metric_ids=metrics)
+    msg = str(e.value)
+    assert "\n" not in msg and msg.endswith("ta_Amon_INVENTED-1_historical_r1i1p1f1_gn_200003-200003.nc: northward wind "
+        "on pressure levels (va) is neither in this file nor in the 1 other file(s) with the same time steps "
+        "(ua_Amon_INVENTED-1_historical_r1i1p1f1_gn_200003-200003.nc); add the file that holds va for these times, "
+        "or name it with --var va=NAME if it is there under another name")
+
+
+def test_older_reanalysis_one_variable_per_file(tmp_path, base):
+    rows, metrics = base
+    ds = _packed(make_dataset(3))
+    enc = {"time": {"units": "hours since 1800-01-01 00:00:0.0", "calendar": "standard", "dtype": "float64"}}
+    for var in ("uwnd", "vwnd"):
+        e = {**enc, var: {"dtype": "int16", "scale_factor": 0.01 if var == "uwnd" else 0.001, "add_offset": 0.0,
+                          "_FillValue": np.int16(32766)}}
+        ds[[var]].to_netcdf(str(tmp_path / f"{var}.mon.mean.nc"), encoding=e)
+    out = run_cfg([tmp_path / "uwnd.mon.mean.nc", tmp_path / "vwnd.mon.mean.nc"])
+    assert sorted(set(out.columns["metric"])) == metrics
+    assert_rows_close(O.sorted_lines(out)[1:], rows, atol_lat=0.01, rtol=2e-3)
