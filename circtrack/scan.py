@@ -67,7 +67,8 @@ def report(paths, cfg, overrides) -> str:
     times = [d.times for d, _ in dets if d.times is not None and d.times.size]
     if times:
         allt = np.concatenate(times)
-        lines.append(f"  time: {ntime} steps over all inputs, {iso_time(min(allt))} .. {iso_time(max(allt))}, "
+        ntime = len({iso_time(t) for t in allt})
+        lines.append(f"  time: {ntime} distinct steps over all inputs, {iso_time(min(allt))} .. {iso_time(max(allt))}, "
                      f"calendar {det.calendar}")
     else:
         lines.append("  time: no time axis found (name it 'time' or give it CF units 'days since ...')")
@@ -81,10 +82,23 @@ def report(paths, cfg, overrides) -> str:
             if det.others.get(role):
                 lines.append(f"  {'':8s}   to use another, add --var {role}={det.others[role][0]}  or in a config file:  "
                              f"[variables] {role} = \"{det.others[role][0]}\"")
+    # one variable per file: roles from other inputs with the same time steps join this one
+    def same_times(a, b):
+        return (a.times is not None and b.times is not None and a.times.size == b.times.size
+                and all(iso_time(x) == iso_time(y) for x, y in zip(a.times, b.times)))
+
+    joined = dict(det.variables)
+    for other, _ in dets[1:]:
+        if same_times(det, other):
+            for role, name in other.variables.items():
+                if role not in joined:
+                    joined[role] = name
+                    lines.append(f"  {role:8s} = '{name}' in {other.path} (same time steps; {other.why[role]}; "
+                                 f"units '{other.units.get(role, '')}')")
     lines.append("metrics:")
     missing_roles = set()
     for fam in registry.families().values():
-        lacking = [r for r in fam.inputs if r not in det.variables]
+        lacking = [r for r in fam.inputs if r not in joined]
         for m in fam.metrics:
             if lacking:
                 lines.append(f"  {m.id:30s} cannot run: needs {', '.join(lacking)}")

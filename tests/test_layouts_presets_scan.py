@@ -163,3 +163,13 @@ def test_track_cli_with_a_preset_and_a_grib_without_the_extra_is_one_line(tmp_pa
     assert res.exit_code == 1
     lines = [ln for ln in res.output.splitlines() if ln.strip()]
     assert len(lines) == 1 and "x.grib2" in lines[0] and "pip install 'circtrack[grib]'" in lines[0]
+
+
+def test_scan_joins_one_variable_per_file_inputs(tmp_path):
+    ds = _cmip(make_dataset(2), "noleap", 2000)
+    for var in ("ua", "va"):
+        _write_cmip(ds[[var, "time_bnds"]], tmp_path / f"{var}_Amon_INVENTED-1_historical_r1i1p1f1_gn_200001-200002.nc", "noleap")
+    code, text = _scan(tmp_path)
+    assert code == 0
+    assert "va       = 'va' in " in text and "va_Amon_INVENTED-1_historical_r1i1p1f1_gn_200001-200002.nc (same time steps" in text
+    assert "hadley_edge_lat                can run" in text

@@ -139,10 +139,11 @@ def _cmip(ds, calendar, year, members=None):
     out["ta"] = (ds["ua"].dims, t, {"standard_name": "air_temperature", "units": "K"})
     out["zg"] = (ds["ua"].dims, z, {"standard_name": "geopotential_height", "units": "m"})
     out["hus"] = (ds["ua"].dims, q, {"standard_name": "specific_humidity", "units": "1"})
-    out = out.assign_coords(plev=ds["plev"].values * 100.0 + 1e-8, time=dates(calendar, year))
+    nt = ds.sizes["time"]
+    out = out.assign_coords(plev=ds["plev"].values * 100.0 + 1e-8, time=dates(calendar, year, n=nt))
     out["plev"].attrs.update({"standard_name": "air_pressure", "units": "Pa", "positive": "down", "axis": "Z"})
     out["time"].attrs.update({"standard_name": "time", "axis": "T", "bounds": "time_bnds"})
-    tb = np.stack([dates(calendar, year, day=1), dates(calendar, year, day=28)], axis=1)
+    tb = np.stack([dates(calendar, year, n=nt, day=1), dates(calendar, year, n=nt, day=28)], axis=1)
     out["time_bnds"] = (("time", "bnds"), tb)
     lat, lon = ds["lat"].values, ds["lon"].values
     out["lat_bnds"] = (("lat", "bnds"), np.stack([np.maximum(lat - 0.5, -90), np.minimum(lat + 0.5, 90)], 1))
