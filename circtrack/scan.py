@@ -19,7 +19,10 @@ def _grid(det):
         parts.append(f"{det.lat.size} latitudes {det.lat.min():g}..{det.lat.max():g} ({d})")
     if det.lon is not None:
         parts.append(f"{det.lon.size} longitudes {det.lon.min():g}..{det.lon.max():g}")
-    if det.plev_hpa is not None:
+    if det.plev_hpa is not None and det.vertical == "hybrid":
+        parts.append(f"{det.plev_hpa.size} hybrid sigma-pressure model levels ({det.plev_hpa.max():g}..{det.plev_hpa.min():g} "
+                     "hPa where the surface pressure is 1000 hPa)")
+    elif det.plev_hpa is not None:
         parts.append(f"{det.plev_hpa.size} pressure levels {det.plev_hpa.max():g}..{det.plev_hpa.min():g} hPa "
                      f"(units in file: '{det.plev_units}')")
     return "; ".join(parts) or "no grid found"
