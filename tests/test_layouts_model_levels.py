@@ -105,6 +105,8 @@ def test_hybrid_levels_with_varying_surface_pressure(tmp_path, base):
     det = D.detect(ds, path)
     assert det.vertical == "hybrid" and det.hybrid["form"] == "ap + b*ps"
     reader, plev = D.standardise(ds, det, "ua", [1000.0, 850.0, 500.0], cfg)
+    read_levels = reader.selection["lev"]
+    assert 10 < len(read_levels) < 30 and 0 in read_levels              # from above 500 hPa down to the surface
     arr = reader.read(ds, 0, 2)
     ds.close()
     assert arr.shape == (2, 3, LAT.size, LON.size) and list(plev) == [500.0, 850.0, 1000.0]

@@ -579,8 +579,10 @@ def standardise(ds, det: Detected, role, levels_hpa, cfg):
                 raise InputError(f"{path}: no pressure level of run.model_level_targets_hpa lies below the model top "
                                  f"({np.min(det.plev_hpa):g} hPa); add lower levels to run.model_level_targets_hpa")
             ps_reader = _surface_reader(ds, det, h["ps"])
-            hybrid = {"a": h["a"], "b": h["b"], "p0": h["p0"], "ps": ps_reader,
-                      "targets_pa": (targets * 100.0).tolist()}
+            idx = ML.levels_needed(h["a"], h["b"], targets * 100.0, h["p0"])
+            sel[c["plev"]] = idx
+            hybrid = {"a": np.asarray(h["a"])[idx].tolist(), "b": np.asarray(h["b"])[idx].tolist(), "p0": h["p0"],
+                      "ps": ps_reader, "targets_pa": (targets * 100.0).tolist()}
             plev_out = targets
         else:
             p = det.plev_hpa

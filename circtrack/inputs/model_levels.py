@@ -51,7 +51,8 @@ def interpolate_log_p(values, p, targets, axis=-3):
     if p.shape[-1] > 1 and np.nanmean(p[..., 0]) > np.nanmean(p[..., -1]):
         values, p = values[..., ::-1], p[..., ::-1]          # top first
     nlev = p.shape[-1]
-    lp = np.log(p)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        lp = np.log(np.where(p > 0, p, np.nan))                   # missing or bad surface pressure: NaN
     out = np.full(values.shape[:-1] + (len(targets),), np.nan, dtype=np.float64)
     if nlev < 2:
         return np.moveaxis(out, -1, axis)
@@ -70,3 +71,18 @@ def interpolate_log_p(values, p, targets, axis=-3):
         inside = (n >= 1) & ((w <= 1.0) | at1) & (w >= 0.0) | at0
         out[..., k] = np.where(inside, res, np.nan)
     return np.moveaxis(out, -1, axis)
+
+
+def levels_needed(coef_a, coef_b, targets_pa, p0_pa=None, ps_max_pa=110000.0):
+    """Indices (ascending) of the model levels a chunk must read: from the level just above the
+    highest target (at the highest surface pressure, where every level sits lowest) down to the
+    surface; the levels above it can never bracket a target."""
+    a = np.asarray(coef_a, float) * (float(p0_pa) if p0_pa is not None else 1.0)
+    b = np.asarray(coef_b, float)
+    ref = a + b * 100000.0
+    p_hi = a + b * float(ps_max_pa)
+    above = np.flatnonzero(p_hi <= float(np.min(targets_pa)) * (1 + 1e-12))
+    if above.size == 0:
+        return np.arange(a.size)
+    top = above[np.argmax(p_hi[above])]
+    return np.flatnonzero(ref >= ref[top])
