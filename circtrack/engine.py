@@ -410,8 +410,11 @@ def _active_client():
         return None
 
 
-def _choose_time_steps(times, last=False):
-    """Chronological positions to keep, the repeated ones dropped, and for each its kept twin."""
+def _choose_time_steps(times, last=False, prefer=None):
+    """Chronological positions to keep, the repeated ones dropped, and for each its kept twin.
+
+    ``prefer`` (bool per position, e.g. final rather than provisional data): among repeats of a time
+    step the preferred positions win, then the file order decides."""
     order = np.argsort(times, kind="stable")
     keep, dropped, partner = [], [], []
     i = 0
@@ -420,7 +423,8 @@ def _choose_time_steps(times, last=False):
         while j + 1 < order.size and times[order[j + 1]] == times[order[i]]:
             j += 1
         group = list(order[i:j + 1])
-        chosen = group[-1] if last else group[0]
+        best = [g for g in group if prefer is None or prefer[g]] or group
+        chosen = best[-1] if last else best[0]
         keep.append(chosen)
         for g in group:
             if g != chosen:
@@ -549,7 +553,9 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
     times_all = np.concatenate([i.detected.times for i in infos])
     file_of = np.concatenate([np.full(i.detected.times.size, k) for k, i in enumerate(infos)])
     repeat_policy = cfg["run"].get("repeated_times", "refuse")
-    keep, dropped, partner = _choose_time_steps(times_all, last=(repeat_policy == "keep-last"))
+    # a time step in a final and in a provisional stream (e.g. expver 0001 and 0005 files): final wins
+    provisional = np.concatenate([D.provisional_steps(i.detected) for i in infos])
+    keep, dropped, partner = _choose_time_steps(times_all, last=(repeat_policy == "keep-last"), prefer=~provisional)
     times = times_all[keep]
     roles = list(plan.roles)
     lat = np.sort(infos[0].detected.lat)
@@ -609,6 +615,8 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
                                  "re-copy it or leave it out")
             cache.update(zip(need, results))
             for d in mine:
+                if provisional[d] and not provisional[partner[dropped.index(d)]]:
+                    continue                     # provisional data replaced by final data: expected to differ
                 _compare_repeat(d, partner[dropped.index(d)], cache, chunks, chunk_of, starts, infos, times_all,
                                 repeat_policy)
             computed = {r: _gather(cache, "stats", r, positions, chunk_of, chunks, starts) for r in roles}
@@ -680,7 +688,10 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
                    for i in infos],
         "skipped_inputs": skipped,
         "repeated_time_steps_dropped": [{"time": iso_time(times_all[k]), "path": infos[file_of[k]].path,
-                                         "kept_from": infos[file_of[p]].path} for k, p in zip(dropped, partner)],
+                                         "kept_from": infos[file_of[p]].path,
+                                         **({"provisional_replaced_by_final": True}
+                                            if provisional[k] and not provisional[p] else {})}
+                                        for k, p in zip(dropped, partner)],
         "repeated_times_policy": repeat_policy,
         "calendar": infos[0].detected.calendar,
         "time_span": [iso[0], iso[-1]] if nt else None,

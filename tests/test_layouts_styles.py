@@ -301,3 +301,24 @@ def test_older_reanalysis_one_variable_per_file(tmp_path, base):
     out = run_cfg([tmp_path / "uwnd.mon.mean.nc", tmp_path / "vwnd.mon.mean.nc"])
     assert sorted(set(out.columns["metric"])) == metrics
     assert_rows_close(O.sorted_lines(out)[1:], rows, atol_lat=0.01, rtol=2e-3)
+
+
+def test_final_data_in_a_later_file_replace_provisional_data(tmp_path, base):
+    # a monthly cron download: March first arrives provisional (expver 0005, here with other values),
+    # later the final March arrives in a file of its own; final wins without a conflict
+    rows, metrics = base
+    ds = make_dataset(3)
+    early = _reanalysis(ds, stream="coord", number=0)
+    early["u"] = early["u"] + xr.DataArray([0.0, 0.0, 5.0], dims="valid_time")
+    a = _write_reanalysis(early, tmp_path / "era_2000_01-03.nc")
+    late = _reanalysis(ds, number=0).isel(valid_time=[2]).assign_coords(expver=("valid_time", ["0001"]))
+    b = _write_reanalysis(late, tmp_path / "era_2000_03_final.nc")
+    for order in ([a, b], [b, a]):
+        out = run_cfg(order, metric_ids=metrics)
+        assert O.sorted_lines(out)[1:] == rows
+        assert out.provenance["time_step_notes"] == {}
+        (drop,) = out.provenance["repeated_time_steps_dropped"]
+        assert drop == {"time": "2000-03-15", "path": a, "kept_from": b, "provisional_replaced_by_final": True}
+    alone = run_cfg(a, metric_ids=metrics)
+    assert O.sorted_lines(alone)[1:] != _provisional(rows)                # March is provisional: u + 5 there
+    assert all(r.endswith(";provisional_data") for r in O.sorted_lines(alone)[1:] if ",2000-03-15," in r)

@@ -271,8 +271,9 @@ def _detect_streams(ds, det):
                                  f"stream ({', '.join(l for l, f in zip(labels, final) if f) or 'none'}) is used "
                                  f"where it has data, else the next; such time steps are flagged '{PROVISIONAL}'")
     elif name in ds.variables and tdim is not None and ds[name].dims == (tdim,):
-        det.streams = {"name": name, "kind": "coord"}
-        labels = sorted({_label(x) for x in ds[name].values})
+        along = [_label(x) for x in np.asarray(ds[name].values).ravel()]
+        det.streams = {"name": name, "kind": "coord", "labels_along_time": along}
+        labels = sorted(set(along))
         det.layout["streams"] = (f"'{name}' along time with values {', '.join(labels)}: time steps of "
                                  f"provisional streams are flagged '{PROVISIONAL}'")
     elif name in ds.variables and ds[name].size == 1:
@@ -727,6 +728,18 @@ def _combine_streams(arr, order, final):
         pick = np.where(has[:, e], e, pick)
     out = arr[np.arange(nt), pick]
     return out, ~np.asarray(final, dtype=bool)[pick]
+
+
+def provisional_steps(det):
+    """Bool per time step: known from the coordinates to come from a provisional stream (an expver
+    coordinate along time, or a scalar one); streams along a dimension are resolved per chunk."""
+    n = 0 if det.times is None else det.times.size
+    st = det.streams
+    if not st or st["kind"] == "dim":
+        return np.zeros(n, dtype=bool)
+    if st["kind"] == "scalar":
+        return np.ones(n, dtype=bool)
+    return np.array([not _is_final_stream(x) for x in st["labels_along_time"]], dtype=bool)
 
 
 def merge_notes(parts):
