@@ -56,6 +56,7 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
         cfg["run"]["repeated_times"] = repeated_times
     ids = [m.strip() for m in metrics.split(",") if m.strip()] if metrics else None
     secs = [engine.parse_sector(s) for s in sectors]
+    O.check_output_path(output)
     prog = engine.Progress(quiet=quiet)
     with scheduler_context(workers, scheduler, cfg):
         outcome = engine.track(list(paths), cfg, metric_ids=ids, label=label, sectors=secs,

@@ -15,9 +15,11 @@ from __future__ import annotations
 
 import collections
 import copy
+import functools
 import multiprocessing
 import os
 import sys
+import threading
 import time as _time
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
@@ -30,6 +32,7 @@ from circtrack.errors import InputError, UsageError
 from circtrack.inputs import dataset as D
 from circtrack.inputs.files import expand, same_period_siblings
 from circtrack.inputs.rules import VARIABLES
+from circtrack.lowpass import setup as _lowpass_setup
 from circtrack.metrics.common import Fields
 
 
@@ -86,52 +89,89 @@ def sector_masks(lon, sectors):
     return [None] + [sector_mask(lon, a, b) for _, a, b in sectors]
 
 
-_OPEN = collections.OrderedDict()   # per process: path -> open dataset (a few, least recently used out)
-_OPEN_MAX = 2
+_OPEN = {}                # (process id, thread id) -> {path: open dataset}, least recently used first
+_OPEN_LOCK = threading.Lock()
+_OPEN_MAX = 2             # open files per thread of a worker
+# netCDF-C/HDF5 are not thread-safe (xarray locks its data reads, but not every open, close or
+# attribute read), and HDF5 serialises inside a process anyway: threads of one process open, read
+# and close under this lock and only reduce in parallel
+_NC_LOCK = threading.RLock()
+
+
+def _my_open():
+    key = (os.getpid(), threading.get_ident())
+    with _OPEN_LOCK:
+        return _OPEN.setdefault(key, collections.OrderedDict())
 
 
 def _open_cached(path, cfg, keep=_OPEN_MAX):
-    ds = _OPEN.pop(path, None)
+    """This thread's open handle of ``path`` (threads never share a netCDF handle); ``keep``: how
+    many handles the current task needs at once (one per file when variables come in several files)."""
+    mine = _my_open()
+    ds = mine.pop(path, None)
     if ds is None:
-        ds = D.open_dataset(path, cfg)
-        while len(_OPEN) >= max(_OPEN_MAX, keep):
-            _OPEN.popitem(last=False)[1].close()
-    _OPEN[path] = ds
+        with _NC_LOCK:
+            ds = D.open_dataset(path, cfg)
+            while len(mine) >= max(_OPEN_MAX, keep):
+                mine.popitem(last=False)[1].close()
+    mine[path] = ds
     return ds
 
 
+def _forget(path):
+    _my_open().pop(path, None)
+
+
 def close_cached():
-    while _OPEN:
-        _OPEN.popitem()[1].close()
+    """Close every handle this process holds (all threads; call when no task is running)."""
+    with _OPEN_LOCK:
+        groups = [g for k, g in _OPEN.items() if k[0] == os.getpid()]
+        for k in [k for k in _OPEN if k[0] == os.getpid()]:
+            del _OPEN[k]
+    with _NC_LOCK:
+        for g in groups:
+            while g:
+                g.popitem()[1].close()
+
+
+def _wants_lat(fn):
+    """A reducer may take the ascending latitudes as a keyword ``lat`` (e.g. to locate a maximum)."""
+    import inspect
+    return "lat" in inspect.signature(fn).parameters
 
 
 def reduce_chunk(job):
     """One task: read time steps ``t0:t1`` of every role of one file and reduce them.
 
     ``job`` is a plain dict (path, cfg, readers, t0, t1, masks, reducers) so it pickles cheaply.
-    Returns ``{"stats": {role: (t, *extra, [L], J, S, 2)}, "extras": {name: (t, *extra, ..., S)}}``.
+    Returns ``{"stats": {role: (t, *extra, [L], J, S, 2)}, "extras": {name: (t, *extra, ..., S)},
+    "notes": {"time": (t,) str}}``.
     """
+    slabs, notes = {}, []
     # variables may come from several files with the same time steps (one variable per file)
     paths = list(dict.fromkeys([job["path"]] + [r.path for r in job["readers"].values()]))
-    ds = _open_cached(job["path"], job["cfg"], keep=len(paths))
-    slabs, notes = {}, []
-    try:
-        for role, reader in job["readers"].items():
-            rds = ds if reader.path == job["path"] else _open_cached(reader.path, job["cfg"], keep=len(paths))
-            slabs[role], note = reader.read_noted(rds, job["t0"], job["t1"])
-            notes.append(note)
-    except Exception:
-        # a damaged file: drop the handle so a retry reopens it, and let the caller name the file
-        _OPEN.pop(job["path"], None)
-        ds.close()
-        raise
+    with _NC_LOCK:     # one netCDF/HDF5 call at a time per process; the reductions below run freely
+        opened = {}
+        try:
+            for role, reader in job["readers"].items():
+                if reader.path not in opened:
+                    opened[reader.path] = _open_cached(reader.path, job["cfg"], keep=len(paths))
+                slabs[role], note = reader.read_noted(opened[reader.path], job["t0"], job["t1"])
+                notes.append(note)
+        except Exception:
+            # a damaged file: drop the handles so a retry reopens them, and let the caller name the file
+            for p, ds in opened.items():
+                _forget(p)
+                ds.close()
+            raise
     stats = {role: _zonal_block(a, job["masks"]) for role, a in slabs.items()}
     extras = {}
     if job["reducers"]:
         as64 = {r: a.astype(np.float64, copy=False) for r, a in slabs.items()}
         plev = {r: rd.plev for r, rd in job["readers"].items()}
         for name, fn in job["reducers"].items():
-            extras[name] = np.asarray(fn(as64, plev, job["lon"], job["masks"], job["cfg"]), dtype=np.float64)
+            kw = {"lat": job["lat"]} if _wants_lat(fn) else {}     # latitudes for per-longitude features
+            extras[name] = np.asarray(fn(as64, plev, job["lon"], job["masks"], job["cfg"], **kw), dtype=np.float64)
     # per time step layout notes (e.g. provisional_data), joined into the rows' flags
     return {"stats": stats, "extras": extras, "notes": {"time": D.merge_notes(notes)}}
 
@@ -158,7 +198,7 @@ class Plan:
             zonal_only = [m for m in metric_ids if not cat[m].sectors]
             if zonal_only and len(zonal_only) == len(metric_ids):
                 raise UsageError(f"{', '.join(zonal_only)} are defined for the full zonal mean only "
-                                 "(the streamfunction needs the whole latitude circle); drop --sector or choose "
+                                 "(the streamfunction, Fourier amplitudes and eddy fluxes need the whole circle of longitudes); drop --sector or choose "
                                  "sector metrics such as eddy_jet_lat")
         roles = {}
         for f in chosen:
@@ -270,7 +310,7 @@ def _join_split_variables(partial, plan):
         det = copy.copy(first.detected)
         det.variables = {r: o.detected.variables[r] for r, o in origin.items()}
         det.units = {r: o.detected.units[r] for r, o in origin.items()}
-        det.why = {r: o.detected.why[r] for r, o in origin.items()}
+        det.why = {**first.detected.why, **{r: o.detected.why[r] for r, o in origin.items()}}
         det.layout = {**det.layout, "files": {r: o.path for r, o in origin.items()}}
         infos.append(FileInfo(first.path, det, readers, plevs))
     return infos, errors
@@ -286,23 +326,26 @@ def _available_metrics(files, cfg, overrides, policy):
     for p in files:
         try:
             ds = D.open_dataset(p, cfg)
+            try:
+                det = D.detect(ds, p, overrides)
+            finally:
+                ds.close()
+            D.require_axes(det)
         except InputError:
-            if policy == "skip":
+            if policy == "skip":           # reported when the file is prepared
                 continue
             raise
-        det = D.detect(ds, p, overrides)
-        ds.close()
         found = set(det.variables)
         # one variable per file: the files named like this one but for another variable, same time steps
         for q in same_period_siblings(p, files):
             try:
                 qs = D.open_dataset(q, cfg)
+                try:
+                    qd = D.detect(qs, q, overrides)
+                finally:
+                    qs.close()
             except InputError:
                 continue
-            try:
-                qd = D.detect(qs, q, overrides)
-            finally:
-                qs.close()
             if qd.times is not None and det.times is not None and qd.times.size == det.times.size \
                     and all(iso_time(a) == iso_time(b) for a, b in zip(qd.times, det.times)):
                 found |= set(qd.variables)
@@ -434,7 +477,7 @@ def _choose_time_steps(times, last=False, prefer=None):
     return np.array(keep, dtype=int), dropped, partner
 
 
-def _gather(cache, kind, name, positions, chunk_of, chunks, starts):
+def _gather(cache, kind, name, positions, *, chunk_of, chunks, starts):
     """Rows of the cached chunk results at global ``positions``, in that order (runs are sliced)."""
     parts = []
     i = 0
@@ -449,21 +492,6 @@ def _gather(cache, kind, name, positions, chunk_of, chunks, starts):
         parts.append(cache[c][kind][name][lo:lo + (j - i + 1)])
         i = j + 1
     return np.concatenate(parts, axis=0)
-
-
-def _compare_repeat(d, p, cache, chunks, chunk_of, starts, infos, times_all, policy):
-    """A time step present in two files: identical -> drop one; different -> refuse unless a policy says."""
-    same = True
-    for r in cache[int(chunk_of[p])]["stats"]:
-        a = _gather(cache, "stats", r, [p], chunk_of, chunks, starts)
-        b = _gather(cache, "stats", r, [d], chunk_of, chunks, starts)
-        if not np.array_equal(a, b, equal_nan=True):
-            same = False
-            break
-    if not same and policy == "refuse":
-        fa, fb = infos[chunks[chunk_of[p]][0]].path, infos[chunks[chunk_of[d]][0]].path
-        raise InputError(f"{fb}: time step {iso_time(times_all[d])} is also in {fa} with different values; "
-                         "leave one file out, or choose which wins with --repeated-times keep-first|keep-last")
 
 
 def _time_step_days(times):
@@ -514,193 +542,259 @@ class Progress:
 def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None,
           progress=None, on_bad_file=None, stdin=None):
     """Run the chosen metrics over all inputs; returns an :class:`Outcome` of tidy rows."""
-    progress = progress or Progress(quiet=True)
-    overrides = {**cfg.get("variables", {}), **(overrides or {})}
-    sectors = list(sectors) + [(k, float(v[0]), float(v[1])) for k, v in cfg.get("sectors", {}).items()
-                               if k not in {s[0] for s in sectors}]
-    files = expand(paths, stdin=stdin)
-    policy = on_bad_file or cfg["run"]["on_bad_file"]
-    if metric_ids is None:
-        metric_ids = _available_metrics(files, cfg, overrides, policy)
-    plan = Plan.make(metric_ids, cfg, sectors)
-    infos, skipped, partial = [], [], []
-    for p in files:
-        try:
-            infos.append(_prepare_file(p, plan, cfg, sectors, overrides))
-        except MissingRoles as e:
-            partial.append(e)
-        except InputError as e:
-            if policy == "skip":
-                skipped.append({"path": p, "reason": str(e)})
-                print(f"circtrack: skipped {e}", file=sys.stderr, flush=True)
-                continue
-            raise
-    joined, unmatched = _join_split_variables(partial, plan)
-    infos += joined
-    for e in unmatched:
-        if policy != "skip":
-            raise e
-        skipped.append({"path": e.info.path, "reason": str(e)})
-        print(f"circtrack: skipped {e}", file=sys.stderr, flush=True)
-    if not infos:
-        raise InputError(f"{files[0]}: no usable input among {len(files)} file(s); see the messages above")
-    _check_consistent(infos)
-    progress.line(f"{len(infos)} file(s), metrics: {', '.join(plan.metric_ids)}")
+    return Run(paths, cfg, metric_ids=metric_ids, label=label, sectors=sectors, overrides=overrides,
+               progress=progress, on_bad_file=on_bad_file, stdin=stdin).execute()
 
-    # ---- the time axis across files: chronological; a repeated time step is read from every file
-    # that has it and compared: identical repeats are dropped, conflicting ones refused (or
-    # resolved by run.repeated_times = "keep-first" / "keep-last", in the order the files were given)
-    times_all = np.concatenate([i.detected.times for i in infos])
-    file_of = np.concatenate([np.full(i.detected.times.size, k) for k, i in enumerate(infos)])
-    repeat_policy = cfg["run"].get("repeated_times", "refuse")
-    # a time step in a final and in a provisional stream (e.g. expver 0001 and 0005 files): final wins
-    provisional = np.concatenate([D.provisional_steps(i.detected) for i in infos])
-    keep, dropped, partner = _choose_time_steps(times_all, last=(repeat_policy == "keep-last"), prefer=~provisional)
-    times = times_all[keep]
-    roles = list(plan.roles)
-    lat = np.sort(infos[0].detected.lat)
-    plev = {r: infos[0].plev[r] for r in roles}
-    extra = infos[0].detected.extra_dims
-    extra_names = list(extra)
-    n_extra = int(np.prod([len(v) for v in extra.values()])) if extra else 1
-    sector_names = ["zonal"] + [s[0] for s in sectors]
 
-    # ---- tasks: one per file and time chunk (chunk along time only; lat/level/lon stay whole)
-    tc = max(1, int(cfg["run"]["time_chunk"]))
-    starts = np.concatenate([[0], np.cumsum([i.detected.times.size for i in infos])])
-    chunks = [(k, a, min(i.detected.times.size, a + tc)) for k, i in enumerate(infos)
-              for a in range(0, i.detected.times.size, tc)]
-    chunk_of = np.empty(times_all.size, dtype=int)
-    for c, (k, a, b) in enumerate(chunks):
-        chunk_of[starts[k] + a:starts[k] + b] = c
-    masks_of = [sector_masks(i.detected.lon, sectors) for i in infos]
+class Run:
+    """One run, in two phases.
 
-    def job(c):
-        k, a, b = chunks[c]
-        inf = infos[k]
-        return {"path": inf.path, "cfg": cfg, "readers": inf.readers, "t0": a, "t1": b,
-                "masks": masks_of[k], "lon": np.asarray(inf.detected.lon, float), "reducers": plan.reducers}
+    Constructing it *plans*: files are opened once for coordinates and closed, readers are built,
+    the time axis across files is settled and the tasks (file, time chunk) are laid out. Nothing is
+    read then. :meth:`tasks` gives the dask.delayed calls (for inspection); :meth:`execute` computes
+    them batch by batch, runs the metric families and returns the tidy :class:`Outcome`.
+    """
 
-    nt = times.size
-    batch = tc * max(4, 2 * (os.cpu_count() or 1))
-    batches = [(b0, min(nt, b0 + batch)) for b0 in range(0, nt, batch)]
-    batch_of_pos = np.empty(times_all.size, dtype=int)
-    for bi, (b0, b1) in enumerate(batches):
-        batch_of_pos[keep[b0:b1]] = bi
-    for d, p in zip(dropped, partner):
-        batch_of_pos[d] = batch_of_pos[p]
-    last_use = collections.defaultdict(int)
-    for pos in range(times_all.size):
-        last_use[chunk_of[pos]] = max(last_use[chunk_of[pos]], batch_of_pos[pos])
-
-    cat = registry.catalogue()
-    wanted = set(plan.metric_ids)
-    cols = {k: [] for k in ["t", "e", "hemisphere", "sector", "metric", "value", "flag"]}
-    step_days = _time_step_days(times)
-    step_notes = np.full(times.size, "", dtype=object)
-    cache = {}
-    runner = _Runner(cfg, len(chunks))
-    try:
-        for bi, (t0, t1) in enumerate(batches):
-            positions = keep[t0:t1]
-            mine = [d for d in dropped if batch_of_pos[d] == bi]
-            need = sorted({int(chunk_of[q]) for q in list(positions) + mine} - set(cache))
+    def __init__(self, paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None,
+                 progress=None, on_bad_file=None, stdin=None):
+        self.cfg = cfg
+        self.label = label
+        self.progress = progress = progress or Progress(quiet=True)
+        overrides = {**cfg.get("variables", {}), **(overrides or {})}
+        self.sectors = sectors = list(sectors) + [(k, float(v[0]), float(v[1])) for k, v in cfg.get("sectors", {}).items()
+                                                  if k not in {s[0] for s in sectors}]
+        files = expand(paths, stdin=stdin)
+        policy = on_bad_file or cfg["run"]["on_bad_file"]
+        if metric_ids is None:
+            metric_ids = _available_metrics(files, cfg, overrides, policy)
+        self.plan = plan = Plan.make(metric_ids, cfg, sectors)
+        infos, self.skipped, partial = [], [], []
+        for p in files:
             try:
-                results = runner.run(reduce_chunk, [job(c) for c in need])
-            except (OSError, RuntimeError, ValueError, KeyError, IndexError) as e:
-                involved = sorted({infos[chunks[c][0]].path for c in need})
-                msg = str(e).splitlines()[0] if str(e) else type(e).__name__
-                raise InputError(f"{involved[0]}: reading data failed ({msg}) for time steps {iso_time(times[t0])}.."
-                                 f"{iso_time(times[t1 - 1])} in {', '.join(involved)}; one of these files is damaged: "
-                                 "re-copy it or leave it out")
-            cache.update(zip(need, results))
-            for d in mine:
-                if provisional[d] and not provisional[partner[dropped.index(d)]]:
-                    continue                     # provisional data replaced by final data: expected to differ
-                _compare_repeat(d, partner[dropped.index(d)], cache, chunks, chunk_of, starts, infos, times_all,
-                                repeat_policy)
-            computed = {r: _gather(cache, "stats", r, positions, chunk_of, chunks, starts) for r in roles}
-            xtra = {n: _gather(cache, "extras", n, positions, chunk_of, chunks, starts) for n in plan.reducers}
-            step_notes[t0:t1] = _gather(cache, "notes", "time", positions, chunk_of, chunks, starts)
-            for c in [c for c in cache if last_use[c] <= bi]:
-                del cache[c]
-            bt = t1 - t0
-            tidx = np.repeat(np.arange(t0, t1), n_extra)
-            eidx = np.tile(np.arange(n_extra), bt)
-            for s, sname in enumerate(sector_names):
-                mean, cov, ext = {}, {}, {}
-                for r, arr in computed.items():
-                    a = arr[..., s, :]
-                    shp = (bt * n_extra,) + a.shape[1 + len(extra_names):-1]
-                    mean[r] = a[..., 0].reshape(shp)
-                    cov[r] = a[..., 1].reshape(shp)
-                for n_, arr in xtra.items():
-                    a = arr[..., s]
-                    ext[n_] = a.reshape((bt * n_extra,) + a.shape[1 + len(extra_names):])
-                fields = Fields(lat=lat, plev=plev, mean=mean, coverage=cov, sector=sname, extras=ext,
-                                info={"time_step_days": step_days})
-                for fam in plan.families:
-                    if sname != "zonal" and not fam.sectors:
-                        continue
-                    results = fam.compute(fields, cfg)
-                    for m in fam.metrics:
-                        if m.id not in wanted:
-                            continue
-                        res = results[m.id]
-                        for h, hemi in enumerate(registry.hemispheres(m)):
-                            cols["t"].append(tidx)
-                            cols["e"].append(eidx)
-                            cols["hemisphere"].append(np.full(tidx.size, hemi, dtype=object))
-                            cols["sector"].append(np.full(tidx.size, sname, dtype=object))
-                            cols["metric"].append(np.full(tidx.size, m.id, dtype=object))
-                            cols["value"].append(res.value[:, h])
-                            cols["flag"].append(res.flag[:, h].astype(object))
-            progress.step(t1, nt)
-    finally:
-        runner.close()
-        close_cached()
+                infos.append(_prepare_file(p, plan, cfg, sectors, overrides))
+            except MissingRoles as e:
+                partial.append(e)          # joined below with files holding its other variables
+            except InputError as e:
+                if policy == "skip":
+                    self.skipped.append({"path": p, "reason": str(e)})
+                    print(f"circtrack: skipped {e}", file=sys.stderr, flush=True)
+                    continue
+                raise
+        joined, unmatched = _join_split_variables(partial, plan)
+        infos += joined
+        for e in unmatched:
+            if policy != "skip":
+                raise e
+            self.skipped.append({"path": e.info.path, "reason": str(e)})
+            print(f"circtrack: skipped {e}", file=sys.stderr, flush=True)
+        if not infos:
+            raise InputError(f"{files[0]}: no usable input among {len(files)} file(s); see the messages above")
+        _check_consistent(infos)
+        self.infos = infos
+        progress.line(f"{len(infos)} file(s), metrics: {', '.join(plan.metric_ids)}")
 
-    flat = {k: (np.concatenate(v) if v else np.array([], dtype=object)) for k, v in cols.items()}
-    iso = np.array([iso_time(t) for t in times], dtype=object)
-    source = label or derive_source([i.path for i in infos], infos[0].detected.attrs)
-    out = {"source": np.full(flat["t"].size, source, dtype=object), "time": iso[flat["t"]] if nt else flat["t"]}
-    if extra_names:
-        grids = np.meshgrid(*[np.arange(len(v)) for v in extra.values()], indexing="ij")
-        for name, g, vals in zip(extra_names, grids, extra.values()):
-            out[name] = np.array([str(x) for x in np.asarray(vals)[g.ravel()]], dtype=object)[flat["e"]]
-    out["hemisphere"] = flat["hemisphere"]
-    out["sector"] = flat["sector"]
-    out["metric"] = flat["metric"]
-    out["value"] = flat["value"].astype(float)
-    out["units"] = np.array([cat[m].units for m in flat["metric"]], dtype=object)
-    out["flag"] = flat["flag"]
-    if nt and flat["t"].size and (step_notes != "").any():
-        row_notes = step_notes[flat["t"]]
-        noted = row_notes != ""
-        out["flag"] = np.where(noted, flat["flag"].astype(str).astype(object) + ";" + row_notes, flat["flag"])
-    prov = {
-        "inputs": [{**_stat(i.path), "variables": i.detected.variables, "units": i.detected.units,
-                    "found_by": i.detected.why, "time_steps": int(i.detected.times.size),
-                    "first_time": iso_time(i.detected.times[0]) if i.detected.times.size else None,
-                    "last_time": iso_time(i.detected.times[-1]) if i.detected.times.size else None,
-                    "pressure_levels_hpa": {r: (None if v is None else [float(x) for x in v]) for r, v in i.plev.items()},
-                    "pressure_units_in_file": i.detected.plev_units, "layout": i.detected.layout}
-                   for i in infos],
-        "skipped_inputs": skipped,
-        "repeated_time_steps_dropped": [{"time": iso_time(times_all[k]), "path": infos[file_of[k]].path,
-                                         "kept_from": infos[file_of[p]].path,
-                                         **({"provisional_replaced_by_final": True}
-                                            if provisional[k] and not provisional[p] else {})}
-                                        for k, p in zip(dropped, partner)],
-        "repeated_times_policy": repeat_policy,
-        "calendar": infos[0].detected.calendar,
-        "time_span": [iso[0], iso[-1]] if nt else None,
-        "time_steps": int(nt),
-        "metrics": plan.metric_ids,
-        "sectors": {n: [a, b] for n, a, b in sectors},
-        "extra_key_columns": extra_names,
-        "time_step_notes": {code: [iso[k] for k in range(nt) if code in str(step_notes[k]).split(";")]
-                            for code in sorted({c for n in step_notes for c in str(n).split(";") if c})},
-    }
-    return Outcome(out, ["source", "time", *extra_names, "hemisphere", "sector", "metric"], prov,
-                   flat["t"])
+        # the time axis across files: chronological; a repeated time step is read from every file
+        # that has it and compared: identical repeats are dropped, conflicting ones refused (or
+        # resolved by run.repeated_times = "keep-first" / "keep-last", in the order files were given)
+        self.times_all = np.concatenate([i.detected.times for i in infos])
+        self.file_of = np.concatenate([np.full(i.detected.times.size, k) for k, i in enumerate(infos)])
+        self.repeat_policy = cfg["run"].get("repeated_times", "refuse")
+        # a time step in a final and in a provisional stream (e.g. expver 0001 and 0005 files): final wins
+        self.provisional = np.concatenate([D.provisional_steps(i.detected) for i in infos])
+        self.keep, self.dropped, self.partner = _choose_time_steps(self.times_all,
+                                                                   last=(self.repeat_policy == "keep-last"),
+                                                                   prefer=~self.provisional)
+        self.times = self.times_all[self.keep]
+
+        # tasks: one per file and time chunk (chunk along time only; lat/level/lon stay whole)
+        tc = max(1, int(cfg["run"]["time_chunk"]))
+        self.starts = np.concatenate([[0], np.cumsum([i.detected.times.size for i in infos])]).astype(int)
+        self.chunks = [(k, a, min(i.detected.times.size, a + tc)) for k, i in enumerate(infos)
+                       for a in range(0, i.detected.times.size, tc)]
+        self.chunk_of = np.empty(self.times_all.size, dtype=int)
+        for c, (k, a, b) in enumerate(self.chunks):
+            self.chunk_of[self.starts[k] + a:self.starts[k] + b] = c
+        self.masks_of = [sector_masks(i.detected.lon, sectors) for i in infos]
+        nt = self.times.size
+        self.lowpass = _lowpass_setup(cfg, self.times, plan, infos[0].path)
+        per_batch = int(cfg["run"].get("batch_time_steps") or 0) or tc * max(4, 2 * (os.cpu_count() or 1))
+        if self.lowpass:
+            per_batch = max(per_batch, self.lowpass.half_width)   # the halo fits in one neighbour
+        self.batches = [(b0, min(nt, b0 + per_batch)) for b0 in range(0, nt, per_batch)]
+
+    # ---------------------------------------------------------------- tasks
+    def job(self, c):
+        k, a, b = self.chunks[c]
+        inf = self.infos[k]
+        return {"path": inf.path, "cfg": self.cfg, "readers": inf.readers, "t0": a, "t1": b,
+                "masks": self.masks_of[k], "lon": np.asarray(inf.detected.lon, float),
+                "lat": np.sort(np.asarray(inf.detected.lat, float)), "reducers": self.plan.reducers}
+
+    def tasks(self):
+        """The dask.delayed reduce calls of every chunk; building them reads nothing."""
+        return [dask.delayed(reduce_chunk, pure=False)(self.job(c)) for c in range(len(self.chunks))]
+
+    # ---------------------------------------------------------------- execution
+    def _reduce_batch(self, bi, runner, cache, last_use, batch_of_pos):
+        """Reduced stats/extras of batch ``bi`` in chronological order (reads what is not cached)."""
+        t0, t1 = self.batches[bi]
+        positions = self.keep[t0:t1]
+        mine = [(d, p) for d, p in zip(self.dropped, self.partner) if batch_of_pos[d] == bi]
+        need = sorted({int(self.chunk_of[q]) for q in list(positions) + [d for d, _ in mine]} - set(cache))
+        try:
+            results = runner.run(reduce_chunk, [self.job(c) for c in need])
+        except (OSError, RuntimeError, ValueError, KeyError, IndexError) as e:
+            involved = sorted({self.infos[self.chunks[c][0]].path for c in need})
+            msg = str(e).splitlines()[0] if str(e) else type(e).__name__
+            raise InputError(f"{involved[0]}: reading data failed ({msg}) for time steps {iso_time(self.times[t0])}.."
+                             f"{iso_time(self.times[t1 - 1])} in {', '.join(involved)}; one of these files is damaged: "
+                             "re-copy it or leave it out")
+        cache.update(zip(need, results))
+        for d, p in mine:
+            if self.provisional[d] and not self.provisional[p]:
+                continue                   # provisional data replaced by final data: expected to differ
+            self._compare_repeat(d, p, cache)
+        g = functools.partial(_gather, cache, chunk_of=self.chunk_of, chunks=self.chunks, starts=self.starts)
+        out = {"stats": {r: g("stats", r, positions) for r in self.plan.roles},
+               "extras": {n: g("extras", n, positions) for n in self.plan.reducers},
+               "notes": g("notes", "time", positions)}
+        for c in [c for c in cache if last_use[c] <= bi]:
+            del cache[c]
+        return out
+
+    def _compare_repeat(self, d, p, cache):
+        """A time step in two files: identical -> drop one; different -> refuse unless a policy says."""
+        g = functools.partial(_gather, cache, chunk_of=self.chunk_of, chunks=self.chunks, starts=self.starts)
+        same = all(np.array_equal(g("stats", r, [p]), g("stats", r, [d]), equal_nan=True) for r in self.plan.roles)
+        if not same and self.repeat_policy == "refuse":
+            fa = self.infos[self.file_of[p]].path
+            fb = self.infos[self.file_of[d]].path
+            raise InputError(f"{fb}: time step {iso_time(self.times_all[d])} is also in {fa} with different values; "
+                             "leave one file out, or choose which wins with --repeated-times keep-first|keep-last")
+
+    def execute(self):
+        cfg, plan, infos = self.cfg, self.plan, self.infos
+        nt = self.times.size
+        batch_of_pos = np.empty(self.times_all.size, dtype=int)
+        for bi, (b0, b1) in enumerate(self.batches):
+            batch_of_pos[self.keep[b0:b1]] = bi
+        for d, p in zip(self.dropped, self.partner):
+            batch_of_pos[d] = batch_of_pos[p]
+        last_use = collections.defaultdict(int)
+        for pos in range(self.times_all.size):
+            c = self.chunk_of[pos]
+            last_use[c] = max(last_use[c], batch_of_pos[pos])
+
+        extra = infos[0].detected.extra_dims
+        extra_names = list(extra)
+        n_extra = int(np.prod([len(v) for v in extra.values()])) if extra else 1
+        sector_names = ["zonal"] + [s[0] for s in self.sectors]
+        lat = np.sort(infos[0].detected.lat)
+        plev = {r: infos[0].plev[r] for r in plan.roles}
+        step_days = _time_step_days(self.times)
+        wanted = set(plan.metric_ids)
+        cols = {k: [] for k in ["t", "e", "hemisphere", "sector", "metric", "value", "flag"]}
+        cache, reduced = {}, {}
+        self.step_notes = np.full(nt, "", dtype=object)
+        runner = _Runner(cfg, len(self.chunks))
+        nb = len(self.batches)
+        try:
+            for bi in range(nb):
+                # a low-pass filter needs the next batch (its halo) reduced first; the previous one is kept
+                for bj in range(bi, min(nb, bi + (2 if self.lowpass else 1))):
+                    if bj not in reduced:
+                        reduced[bj] = self._reduce_batch(bj, runner, cache, last_use, batch_of_pos)
+                t0, t1 = self.batches[bi]
+                bt = t1 - t0
+                self.step_notes[t0:t1] = reduced[bi]["notes"]
+                lowpassed = self.lowpass.apply(reduced, bi, self.batches) if self.lowpass else {}
+                tidx = np.repeat(np.arange(t0, t1), n_extra)
+                eidx = np.tile(np.arange(n_extra), bt)
+
+                def per_sample(a):
+                    return a.reshape((bt * n_extra,) + a.shape[1 + len(extra_names):])
+
+                for s, sname in enumerate(sector_names):
+                    mean, cov, ext, low = {}, {}, {}, {}
+                    for r, arr in reduced[bi]["stats"].items():
+                        mean[r] = per_sample(arr[..., s, 0])
+                        cov[r] = per_sample(arr[..., s, 1])
+                    for n_, arr in reduced[bi]["extras"].items():
+                        ext[n_] = per_sample(arr[..., s])
+                    for r, arr in lowpassed.items():
+                        low[r] = per_sample(arr[..., s])
+                    fields = Fields(lat=lat, plev=plev, mean=mean, coverage=cov, sector=sname, extras=ext,
+                                    info={"time_step_days": step_days, "lowpass": low})
+                    for fam in plan.families:
+                        if sname != "zonal" and not fam.sectors:
+                            continue
+                        results = fam.compute(fields, cfg)
+                        for m in fam.metrics:
+                            if m.id not in wanted:
+                                continue
+                            res = results[m.id]
+                            for h, hemi in enumerate(registry.hemispheres(m)):
+                                cols["t"].append(tidx)
+                                cols["e"].append(eidx)
+                                cols["hemisphere"].append(np.full(tidx.size, hemi, dtype=object))
+                                cols["sector"].append(np.full(tidx.size, sname, dtype=object))
+                                cols["metric"].append(np.full(tidx.size, m.id, dtype=object))
+                                cols["value"].append(res.value[:, h])
+                                cols["flag"].append(res.flag[:, h].astype(object))
+                reduced.pop(bi - 1 if self.lowpass else bi, None)
+                self.progress.step(t1, nt)
+        finally:
+            runner.close()
+            close_cached()
+        return self._outcome(cols, extra, extra_names)
+
+    def _outcome(self, cols, extra, extra_names):
+        infos, nt = self.infos, self.times.size
+        cat = registry.catalogue()
+        flat = {k: (np.concatenate(v) if v else np.array([], dtype=object)) for k, v in cols.items()}
+        iso = np.array([iso_time(t) for t in self.times], dtype=object)
+        source = self.label or derive_source([i.path for i in infos], infos[0].detected.attrs)
+        out = {"source": np.full(flat["t"].size, source, dtype=object), "time": iso[flat["t"]] if nt else flat["t"]}
+        if extra_names:
+            grids = np.meshgrid(*[np.arange(len(v)) for v in extra.values()], indexing="ij")
+            for name, g, vals in zip(extra_names, grids, extra.values()):
+                out[name] = np.array([str(x) for x in np.asarray(vals)[g.ravel()]], dtype=object)[flat["e"]]
+        out["hemisphere"] = flat["hemisphere"]
+        out["sector"] = flat["sector"]
+        out["metric"] = flat["metric"]
+        out["value"] = flat["value"].astype(float)
+        out["units"] = np.array([cat[m].units for m in flat["metric"]], dtype=object)
+        out["flag"] = flat["flag"]
+        notes = self.step_notes
+        if nt and flat["t"].size and (notes != "").any():
+            row_notes = notes[flat["t"]]
+            out["flag"] = np.where(row_notes != "", flat["flag"].astype(str).astype(object) + ";" + row_notes,
+                                   flat["flag"])
+        prov = {
+            "inputs": [{**_stat(i.path), "variables": i.detected.variables, "units": i.detected.units,
+                        "found_by": i.detected.why, "time_steps": int(i.detected.times.size),
+                        "first_time": iso_time(i.detected.times[0]) if i.detected.times.size else None,
+                        "last_time": iso_time(i.detected.times[-1]) if i.detected.times.size else None,
+                        "pressure_levels_hpa": {r: (None if v is None else [float(x) for x in v])
+                                                for r, v in i.plev.items()},
+                        "pressure_units_in_file": i.detected.plev_units, "layout": i.detected.layout}
+                       for i in infos],
+            "skipped_inputs": self.skipped,
+            "repeated_time_steps_dropped": [{"time": iso_time(self.times_all[k]), "path": infos[self.file_of[k]].path,
+                                             "kept_from": infos[self.file_of[p]].path,
+                                             **({"provisional_replaced_by_final": True}
+                                                if self.provisional[k] and not self.provisional[p] else {})}
+                                            for k, p in zip(self.dropped, self.partner)],
+            "repeated_times_policy": self.repeat_policy,
+            "calendar": infos[0].detected.calendar,
+            "time_span": [iso[0], iso[-1]] if nt else None,
+            "time_steps": int(nt),
+            "metrics": self.plan.metric_ids,
+            "sectors": {n: [a, b] for n, a, b in self.sectors},
+            "extra_key_columns": extra_names,
+            "time_step_notes": {code: [iso[k] for k in range(nt) if code in str(notes[k]).split(";")]
+                                for code in sorted({c for n in notes for c in str(n).split(";") if c})},
+        }
+        if self.lowpass:
+            prov["lowpass"] = self.lowpass.describe()
+        return Outcome(out, ["source", "time", *extra_names, "hemisphere", "sector", "metric"], prov, flat["t"])

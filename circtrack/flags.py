@@ -8,6 +8,10 @@ FLAGS = {
     "too_little_data": "too few valid points in the search window (see run.min_window_fraction); value is NaN",
     "level_missing": "a pressure level the metric needs lies outside the data's levels; value is NaN",
     "no_half_max": "the wind does not fall to half its maximum on one side of the jet; width is NaN",
+    "lowpass_window_incomplete": "the low-pass filter window reaches past the record's ends or across a gap in time; value is NaN",
+    "weak_peak": "the poleward eddy momentum flux or energy transport peaks below its threshold (eddies.min_momentum_flux_m2_s2, energy.min_transport_pw): the latitude is NaN, the peak value is kept",
+    "time_mean_input": "the input's time step exceeds eddies.max_time_step_days (e.g. monthly means): the eddy and energy fluxes contain only the time-mean flow (mean circulation and stationary eddies), the transient eddies are missing; value kept",
+    "time_step_unknown": "a single time step, so it is unknown whether transient eddies are resolved; eddy and energy flux value kept",
     "cells_out_of_order": "the southern cell's minimum lies north of the northern cell's maximum; boundary is NaN",
     "provisional_data": "appended after ';' (e.g. 'ok;provisional_data'): the time step comes from a provisional data stream (expver other than 1) because the final one has no data there",
 }

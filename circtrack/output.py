@@ -12,6 +12,7 @@ from importlib import metadata
 import numpy as np
 
 from circtrack import __version__
+from circtrack.errors import UsageError
 
 
 def format_value(v):
@@ -39,16 +40,41 @@ def sorted_lines(outcome):
     return lines
 
 
-def atomic_write_text(path, text):
-    """Write ``text`` to ``path`` through a temp file in the same directory, fsync and rename."""
+def check_output_path(out_path):
+    """Before any work: OUT's directory exists and is writable, and OUT is not a directory."""
+    if out_path == "-":
+        return
+    d = os.path.dirname(os.path.abspath(out_path))
+    if os.path.isdir(out_path):
+        raise UsageError(f"-o {out_path}: is a directory; give a file name such as "
+                         f"{os.path.join(out_path, 'indices.csv')}")
+    if not os.path.isdir(d):
+        raise UsageError(f"-o {out_path}: the directory {d} does not exist; create it first (mkdir -p {d})")
+    if not os.access(d, os.W_OK | os.X_OK):
+        raise UsageError(f"-o {out_path}: the directory {d} is not writable; choose another output directory")
+
+
+def temp_prefix(path):
+    """Temp files of ``path`` are ``.NAME.<random>.tmp`` beside it."""
+    return "." + os.path.basename(path) + "."
+
+
+def atomic_write_text(path, text, before_replace=None):
+    """Write ``text`` to ``path`` through a temp file in the same directory, fsync and rename.
+
+    ``before_replace`` (if given) is called after the temp file is written and synced, just before
+    the rename (a test hook to kill the process at exactly that moment).
+    """
     path = os.path.abspath(path)
     d = os.path.dirname(path)
-    fd, tmp = tempfile.mkstemp(prefix="." + os.path.basename(path) + ".", suffix=".tmp", dir=d)
+    fd, tmp = tempfile.mkstemp(prefix=temp_prefix(path), suffix=".tmp", dir=d)
     try:
         with os.fdopen(fd, "w", newline="") as f:
             f.write(text)
             f.flush()
             os.fsync(f.fileno())
+        if before_replace is not None:
+            before_replace()
         os.replace(tmp, path)
         dfd = os.open(d, os.O_RDONLY)
         try:

@@ -52,6 +52,7 @@ class Family:
     # name -> module-level fn(slabs, plev, lon, masks, cfg) run inside each read task on the full
     # fields (not zonal means): e.g. zonal means of products, per-longitude features. Returns an
     # array (t, *extra, *rest, S); the family sees fields.extras[name] as (N, *rest) per sector.
+    # A reducer with a keyword parameter ``lat`` also receives the ascending latitudes (J,).
     reducers: dict = field(default_factory=dict)
 
 
@@ -78,7 +79,7 @@ def register_family(name, *, inputs, levels, sectors=False, metrics, optional_in
 
 def _load():
     # importing the metric modules fills the registry
-    from circtrack.metrics import cells, jets, momentum, surface, tropopause  # noqa: F401
+    from circtrack.metrics import cells, jets, momentum, surface, transport, tropopause, waves  # noqa: F401
 
 
 def catalogue() -> dict[str, Metric]:

@@ -25,6 +25,8 @@ def _grid(det):
     elif det.plev_hpa is not None:
         parts.append(f"{det.plev_hpa.size} pressure levels {det.plev_hpa.max():g}..{det.plev_hpa.min():g} hPa "
                      f"(units in file: '{det.plev_units}')")
+    elif "plev" in det.problems:
+        parts.append(f"no usable pressure levels: {det.problems['plev']}")
     return "; ".join(parts) or "no grid found"
 
 

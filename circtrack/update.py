@@ -2,19 +2,29 @@
 
 Beside ``OUT.csv`` live ``OUT.state.json`` (what each input file was and which time steps it
 contributed, the parameter hash, the source label and a SHA-256 of the CSV) and ``OUT.lock``
-(``fcntl.flock``, so two cron jobs never write at once). Writes go sidecar, CSV, state, each
-atomically; the state is written last. If a run dies after the CSV but before the state, the
-CSV no longer matches the hash in the state and the next run rebuilds from all inputs, so the
-result after any sequence of data drops equals one clean ``circtrack track`` over all files.
+(``fcntl.flock``, so two cron jobs never write at once). Writes go CSV, sidecar, state, each
+atomically; the state is written last. If a run dies before the CSV is renamed into place,
+everything is as before; if it dies after the CSV but before the state, the CSV no longer
+matches the hash in the state and the next run rebuilds from all inputs, so the result after any
+sequence of data drops equals one clean ``circtrack track`` over all files. Temp files left by a
+killed run are removed by the next run (it holds the lock, so no other run can own them).
+
+Test hook: with the environment variable ``CIRCTRACK_PAUSE_AT`` set to a phase name, the run
+prints ``circtrack: paused at PHASE (pid N)`` on stderr and sleeps there, so a test can kill it at
+exactly that moment. Phases: ``before-csv-rename`` (the new CSV is written to its temp file and
+synced, not yet renamed) and ``before-state-write`` (CSV and sidecar renamed into place, the
+state not yet written).
 """
 
 from __future__ import annotations
 
 import fcntl
+import glob
 import hashlib
 import json
 import os
 import sys
+import time
 
 import click
 
@@ -78,6 +88,30 @@ def params_hash(cfg, metrics, sectors, overrides):
     blob = json.dumps({"config": cfg, "metrics": metrics, "sectors": [list(s) for s in sectors],
                        "variables": overrides}, sort_keys=True, default=str)
     return hashlib.sha256(blob.encode()).hexdigest()
+
+
+PAUSE_ENV = "CIRCTRACK_PAUSE_AT"
+PAUSE_PHASES = ("before-csv-rename", "before-state-write")
+
+
+def _pause_point(phase):
+    """Test hook (see the module docstring): announce the phase and sleep until killed."""
+    if os.environ.get(PAUSE_ENV) == phase:
+        print(f"circtrack: paused at {phase} (pid {os.getpid()})", file=sys.stderr, flush=True)
+        time.sleep(600)
+
+
+def _remove_stale_temps(paths):
+    """Temp files of OUT, its sidecar and state left by a killed run (called with the lock held)."""
+    from circtrack.output import temp_prefix
+
+    for p in paths:
+        p = os.path.abspath(p)
+        for tmp in glob.glob(os.path.join(glob.escape(os.path.dirname(p)), glob.escape(temp_prefix(p)) + "*.tmp")):
+            try:
+                os.unlink(tmp)
+            except FileNotFoundError:
+                pass
 
 
 def acquire_lock(out_path):
@@ -158,9 +192,11 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
                              if k not in {s[0] for s in secs}]
     policy = on_bad_file or cfg["run"]["on_bad_file"]
 
+    O.check_output_path(output)
     lock_fd = acquire_lock(output)
     try:
         sp = state_path(output)
+        _remove_stale_temps([output, O.sidecar_path(output), sp])
         state = _load_state(sp)
         old_lines, header = {}, None
         if state is not None and not rebuild:
@@ -205,7 +241,7 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
 
         # ---- open the new files (lazily) for their time axes; unreadable ones stop or are skipped
         entries = {a: dict(old_files[a]) for a in unchanged}
-        skipped = []
+        skipped, infos = [], []
         for a in fresh:
             try:
                 info = engine._prepare_file(shown[a], plan, cfg, all_secs, overrides)
@@ -215,8 +251,16 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
                     entries[a] = {**records[a], "skipped": str(e), "times": [], "owned": [], "attrs": {}}
                     continue
                 raise
+            infos.append(info)
             times = list(dict.fromkeys(engine.iso_time(t) for t in info.detected.times))
             entries[a] = {**records[a], "times": times, "owned": [], "attrs": info.detected.attrs}
+        # new files must fit those already in OUT (grid, levels, calendar, extra dimensions), as in
+        # one track over all files; only new files are computed, so compare them with a kept one
+        kept = [a for a in unchanged if not entries[a].get("skipped")]
+        if infos and kept:
+            infos.insert(0, engine._prepare_file(shown[kept[0]], plan, cfg, all_secs, overrides))
+        if len(infos) > 1:
+            engine._check_consistent(infos)
         for a in ab:
             if entries[a].get("skipped"):
                 skipped.append({"path": shown[a], "reason": entries[a]["skipped"]})
@@ -319,8 +363,9 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
             "csv_sha256": _sha_text(text), "provenance": base_prov,
             "files": {a: entries[a] for a in ab},
         }
+        O.atomic_write_text(output, text, before_replace=lambda: _pause_point("before-csv-rename"))
         O.atomic_write_text(O.sidecar_path(output), json.dumps(prov, indent=2, default=str) + "\n")
-        O.atomic_write_text(output, text)
+        _pause_point("before-state-write")
         O.atomic_write_text(sp, json.dumps(new_state, indent=1, default=str) + "\n")
         if not quiet:
             echo(f"circtrack: updated {output}: {len(to_run)} file(s) processed, {len(unchanged)} kept, "

@@ -116,7 +116,7 @@ def test_reanalysis_members_become_a_key_column(tmp_path, base):
     assert sorted(by_member) == ["0", "1", "2"]
     assert by_member["0"] == rows and by_member["1"] == rows
     a, b = keyed(by_member["2"]), keyed(rows)
-    for k, (v, flag) in b.items():
+    for k, (v, _, _) in b.items():
         if k[-1] == "eddy_jet_speed":
             assert a[k][0] == pytest.approx(v + 1.0, abs=0.02)    # member 2 has u + 1 m/s
 
@@ -236,9 +236,9 @@ def test_older_reanalysis_packed_int16(tmp_path, base):
     for n, (scale, offset) in {"ua": (0.01, 0.0), "va": (0.001, 0.0)}.items():
         rounded[n] = rounded[n].copy(data=(np.round((rounded[n].values - offset) / scale) * scale + offset))
     ref = run_cfg(write(rounded, tmp_path / "rounded.nc"), metric_ids=metrics)
-    assert_rows_close(got, O.sorted_lines(ref)[1:], atol_lat=1e-4, rtol=1e-5)
+    assert_rows_close(got, O.sorted_lines(ref)[1:], atol_lat=1e-4, rtol=1e-5, atol=1e-9)
     # 2. close to the unrounded field: within the packing precision (0.005 m/s for u, 5e-4 m/s for v)
-    assert_rows_close(got, rows, atol_lat=0.01, rtol=2e-3)
+    assert_rows_close(got, rows, atol_lat=0.01, rtol=5e-3, atol=1e-3)
 
 
 def test_older_reanalysis_capital_names_on_half_degree_grid(tmp_path, base):
@@ -255,9 +255,11 @@ def test_older_reanalysis_capital_names_on_half_degree_grid(tmp_path, base):
     path = tmp_path / "INVENTED.inst3_3d_asm_Np.20000115.nc4"
     out_ds.to_netcdf(str(path), encoding={"time": {"units": "minutes since 2000-01-15 00:00:00", "calendar": "standard"}})
     out = run_cfg(path, metric_ids=metrics)
-    first = [r for r in rows if r.split(",")[1] == "2000-01-15"]
+    # the same single time step on the baseline grid (eddy statistics depend on the number of steps)
+    one = run_cfg(write(make_dataset(1), tmp_path / "one.nc"), metric_ids=metrics)
     # a finer latitude grid: positions agree to the grid's interpolation error, amounts to 0.5 %
-    assert_rows_close(O.sorted_lines(out)[1:], first, atol_lat=0.2, rtol=5e-3)
+    assert_rows_close(O.sorted_lines(out)[1:], O.sorted_lines(one)[1:], atol_lat=0.2, rtol=5e-3, atol=1e-6,
+                      doubtful=False)   # a flat, weak peak (flag weak_peak) moves with the grid
     assert out.provenance["inputs"][0]["variables"] == {"ua": "U", "va": "V"}
 
 
@@ -300,7 +302,7 @@ def test_older_reanalysis_one_variable_per_file(tmp_path, base):
         ds[[var]].to_netcdf(str(tmp_path / f"{var}.mon.mean.nc"), encoding=e)
     out = run_cfg([tmp_path / "uwnd.mon.mean.nc", tmp_path / "vwnd.mon.mean.nc"])
     assert sorted(set(out.columns["metric"])) == metrics
-    assert_rows_close(O.sorted_lines(out)[1:], rows, atol_lat=0.01, rtol=2e-3)
+    assert_rows_close(O.sorted_lines(out)[1:], rows, atol_lat=0.01, rtol=5e-3, atol=1e-3)
 
 
 def test_final_data_in_a_later_file_replace_provisional_data(tmp_path, base):

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import os
+import selectors
 import signal
 import subprocess
 import sys
@@ -166,10 +167,10 @@ def test_kill_between_csv_and_state_is_recovered(tmp_path, monkeypatch):
     assert invoke("update", *files[:2], "-o", out, "-q", "--label", "L").exit_code == 0
     real = O.atomic_write_text
 
-    def dies_at_state(path, text):
+    def dies_at_state(path, text, **kw):
         if path.endswith(".state.json"):
             raise KeyboardInterrupt
-        real(path, text)
+        real(path, text, **kw)
 
     monkeypatch.setattr(O, "atomic_write_text", dies_at_state)
     assert invoke("update", *files, "-o", out, "-q", "--label", "L").exit_code == 130
@@ -180,23 +181,62 @@ def test_kill_between_csv_and_state_is_recovered(tmp_path, monkeypatch):
     assert out.read_bytes() == track_bytes(tmp_path, files, "--label", "L")
 
 
-@pytest.mark.parametrize("delay", [0.5, 1.5])
-def test_sigkill_mid_run(tmp_path, delay):
+def wait_for_line(stream, text, timeout=60.0):
+    """Read stderr lines of a child until one contains ``text``; fail (never skip) otherwise."""
+    sel = selectors.DefaultSelector()
+    sel.register(stream, selectors.EVENT_READ)
+    seen, deadline = [], time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if not sel.select(timeout=max(0.0, deadline - time.monotonic())):
+            break
+        line = stream.readline()
+        if not line:                                        # the child ended without pausing
+            break
+        seen.append(line)
+        if text in line:
+            return line
+    raise AssertionError(f"update never reported '{text}'; its stderr: {''.join(seen)!r}")
+
+
+@pytest.mark.parametrize("phase", U.PAUSE_PHASES)
+def test_sigkill_at_each_write_phase(tmp_path, monkeypatch, phase):
+    """A real update process is paused at a named phase (CIRCTRACK_PAUSE_AT) and SIGKILLed there."""
+    monkeypatch.delenv(U.PAUSE_ENV, raising=False)
     out = tmp_path / "out.csv"
-    files = [monthly(tmp_path, k, nt=6) for k in range(8)]
+    side, state = tmp_path / "out.provenance.json", tmp_path / "out.state.json"
+    files = [monthly(tmp_path, k) for k in range(3)]
     assert invoke("update", *files[:2], "-o", out, "-q", "--label", "L").exit_code == 0
-    before = out.read_bytes()
-    state_before = (tmp_path / "out.state.json").read_bytes()
+    before = {p: p.read_bytes() for p in (out, side, state)}
     cmd = [sys.executable, "-c", MAIN, "update", *files, "-o", str(out), "-q", "--label", "L"]
-    t0 = time.time()
-    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    time.sleep(delay)
-    proc.send_signal(signal.SIGKILL)
-    proc.wait()
-    if proc.returncode != -signal.SIGKILL:                  # pragma: no cover - machine too fast
-        pytest.skip(f"update finished in {time.time() - t0:.1f} s before the kill")
-    assert out.read_bytes() == before
-    assert (tmp_path / "out.state.json").read_bytes() == state_before
-    done = subprocess.run(cmd, capture_output=True, text=True)
-    assert done.returncode == 0, done.stderr
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True,
+                            env={**os.environ, U.PAUSE_ENV: phase})
+    try:
+        line = wait_for_line(proc.stderr, f"circtrack: paused at {phase}")
+        assert f"(pid {proc.pid})" in line
+        proc.send_signal(signal.SIGKILL)
+        assert proc.wait(timeout=30) == -signal.SIGKILL
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+        proc.stderr.close()
+    temps = sorted(p.name for p in tmp_path.glob(".out.*.tmp"))
+    assert state.read_bytes() == before[state]              # the state is always the previous one
+    if phase == "before-csv-rename":
+        # the new CSV sat synced in its temp file: OUT and its sidecar are the previous ones
+        assert out.read_bytes() == before[out] and side.read_bytes() == before[side]
+        assert len(temps) == 1 and temps[0].startswith(".out.csv.")
+    else:
+        # CSV and sidecar renamed into place, the state not yet written: the CSV is the new one
+        assert out.read_bytes() == track_bytes(tmp_path, files, "--label", "L")
+        assert temps == []
+    # the next run completes the job (rebuilding when the CSV no longer matches the state)
+    r = invoke("update", *files, "-o", out, "--label", "L")
+    assert r.exit_code == 0, r.output
+    assert ("rebuilding" in r.output) == (phase == "before-state-write")
     assert out.read_bytes() == track_bytes(tmp_path, files, "--label", "L")
+    assert list(tmp_path.glob(".out.*.tmp")) == []           # the killed run's temp file is gone
+    st = json.loads(state.read_text())
+    assert st["csv_sha256"] == U._sha_text(out.read_text()) and len(st["files"]) == 3
+    r = invoke("update", *files, "-o", out, "--label", "L")
+    assert r.exit_code == 0 and "nothing new" in r.output

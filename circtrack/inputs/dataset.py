@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import os
+import re
 import tempfile
 import warnings
 from dataclasses import dataclass, field
@@ -109,28 +110,24 @@ def open_dataset(path, cfg) -> xr.Dataset:
         raise InputError(f"{path}: file not found; check the path")
     if os.path.isfile(path) and os.path.getsize(path) == 0:
         raise InputError(f"{path}: the file is empty; re-copy or re-download it, or pass --on-bad-file skip")
+    if os.path.isfile(path):
+        _check_classic_complete(path)
     coder = xr.coders.CFDatetimeCoder(use_cftime=True)
     try:
-        try:
-            with warnings.catch_warnings():
-                # stores without consolidated metadata are read fine, only their opening is slower
-                warnings.filterwarnings("ignore", message="Failed to open Zarr store with consolidated metadata")
-                return xr.open_dataset(path, engine=engine, chunks=None, cache=False,
-                                       decode_times=coder, decode_timedelta=False, **extra)
-        except ValueError as e:
-            if "months since" not in str(e).lower():
-                raise
+        with warnings.catch_warnings():
+            # stores without consolidated metadata are read fine, only their opening is slower
+            warnings.filterwarnings("ignore", message="Failed to open Zarr store with consolidated metadata")
             ds = xr.open_dataset(path, engine=engine, chunks=None, cache=False,
-                                 decode_times=False, decode_timedelta=False, **extra)
-            try:
-                return _decode_times_ourselves(ds, path, cfg, coder)
-            except BaseException:
-                ds.close()
-                raise
-    except InputError:
-        raise
+                                 decode_times=coder, decode_timedelta=False, **extra)
     except ValueError as e:
-        msg = str(e).splitlines()[0]
+        # xarray's advice (decode_times=False, install cftime) is for library users, not for this command
+        msg = str(e).splitlines()[0].split(" Try opening", 1)[0]
+        if "months since" in msg.lower():
+            return _open_months_since(path, engine, extra, cfg, coder)
+        if "time" in msg.lower() or "zero" in msg.lower():
+            ds = _open_year_zero(path, engine, coder)
+            if ds is not None:
+                return ds
         if "time" in msg.lower() or "calendar" in msg.lower() or "units" in msg.lower():
             raise InputError(f"{path}: the time axis cannot be decoded ({msg}); fix its 'units'/'calendar' "
                              "attributes (e.g. 'days since 1979-01-01') or convert the file with CF time units")
@@ -141,6 +138,89 @@ def open_dataset(path, cfg) -> xr.Dataset:
         kind = "GRIB" if engine == "cfgrib" else "netCDF"
         raise InputError(f"{path}: cannot be read as {kind} ({msg}); the file may be truncated or not "
                          f"{kind}: re-copy it, or pass --on-bad-file skip")
+    if ds.sizes and all(str(d).startswith("phony_dim_") for d in ds.sizes):
+        ds.close()
+        raise InputError(f"{path}: is a plain HDF5 file, not netCDF (its arrays have no named dimensions or "
+                         "coordinates); write it as netCDF with time/lat/lon (and plev) coordinates, or pass "
+                         "--on-bad-file skip")
+    return ds
+
+
+_CLASSIC_MAGIC = (b"CDF\x01", b"CDF\x02")
+
+
+def _check_classic_complete(path):
+    """A netCDF classic file cut short still opens and reads zeros past its end; check its length.
+
+    The header states where every variable's data begins and how long it is; scipy's reader maps
+    the file (nothing is read) and fails when the file is shorter than that.
+    """
+    with open(path, "rb") as f:
+        magic = f.read(4)
+    if magic not in _CLASSIC_MAGIC:
+        return
+    import gc
+    import warnings
+
+    from scipy.io import netcdf_file
+
+    problem = None
+    with warnings.catch_warnings():
+        # scipy warns when a mapped file is freed while views on it exist; nothing is read here
+        warnings.simplefilter("ignore")
+        try:
+            f = netcdf_file(path, "r", mmap=True)
+            f.variables.clear()
+            f.close()
+            del f
+        except (ValueError, TypeError, OSError, EOFError) as e:
+            problem = str(e).splitlines()[0] if str(e) else type(e).__name__
+            gc.collect()                   # free the half-built reader while the warning is ignored
+    if problem is not None:
+        raise InputError(f"{path}: netCDF classic file shorter than its header says ({os.path.getsize(path)} "
+                         f"bytes; {problem}); the file is truncated: re-copy it, or pass --on-bad-file skip")
+
+
+YEAR_ZERO_CALENDAR = "proleptic_gregorian"
+_YEAR_ZERO = re.compile(r"\bsince\s+0{1,4}-")
+_MIXED_CALENDARS = {"", "standard", "gregorian", "julian"}
+
+
+def year_zero_time(units, calendar):
+    """True for a time axis counted from year 0 in a calendar that has no year 0 (CF 'standard',
+    'gregorian', 'julian', or no calendar attribute), the usual layout of climatology files
+    (e.g. 'hour since 0000-01-01 00:00:00')."""
+    return bool(_YEAR_ZERO.search(str(units))) and str(calendar).strip().lower() in _MIXED_CALENDARS
+
+
+def _open_year_zero(path, engine, coder):
+    """Reopen a file whose time axis counts from year 0 and decode it in the proleptic Gregorian
+    calendar with astronomical year numbering (year 0 exists, as ISO 8601 has it); None when the
+    failure had another cause. The decision is recorded by :func:`detect` (``why['time']``)."""
+    try:
+        ds = xr.open_dataset(path, engine=engine, chunks=None, cache=False, decode_times=False,
+                             decode_timedelta=False)
+    except (ValueError, OSError, RuntimeError, KeyError, IndexError, TypeError):
+        return None
+    fixed = {}
+    for name, var in ds.variables.items():
+        if year_zero_time(var.attrs.get("units", ""), var.attrs.get("calendar", "")):
+            v = var.copy()
+            v.attrs["calendar"] = YEAR_ZERO_CALENDAR
+            try:
+                fixed[name] = coder.decode(v, name=name)
+            except (ValueError, OverflowError):
+                ds.close()
+                return None
+    if not fixed:
+        ds.close()
+        return None
+    ds = ds.assign_coords({k: v for k, v in fixed.items() if k in ds.coords})
+    for k, v in fixed.items():
+        if k not in ds.coords:
+            ds[k] = v
+    ds.attrs["_circtrack_year_zero"] = ",".join(fixed)
+    return ds
 
 
 def _add_months(ref, months, calendar):
@@ -178,6 +258,25 @@ def _decode_months(values, units, calendar, path, name, cfg):
         b = _add_months(ref.replace(day=1), m + 1, calendar) + (ref - ref.replace(day=1))
         out.append(a + (b - a) * float(v - m))
     return np.array(out, dtype=object)
+
+
+def _open_months_since(path, engine, extra, cfg, coder):
+    """Reopen without time decoding and decode "months since" ourselves (one clear error if ambiguous)."""
+    try:
+        ds = xr.open_dataset(path, engine=engine, chunks=None, cache=False, decode_times=False,
+                             decode_timedelta=False, **extra)
+    except (ValueError, OSError, RuntimeError, KeyError, IndexError, TypeError) as e:
+        raise InputError(f"{path}: cannot be opened with the {engine} engine ({str(e).splitlines()[0]}); check "
+                         "that it is a complete netCDF/Zarr file, or pass --on-bad-file skip")
+    try:
+        return _decode_times_ourselves(ds, path, cfg, coder)
+    except InputError:
+        ds.close()
+        raise
+    except (ValueError, OverflowError) as e:
+        ds.close()
+        raise InputError(f"{path}: the time axis cannot be decoded ({str(e).splitlines()[0]}); fix its "
+                         "'units'/'calendar' attributes or convert the file with CF time units ('days since ...')")
 
 
 def _decode_times_ourselves(ds, path, cfg, coder):
@@ -370,6 +469,13 @@ def detect(ds, path, overrides=None) -> Detected:
         tv = ds[det.coords["time"]]
         det.times = np.asarray(tv.values)
         det.calendar = str(tv.encoding.get("calendar", tv.attrs.get("calendar", "standard")))
+        if det.times.size == 0:
+            raise InputError(f"{path}: the time axis '{det.coords['time']}' holds no time steps; the file may be "
+                             "incomplete: re-copy it, or pass --on-bad-file skip")
+        if det.coords["time"] in str(ds.attrs.get("_circtrack_year_zero", "")).split(","):
+            units = _attr(tv, "units") or tv.encoding.get("units", "")
+            det.why["time"] = (f"'{det.coords['time']}' counts from year 0 ('{units}'), which its calendar lacks; "
+                               f"decoded as {YEAR_ZERO_CALENDAR} with year 0 (climatology)")
         if det.times.size and not hasattr(det.times.flat[0], "calendar"):
             raise InputError(f"{path}: time variable '{det.coords['time']}' has no decodable units "
                              f"('{_attr(tv, 'units')}'); give it CF units such as 'days since 2000-01-01'")
@@ -381,12 +487,18 @@ def detect(ds, path, overrides=None) -> Detected:
         else:
             det.plev_units = _attr(pv, "units")
             conv = U.conversion(det.plev_units, "pressure")
-            if conv is None:
+            if conv is None and det.plev_units.strip():
+                # units that are not pressure (e.g. 'degC', or '1' for model levels): never guess
+                det.problems["plev"] = (f"vertical axis '{det.coords['plev']}' has units '{det.plev_units}', which "
+                                        "are not pressure units; set its units attribute to 'Pa' or 'hPa' (e.g. "
+                                        f"ncatted -a units,{det.coords['plev']},o,c,hPa) if it holds pressure levels")
+            elif conv is None:
                 vals = np.asarray(pv.values, float)
-                # no usable units: decide by magnitude (documented in DEVELOPERS.md)
+                # no units at all: decide by magnitude (recorded in the sidecar as '... (by magnitude)')
                 conv = (0.01, 0.0) if np.nanmax(vals) > 2000 else (1.0, 0.0)
-                det.plev_units = det.plev_units or ("Pa (by magnitude)" if conv[0] == 0.01 else "hPa (by magnitude)")
-            det.plev_hpa = np.round(np.asarray(pv.values, float) * conv[0], 6)
+                det.plev_units = "Pa (by magnitude)" if conv[0] == 0.01 else "hPa (by magnitude)"
+            if conv is not None:
+                det.plev_hpa = np.round(np.asarray(pv.values, float) * conv[0], 6)
     _detect_streams(ds, det)
     core = {det.coords.get(k) for k in ("time", "lat", "lon", "plev")} - {None}
     if det.streams and det.streams["kind"] == "dim":
@@ -402,6 +514,17 @@ def detect(ds, path, overrides=None) -> Detected:
     for d in sorted(extra):
         det.extra_dims[d] = np.asarray(ds[d].values) if d in ds.variables else np.arange(ds.sizes[d])
     return det
+
+
+def require_axes(det):
+    """The time, latitude and longitude axes every metric needs, or one clear error naming the fix."""
+    path = det.path
+    if "time" not in det.coords:
+        raise InputError(f"{path}: no time axis found; name it 'time' or give it CF units ('days since ...')")
+    for key in ("lat", "lon"):
+        if key not in det.coords:
+            raise InputError(f"{path}: no {'latitude' if key == 'lat' else 'longitude'} axis found; name it "
+                             f"'{key}' or give it units '{'degrees_north' if key == 'lat' else 'degrees_east'}'")
 
 
 RANK_WORDS = {0: "a CF standard_name match", 1: "an exact name match", 2: "a case-insensitive name match"}
@@ -552,6 +675,8 @@ def standardise(ds, det: Detected, role, levels_hpa, cfg):
             raise InputError(f"{path}: variable '{name}' ({role}) has no {what}; name its dimension "
                              f"'{need}' or give it CF attributes (standard_name/units), or add "
                              f"'{need} = \"DIM\"' under [variables] in a config file")
+    if rule["levels"] and "plev" in det.problems:
+        raise InputError(f"{path}: variable '{name}' ({role}): {det.problems['plev']}")
     conv = U.conversion(det.units.get(role, ""), rule["kind"])
     if conv is None:
         raise InputError(f"{path}: variable '{name}' ({role}) has units '{det.units.get(role, '')}', which circtrack "

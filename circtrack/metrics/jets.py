@@ -14,6 +14,7 @@ import numpy as np
 
 from circtrack.kernels.crossings import level_crossing, reverse
 from circtrack.kernels.extrema import interp_at
+from circtrack.kernels.vertical import at_level
 from circtrack.metrics.common import HEMISPHERES, hemisphere_view, missing, peak, signed
 from circtrack.registry import Metric, Result, register_family
 
@@ -50,12 +51,21 @@ def compute(fields, cfg):
     if upper is None or lower is None:
         missing(out.values(), "level_missing")
         return out
+    # the eddy-driven jet from low-pass filtered wind when jets.eddy_lowpass_days > 0 (the engine
+    # filters across chunk and file boundaries; samples without a full window are NaN)
+    low = fields.info.get("lowpass", {}).get("ua")
+    eddy_wind, no_window = lower, np.zeros(n, dtype=bool)
+    if low is not None:
+        cov = fields.coverage["ua"] >= cfg["run"]["min_coverage"]
+        eddy_wind = at_level(np.where(cov, low, np.nan), fields.plev["ua"], j["lower_level_hpa"],
+                             tolerance=cfg["run"]["level_tolerance_hpa"])
+        no_window = ~np.isfinite(eddy_wind).any(axis=-1)
     for h, hemi in enumerate(HEMISPHERES):
         idx, x = hemisphere_view(fields.lat, hemi)
-        u_up, u_lo = upper[:, idx], lower[:, idx]
+        u_up, u_lo = upper[:, idx], eddy_wind[:, idx]
 
         stj_lat, stj_speed = out["subtropical_jet_lat"], out["subtropical_jet_speed"]
-        ext = peak(u_up - u_lo, x, j["subtropical_window"], cfg, stj_lat, None, h)
+        ext = peak(u_up - lower[:, idx], x, j["subtropical_window"], cfg, stj_lat, None, h)
         stj_speed.value[:, h] = interp_at(u_up, x, stj_lat.value[:, h])
         stj_speed.flag[:, h] = stj_lat.flag[:, h]
         stj_lat.value[:, h] = signed(hemi, stj_lat.value[:, h])
@@ -73,6 +83,9 @@ def compute(fields, cfg):
         width_r.flag[notok, h] = lat_r.flag[notok, h]
         width_r.value[notok, h] = np.nan
         lat_r.value[:, h] = signed(hemi, lat_r.value[:, h])
+        for r in (lat_r, speed_r, width_r):
+            r.value[no_window, h] = np.nan
+            r.flag[no_window, h] = "lowpass_window_incomplete"
     return out
 
 

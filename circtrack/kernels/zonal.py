@@ -1,0 +1,177 @@
+"""Reductions over longitude that are not plain zonal means: covariances of two fields, column
+energy sums, zonal Fourier amplitudes and per-longitude extrema.
+
+Arrays carry longitude last, ``(..., I)``; pressure levels (where there are any) sit third from the
+end, ``(..., L, J, I)``. Missing values are NaN and are left out; numpy only; NaN instead of
+exceptions.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from circtrack.constants import CP_DRY, GRAVITY, LATENT_HEAT_VAPORIZATION
+from circtrack.kernels.extrema import window_extremum
+from circtrack.kernels.vertical import at_level
+
+
+def zonal_covariance(a, b, mask=None):
+    """Zonal covariance ``[a'b'] = [ab] - [a][b]`` over the longitudes where both are valid.
+
+    Parameters
+    ----------
+    a, b : arrays ``(..., I)``.
+    mask : boolean ``(I,)`` selecting a longitude band, or None for the whole circle.
+
+    Returns
+    -------
+    (cov, fraction) : ``(...)`` each; ``cov`` is the population covariance (divided by the number of
+    valid longitudes), NaN where none is valid; ``fraction`` is the share of valid longitudes.
+
+    Notes
+    -----
+    The deviations are taken from the mean of the same valid longitudes, so ``[a'] = [b'] = 0`` on
+    the points used and ``[ab] = [a][b] + [a'b']`` holds exactly (Peixoto & Oort 1992, ch. 4).
+    """
+    a = np.asarray(a, dtype=np.float64)
+    b = np.asarray(b, dtype=np.float64)
+    if mask is not None:
+        a, b = a[..., mask], b[..., mask]
+    ok = np.isfinite(a) & np.isfinite(b)
+    n = ok.sum(axis=-1)
+    a0 = np.where(ok, a, 0.0)
+    b0 = np.where(ok, b, 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ma = a0.sum(axis=-1) / n
+        mb = b0.sum(axis=-1) / n
+        cov = np.where(ok, (a0 - ma[..., None]) * (b0 - mb[..., None]), 0.0).sum(axis=-1) / n
+    cov = np.where(n > 0, cov, np.nan)
+    return cov, n / max(a.shape[-1], 1)
+
+
+def slab_at_level(arr, p, target, *, tolerance):
+    """``arr (..., L, J, I)`` at pressure ``target`` -> ``(..., J, I)``, or None outside the levels.
+
+    Nearest level within ``tolerance``, else linear in log-pressure between the bracketing levels
+    (:func:`circtrack.kernels.vertical.at_level`)."""
+    if p is None:
+        return None
+    moved = np.moveaxis(np.asarray(arr), -1, -3)            # (..., I, L, J)
+    out = at_level(moved, p, target, tolerance=tolerance)   # (..., I, J)
+    return None if out is None else np.moveaxis(out, -2, -1)
+
+
+def layer_weights(p):
+    """Pressure thickness of each level's layer, ``(L,)``, in the units of ``p`` (increasing, top first).
+
+    ``sum_k w_k f_k`` is the integral of ``f`` from p = 0 to the lowest level with ``f`` constant
+    above the top level and the trapezoid rule between levels, the same rule as
+    :func:`circtrack.kernels.vertical.cumulative_pressure_integral`:
+    ``w_0 = p_0 + (p_1 - p_0)/2``, ``w_k = (p_{k+1} - p_{k-1})/2``, ``w_{L-1} = (p_{L-1} - p_{L-2})/2``.
+    """
+    p = np.asarray(p, dtype=float)
+    if p.size == 1:
+        return p.copy()
+    w = np.empty_like(p)
+    w[0] = p[0] + 0.5 * (p[1] - p[0])
+    w[1:-1] = 0.5 * (p[2:] - p[:-2])
+    w[-1] = 0.5 * (p[-1] - p[-2])
+    return w
+
+
+def moist_static_energy(t, z, q):
+    """``cp T + g z + L q`` in J kg-1 from temperature (K), geopotential height (m) and specific
+    humidity (kg kg-1); NaN where any is missing."""
+    e = np.multiply(np.asarray(t, float), CP_DRY)
+    e += GRAVITY * np.asarray(z, float)
+    e += LATENT_HEAT_VAPORIZATION * np.asarray(q, float)
+    return e
+
+
+def column_sums(v, e, p_pa):
+    """Pressure-weighted column sums for the energy transport, ``(..., L, J, I)`` -> four ``(..., J, I)``.
+
+    Returns ``(sum w v e, sum w v, sum w e, sum w)`` over the levels where both ``v`` and ``e`` are
+    valid (below-ground NaN contributes nothing, as in the streamfunction), with ``w`` from
+    :func:`layer_weights` in Pa. Divided by g these are column integrals per unit area.
+    """
+    v = np.asarray(v, dtype=np.float64)
+    e = np.asarray(e, dtype=np.float64)
+    w = layer_weights(p_pa)
+    ok = np.isfinite(v) & np.isfinite(e)
+    if ok.all():                                     # the usual case above the ground: no masking
+        sw = np.broadcast_to(w.sum(), v.shape[:-3] + v.shape[-2:])
+        return (np.einsum("...ljk,l->...jk", v * e, w), np.einsum("...ljk,l->...jk", v, w),
+                np.einsum("...ljk,l->...jk", e, w), sw)
+    v0 = np.where(ok, v, 0.0)
+    e0 = np.where(ok, e, 0.0)
+    return (np.einsum("...ljk,l->...jk", v0 * e0, w), np.einsum("...ljk,l->...jk", v0, w),
+            np.einsum("...ljk,l->...jk", e0, w), np.einsum("...ljk,l->...jk", ok.astype(np.float64), w))
+
+
+def covers_circle(lon):
+    """True when the longitudes go round the whole circle: no cyclic gap wider than 1.5 times the
+    median spacing (a regional grid has one large gap)."""
+    lam = np.sort(np.mod(np.asarray(lon, float), 360.0))
+    if lam.size < 3:
+        return False
+    gaps = np.diff(np.concatenate([lam, [lam[0] + 360.0]]))
+    return bool(gaps.max() <= 1.5 * np.median(gaps))
+
+
+def fourier_amplitudes(y, lon, wavenumbers):
+    """Amplitudes ``A_k`` of zonal wavenumbers ``k`` of ``y (..., I)`` on longitudes ``lon`` (degrees).
+
+    ``y(lon) = a_0 + sum_k A_k cos(k lon - theta_k)``; ``A_k = sqrt(a_k^2 + b_k^2)`` with
+    ``a_k = 1/pi sum_i w_i y_i cos(k lon_i)``, ``b_k = 1/pi sum_i w_i y_i sin(k lon_i)`` and ``w_i`` the
+    longitude spacing around each point (half the distance to each neighbour, cyclic, in radians;
+    ``sum w_i = 2 pi``). On a regular grid covering the circle this is the discrete Fourier transform,
+    exact for ``k < I/2``. Rows with any missing longitude give NaN. Returns ``(..., K)``.
+    """
+    lam = np.deg2rad(np.mod(np.asarray(lon, float), 360.0))
+    order = np.argsort(lam, kind="stable")       # sum in one longitude order whatever the file's convention
+    lam = lam[order]
+    y = np.asarray(y, dtype=np.float64)[..., order]
+    gaps = np.diff(np.concatenate([lam, [lam[0] + 2 * np.pi]]))          # to the next point, cyclic
+    w = 0.5 * (gaps + np.roll(gaps, 1))
+    ks = np.asarray(wavenumbers, dtype=float)
+    cos = np.cos(ks[:, None] * lam[None, :]) * w[None, :]                # (K, I)
+    sin = np.sin(ks[:, None] * lam[None, :]) * w[None, :]
+    y0 = np.nan_to_num(y, nan=0.0)
+    a = y0 @ cos.T / np.pi
+    b = y0 @ sin.T / np.pi
+    amp = np.hypot(a, b)
+    return np.where(np.isfinite(y).all(axis=-1)[..., None], amp, np.nan)
+
+
+def per_longitude_peak(y, lat, hemi, window, *, min_fraction):
+    """Latitude (poleward-positive degrees) of the maximum of ``y (..., J, I)`` at each longitude.
+
+    ``lat (J,)`` ascending; ``hemi`` "NH" or "SH"; ``window`` ``(lo, hi)`` in degrees poleward. The
+    maximum is refined with the 3-point parabola (:func:`circtrack.kernels.extrema.window_extremum`).
+    Returns ``(..., I)``: NaN where the maximum sits on the window edge or the window has less than
+    ``min_fraction`` valid points.
+    """
+    lat = np.asarray(lat, float)
+    idx = np.flatnonzero(lat >= 0) if hemi == "NH" else np.flatnonzero(lat <= 0)[::-1]
+    x = np.abs(lat[idx])
+    yh = np.moveaxis(np.asarray(y, float)[..., idx, :], -1, -2)         # (..., I, Jh)
+    ext = window_extremum(yh, x, window[0], window[1], kind="max")
+    good = ~ext.at_edge & (ext.valid_fraction >= min_fraction) & np.isfinite(ext.position)
+    return np.where(good, ext.position, np.nan)
+
+
+def spread(values, mask=None):
+    """Population standard deviation over the last axis of the valid values, and the valid share.
+
+    ``values (..., I)``, ``mask`` a boolean ``(I,)`` band or None. Returns ``(std, mean, fraction)``."""
+    v = np.asarray(values, float)
+    if mask is not None:
+        v = v[..., mask]
+    ok = np.isfinite(v)
+    n = ok.sum(axis=-1)
+    v0 = np.where(ok, v, 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = v0.sum(axis=-1) / n
+        var = np.where(ok, (v0 - mean[..., None]) ** 2, 0.0).sum(axis=-1) / n
+    return np.sqrt(var), mean, n / max(v.shape[-1], 1)

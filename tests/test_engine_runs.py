@@ -1,0 +1,172 @@
+"""The engine's execution: every way of cutting and scheduling the work gives the same rows;
+planning reads nothing; the low-pass filter does not see chunk or file boundaries."""
+
+from __future__ import annotations
+
+import datetime
+
+import cftime
+import dask
+import numpy as np
+import pytest
+import scipy.signal
+
+from circtrack import config as C
+from circtrack import engine, synthetic
+from circtrack.inputs import dataset as D
+from circtrack.lowpass import filter_valid, lanczos_weights, response
+from tests.conftest import csv_rows, make_dataset, write
+
+
+@pytest.fixture(scope="module")
+def four_files(tmp_path_factory):
+    d = tmp_path_factory.mktemp("runs")
+    n = 12
+    hadley = 1.0e11 * (1.0 + 0.3 * np.sin(np.arange(n) / 3.0))
+    edj = np.stack([45.0 + 3.0 * np.sin(np.arange(n) / 2.0), -50.0 + 2.0 * np.cos(np.arange(n) / 2.0)], axis=1)
+    ds = make_dataset(n, hadley_peak=hadley, edj=edj)
+    return [write(ds.isel(time=slice(k, k + 3)), d / f"part_{k // 3}.nc") for k in range(0, n, 3)]
+
+
+def _rows(files, **run):
+    cfg = C.load(None)
+    cfg["run"].update(run)
+    return csv_rows(engine.track(files, cfg, label="L"))
+
+
+def test_chunking_and_schedulers_give_identical_rows(four_files):
+    ref = _rows(four_files, time_chunk=1000, scheduler="sync")
+    assert len(ref) > 250
+    for chunk in (1, 2, 5):
+        for sched in ("sync", "threads", "processes"):
+            assert _rows(four_files, time_chunk=chunk, scheduler=sched, batch_time_steps=7) == ref, (chunk, sched)
+
+
+def test_distributed_cluster_gives_identical_rows(four_files):
+    pytest.importorskip("distributed")
+    from circtrack.cluster import scheduler_context
+
+    ref = _rows(four_files, time_chunk=1000, scheduler="sync")
+    cfg = C.load(None)
+    cfg["run"]["time_chunk"] = 3
+    with scheduler_context(2, None, cfg) as client:
+        assert client is not None
+        rows = csv_rows(engine.track(four_files, cfg, label="L"))
+    assert rows == ref
+
+
+def test_planning_reads_nothing(four_files, monkeypatch):
+    calls = []
+    real = D.RoleReader.read_noted      # what the tasks call (values and per-time-step notes)
+
+    def counting(self, ds, t0, t1):
+        calls.append((self.path, self.role, t0, t1))
+        return real(self, ds, t0, t1)
+
+    monkeypatch.setattr(D.RoleReader, "read_noted", counting)
+    cfg = C.load(None)
+    cfg["run"]["time_chunk"] = 2
+    run = engine.Run(four_files, cfg, metric_ids=["hadley_edge_lat", "eddy_jet_lat"])
+    tasks = run.tasks()
+    assert len(tasks) == 8 and calls == []          # 4 files x 3 steps in chunks of 2: 8 tasks, no read yet
+    (out,) = dask.compute(tasks[1], scheduler="sync")
+    assert sorted(c[1] for c in calls) == ["ua", "va"] and {c[2:] for c in calls} == {(2, 3)}
+    assert out["stats"]["ua"].shape[0] == 1
+    assert calls[0][0] == four_files[0]
+
+
+# ---------------------------------------------------------------- the low-pass filter
+def test_lanczos_weights_equal_the_reference_library():
+    # scipy.signal.firwin with the Lanczos (sinc) window designs the same windowed-sinc low-pass
+    # filter as Duchon (1979) eq. (12), normalised to unit gain at zero frequency
+    for cutoff, n in ((10, 30), (10, 60), (40, 120), (7.5, 25)):
+        ref = scipy.signal.firwin(2 * n + 1, 1.0 / cutoff, window="lanczos", fs=1.0)
+        assert np.allclose(lanczos_weights(cutoff, n), ref, atol=1e-15)
+
+
+def test_lanczos_response():
+    w = lanczos_weights(10, 30)
+    assert w.sum() == pytest.approx(1.0)
+    # Duchon (1979): the Lanczos response passes through one half at the cutoff frequency (from memory)
+    assert response(w, 0.1)[0] == pytest.approx(0.5, abs=0.02)
+    assert response(w, 1 / 40)[0] == pytest.approx(1.0, abs=0.01)       # slow variations pass
+    assert abs(response(w, 1 / 3)[0]) < 0.01                          # 3-day wiggles are removed
+
+
+def test_filter_validity_at_edges_and_gaps():
+    days = list(range(20)) + list(range(25, 40))               # a 5-day gap after day 19
+    t = np.array([cftime.datetime(2001, 1, 1, calendar="noleap") + datetime.timedelta(days=d)
+                  for d in days])
+    ok = filter_valid(t, 3, 1.0)
+    assert not ok[:3].any() and not ok[-3:].any()                # the ends
+    assert ok[3:17].all()                                        # windows inside the first stretch
+    assert not ok[17:23].any()                                   # windows across the gap
+    assert ok[23:32].all()
+
+
+@pytest.fixture(scope="module")
+def daily_files(tmp_path_factory):
+    d = tmp_path_factory.mktemp("daily")
+    n = 150
+    k = np.arange(n)
+    slow_nh = 45.0 + 3.0 * np.sin(2 * np.pi * k / 60.0)
+    wiggle = 4.0 * np.sin(2 * np.pi * k / 3.0)
+    edj = np.stack([slow_nh + wiggle, -50.0 - wiggle], axis=1)
+    times = np.array([cftime.datetime(2001, 1, 1, calendar="noleap") + datetime.timedelta(days=int(i))
+                      for i in k])
+    ds = synthetic.dataset(np.arange(-90.0, 91.0, 1.0), np.arange(0.0, 360.0, 45.0), [850.0, 500.0, 200.0], times,
+                           edj=edj, wave_amplitude=0.0)
+    enc = synthetic.time_encoding("noleap")
+    paths = []
+    for j, (a, b) in enumerate(((0, 40), (40, 95), (95, 150))):
+        p = str(d / f"day_{j}.nc")
+        ds.isel(time=slice(a, b)).to_netcdf(p, encoding=enc)
+        paths.append(p)
+    return paths, slow_nh
+
+
+def _jet(paths, **run):
+    cfg = C.load(None)
+    cfg["jets"]["eddy_lowpass_days"] = 10.0
+    cfg["run"].update(run)
+    out = engine.track(paths, cfg, metric_ids=["eddy_jet_lat"], label="L")
+    c = out.columns
+    sel = (c["hemisphere"] == "NH") & (c["sector"] == "zonal")
+    order = np.argsort(c["time"][sel], kind="stable")
+    return c["value"][sel][order], c["flag"][sel][order], out
+
+
+def test_lowpass_jet_ignores_chunk_and_file_boundaries(daily_files):
+    paths, slow = daily_files
+    v_ref, f_ref, out = _jet(paths, time_chunk=1000, scheduler="sync", batch_time_steps=1000)
+    assert out.provenance["lowpass"]["cutoff_days"] == 10.0 and out.provenance["lowpass"]["weights"] == 61
+    for chunk, batch in ((1, 31), (7, 40), (16, 64)):
+        v, f, _ = _jet(paths, time_chunk=chunk, batch_time_steps=batch)
+        assert np.array_equal(f, f_ref)
+        assert np.allclose(v, v_ref, equal_nan=True, rtol=0, atol=1e-9), (chunk, batch)
+    # the record's first and last 30 days have no full window
+    assert np.all(f_ref[:30] == "lowpass_window_incomplete") and np.all(f_ref[-30:] == "lowpass_window_incomplete")
+    assert np.isnan(v_ref[:30]).all() and np.isnan(v_ref[-30:]).all()
+
+
+def test_lowpass_removes_the_synoptic_wiggle(daily_files):
+    paths, slow = daily_files
+    v, f, _ = _jet(paths, scheduler="sync")
+    cfg = C.load(None)
+    raw = engine.track(paths, cfg, metric_ids=["eddy_jet_lat"], label="L").columns
+    sel = (raw["hemisphere"] == "NH")
+    r = raw["value"][sel][np.argsort(raw["time"][sel], kind="stable")]
+    inner = slice(30, 120)
+    assert np.all(f[inner] == "ok")
+    day_to_day_raw = np.std(np.diff(r[inner]))
+    day_to_day_low = np.std(np.diff(v[inner]))
+    assert day_to_day_raw > 3.0 and day_to_day_low < day_to_day_raw / 20
+    assert np.max(np.abs(v[inner] - slow[inner])) < 0.6        # follows the slow 60-day swing
+
+
+def test_lowpass_refused_for_monthly_steps(tmp_path):
+    p = write(make_dataset(4), tmp_path / "m.nc")
+    cfg = C.load(None)
+    cfg["jets"]["eddy_lowpass_days"] = 10.0
+    with pytest.raises(engine.UsageError, match="low-pass needs time steps shorter than 5 days"):
+        engine.track([p], cfg, metric_ids=["eddy_jet_lat"])
