@@ -8,6 +8,7 @@ from circtrack import registry
 from circtrack.engine import iso_time
 from circtrack.errors import InputError
 from circtrack.inputs import dataset as D
+from circtrack.inputs import units as U
 from circtrack.inputs.files import expand
 from circtrack.inputs.rules import VARIABLES
 
@@ -84,6 +85,10 @@ def report(paths, cfg, overrides) -> str:
     for role, rule in VARIABLES.items():
         if role in det.variables:
             lines.append(f"  {role:8s} = '{det.variables[role]}' ({det.why[role]}; units '{det.units.get(role, '')}')")
+            if U.conversion(det.units.get(role, ""), rule["kind"]) is None:
+                canon = U.CANONICAL[rule["kind"]]
+                lines.append(f"  {'':8s}   units '{det.units.get(role, '')}' are not understood for {rule['kind'].replace('_', ' ')}: "
+                             f"set them, e.g. ncatted -a units,{det.variables[role]},o,c,'{canon}' {det.path}")
             if det.others.get(role):
                 lines.append(f"  {'':8s}   to use another, add --var {role}={det.others[role][0]}  or in a config file:  "
                              f"[variables] {role} = \"{det.others[role][0]}\"")

@@ -173,3 +173,11 @@ def test_scan_joins_one_variable_per_file_inputs(tmp_path):
     assert code == 0
     assert "va       = 'va' in " in text and "va_Amon_INVENTED-1_historical_r1i1p1f1_gn_200001-200002.nc (same time steps" in text
     assert "hadley_edge_lat                can run" in text
+
+
+def test_scan_names_the_fix_for_units_it_does_not_know(tmp_path):
+    ds = make_dataset(1)
+    ds["ua"].attrs["units"] = "furlongs per fortnight"
+    code, text = _scan(write(ds, tmp_path / "units.nc"))
+    assert code == 0
+    assert "units 'furlongs per fortnight' are not understood for speed: set them, e.g. ncatted -a units,ua,o,c,'m s-1'" in text
