@@ -284,7 +284,8 @@ def _join_split_variables(partial, plan):
     groups = collections.OrderedDict()
     for e in partial:
         det = e.info.detected
-        key = (tuple(iso_time(t) for t in det.times), _calendar(det.calendar), det.lat.size, det.lon.size)
+        key = (tuple(iso_time(t) for t in det.times), _calendar(det.calendar),
+               tuple(np.round(np.sort(det.lat), 4)), tuple(np.round(np.sort(np.mod(det.lon, 360.0)), 4)))
         groups.setdefault(key, []).append(e)
     infos, errors = [], []
     for members in groups.values():

@@ -292,6 +292,16 @@ def test_one_variable_per_file_split_by_period(tmp_path, masked_base):
         "or name it with --var va=NAME if it is there under another name")
 
 
+def test_one_variable_per_file_joins_only_files_on_the_same_grid(tmp_path):
+    ds = make_dataset(2)
+    write(ds[["ua"]], tmp_path / "ua_x.nc")
+    shifted = ds[["va"]].assign_coords(lat=ds["lat"].values * 0.99)      # same size, other latitudes
+    shifted["lat"].attrs.update(ds["lat"].attrs)
+    write(shifted, tmp_path / "va_x.nc")
+    with pytest.raises(InputError, match=r"not found"):
+        run_cfg([tmp_path / "ua_x.nc", tmp_path / "va_x.nc"], metric_ids=["hadley_edge_lat", "eddy_jet_lat"])
+
+
 def test_older_reanalysis_one_variable_per_file(tmp_path, base):
     rows, metrics = base
     ds = _packed(make_dataset(3))
