@@ -92,6 +92,32 @@ def generate(workdir, res, comp, months, log):
     return files
 
 
+def generate_many(workdir, n, res, log):
+    """``n`` small files of one day each (uncompressed): the many-small-files case."""
+    import numpy as np
+    from circtrack import synthetic
+
+    d = Path(workdir) / f"many{n}-res{res:g}"
+    d.mkdir(parents=True, exist_ok=True)
+    lat, lon = grid(res)
+    t0 = month_starts(1)[0]
+    files = [d / f"uv_{k:05d}.nc" for k in range(n)]
+    missing = [k for k, f in enumerate(files) if not f.exists()]
+    if missing:
+        t_start = time.perf_counter()
+        base = synthetic.dataset(lat, lon, PLEV, [t0])
+        rng = np.random.default_rng(SEED)
+        for k in missing:
+            ds = base.copy(deep=True).assign_coords(time=[t0 + timedelta(days=k)])
+            for v in ("ua", "va"):
+                ds[v].values += rng.standard_normal(ds[v].shape).astype(np.float32) * np.float32(NOISE_STD)
+            tmp = files[k].with_suffix(".nc.part")
+            ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=dict(synthetic.time_encoding()))
+            os.replace(tmp, files[k])
+        log(f"  generated {len(missing)} files in {d} ({time.perf_counter() - t_start:.0f} s)")
+    return files
+
+
 def payload_bytes(files):
     """Uncompressed bytes of ua + va in the files (what every approach has to decode)."""
     import netCDF4
@@ -148,7 +174,7 @@ def approaches(files, outdir):
     out = []
     out.append(("baseline A: netCDF4 + numpy, file by file", [py, "-c", BASELINE_A, *files]))
     out.append(("baseline B: xarray open_mfdataset + mean", [py, "-c", BASELINE_B, *files]))
-    out.append(("circtrack track (default threads)",
+    out.append(("circtrack track (default: worker processes)",
                 ct_cmd + ["track", *files, "-o", str(outdir / "track_threads.csv"), "--metrics", METRICS, "-q"]))
     out.append(("circtrack track --workers 1",
                 ct_cmd + ["track", *files, "-o", str(outdir / "track_w1.csv"), "--metrics", METRICS, "-q",
@@ -265,6 +291,10 @@ def main(argv=None):
     ap.add_argument("--repeat", type=int, default=1, help="runs per approach; the fastest is reported")
     ap.add_argument("--scaling", action="store_true",
                     help="also compare circtrack peak RSS for 1 month vs --months months")
+    ap.add_argument("--many-files", type=int, default=0, metavar="N",
+                    help="also time N small one-day files (uncompressed, --many-res grid)")
+    ap.add_argument("--many-res", type=float, default=5.0)
+    ap.add_argument("--skip-large", action="store_true", help="only the --many-files case")
     a = ap.parse_args(argv)
 
     workdir = Path(a.workdir).resolve()
@@ -277,6 +307,8 @@ def main(argv=None):
         print(msg, file=sys.stderr, flush=True)
 
     comps = ["zlib", "none"] if a.compress == "both" else [a.compress]
+    if a.skip_large:
+        comps = []
     import platform
     import numpy, xarray, dask, netCDF4
     report = [f"# circtrack benchmark",
@@ -317,10 +349,22 @@ def main(argv=None):
                 log(f"  scaling {n} month(s): rc={m['rc']} wall={m['wall']:.1f}s maxrss={m['maxrss'] / 1e9:.2f}GB")
                 rows.append((n, m))
             r1 = rows[0][1]["maxrss"]
-            report += [f"### memory vs record length ({comp}, circtrack track, default threads)", "",
+            report += [f"### memory vs record length ({comp}, circtrack track, default worker processes)", "",
                        markdown([(str(n), f"{m['wall']:.1f}" if m["rc"] == 0 else f"FAILED rc={m['rc']}",
                                   f"{m['maxrss'] / 1e9:.2f}", f"{m['maxrss'] / r1:.2f}") for n, m in rows],
                                 head=("months", "wall s", "peak RSS GB", "RSS ratio to 1 month")), ""]
+
+    if a.many_files:
+        log(f"[many] {a.many_files} one-day files at {a.many_res:g} deg")
+        files = generate_many(workdir, a.many_files, a.many_res, log)
+        nbytes = payload_bytes(files)
+        outdir = workdir / "runs" / f"many{a.many_files}-res{a.many_res:g}"
+        outdir.mkdir(parents=True, exist_ok=True)
+        for f in files:
+            f.read_bytes()
+        table = run_config(files, outdir, nbytes, a.repeat, log)
+        report += [f"## many small files: {len(files)} one-day files, {a.many_res:g} deg, uncompressed", "",
+                   f"{nbytes / 1e6:.0f} MB of ua+va values. Logs: {outdir}", "", markdown(table), ""]
 
     text = "\n".join(report)
     (workdir / "results.md").write_text(text + "\n")

@@ -176,6 +176,28 @@ def reduce_chunk(job):
     return {"stats": stats, "extras": extras, "notes": {"time": D.merge_notes(notes)}}
 
 
+def reduce_chunks(jobs):
+    """One task over several small chunks (e.g. one-day files), to keep the per-task cost small."""
+    return [reduce_chunk(j) for j in jobs]
+
+
+def group_chunks(need, sizes, target, min_groups):
+    """Consecutive chunks grouped to about ``target`` time steps per task, but into at least
+    ``min_groups`` tasks when there are that many chunks (so every worker has work)."""
+    total = sum(sizes[c] for c in need)
+    per = max(1, min(target, -(-total // max(1, min_groups))))
+    groups, cur, n = [], [], 0
+    for c in need:
+        cur.append(c)
+        n += sizes[c]
+        if n >= per:
+            groups.append(cur)
+            cur, n = [], 0
+    if cur:
+        groups.append(cur)
+    return groups
+
+
 # --------------------------------------------------------------------------- planning
 @dataclass
 class Plan:
@@ -427,7 +449,7 @@ class _Runner:
     def run(self, fn, jobs):
         if not jobs:
             return []
-        tasks = [dask.delayed(fn, pure=False)(j) for j in jobs]
+        tasks = [dask.delayed(fn, pure=False, traverse=False)(j) for j in jobs]
         if self.client is not None:
             return list(dask.compute(*tasks))
         if self.mode == "processes":
@@ -521,6 +543,7 @@ class Progress:
         self.quiet = quiet
         self.tty = hasattr(self.stream, "isatty") and self.stream.isatty()
         self.t0 = _time.time()
+        self.next_quarter = 1
 
     def line(self, text):
         if not self.quiet:
@@ -535,6 +558,13 @@ class Progress:
             print(f"\r[{'#' * k}{'.' * (w - k)}] {done}/{total} time steps", end="", file=self.stream, flush=True)
             if done >= total:
                 print(file=self.stream)
+            return
+        # logs (cron, batch jobs): one plain line per quarter of the record, none for short runs
+        elapsed = _time.time() - self.t0
+        while total and done * 4 >= self.next_quarter * total and self.next_quarter < 4:
+            if elapsed >= 2.0:
+                self.line(f"{done}/{total} time steps ({25 * self.next_quarter} %) after {elapsed:.0f} s")
+            self.next_quarter += 1
 
     def done(self, rows):
         self.line(f"{rows} rows in {(_time.time() - self.t0):.1f} s")
@@ -633,7 +663,7 @@ class Run:
 
     def tasks(self):
         """The dask.delayed reduce calls of every chunk; building them reads nothing."""
-        return [dask.delayed(reduce_chunk, pure=False)(self.job(c)) for c in range(len(self.chunks))]
+        return [dask.delayed(reduce_chunk, pure=False, traverse=False)(self.job(c)) for c in range(len(self.chunks))]
 
     # ---------------------------------------------------------------- execution
     def _reduce_batch(self, bi, runner, cache, last_use, batch_of_pos):
@@ -642,8 +672,10 @@ class Run:
         positions = self.keep[t0:t1]
         mine = [(d, p) for d, p in zip(self.dropped, self.partner) if batch_of_pos[d] == bi]
         need = sorted({int(self.chunk_of[q]) for q in list(positions) + [d for d, _ in mine]} - set(cache))
+        sizes = {c: self.chunks[c][2] - self.chunks[c][1] for c in need}
+        groups = group_chunks(need, sizes, int(self.cfg["run"]["time_chunk"]), 2 * runner.nproc)
         try:
-            results = runner.run(reduce_chunk, [self.job(c) for c in need])
+            results = [r for rs in runner.run(reduce_chunks, [[self.job(c) for c in g] for g in groups]) for r in rs]
         except (OSError, RuntimeError, ValueError, KeyError, IndexError) as e:
             involved = sorted({self.infos[self.chunks[c][0]].path for c in need})
             msg = str(e).splitlines()[0] if str(e) else type(e).__name__

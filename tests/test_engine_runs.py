@@ -170,3 +170,32 @@ def test_lowpass_refused_for_monthly_steps(tmp_path):
     cfg["jets"]["eddy_lowpass_days"] = 10.0
     with pytest.raises(engine.UsageError, match="low-pass needs time steps shorter than 5 days"):
         engine.track([p], cfg, metric_ids=["eddy_jet_lat"])
+
+
+def test_progress_lines_in_logs_and_bar_on_terminals(monkeypatch):
+    import io
+
+    clock = iter(range(0, 1000, 5))
+    monkeypatch.setattr(engine._time, "time", lambda: float(next(clock)))
+    log = io.StringIO()
+    p = engine.Progress(stream=log)
+    for done in range(10, 101, 10):
+        p.step(done, 100)
+    lines = log.getvalue().splitlines()
+    assert [ln.split(" (")[1].split(")")[0] for ln in lines] == ["25 %", "50 %", "75 %"]
+
+    class Tty(io.StringIO):
+        def isatty(self):
+            return True
+
+    tty = Tty()
+    q = engine.Progress(stream=tty)
+    q.step(50, 100)
+    q.step(100, 100)
+    assert "\r[###############...............] 50/100 time steps" in tty.getvalue()
+    assert tty.getvalue().endswith("100/100 time steps\n")
+    quiet = io.StringIO()
+    r = engine.Progress(quiet=True, stream=quiet)
+    r.step(100, 100)
+    r.line("x")
+    assert quiet.getvalue() == ""
