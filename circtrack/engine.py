@@ -334,7 +334,9 @@ def _join_split_variables(partial, plan):
         det.variables = {r: o.detected.variables[r] for r, o in origin.items()}
         det.units = {r: o.detected.units[r] for r, o in origin.items()}
         det.why = {**first.detected.why, **{r: o.detected.why[r] for r, o in origin.items()}}
-        det.layout = {**det.layout, "files": {r: o.path for r, o in origin.items()}}
+        det.layout = {**det.layout, "files": {r: o.path for r, o in origin.items()},
+                      "joined_inputs": [_stat(p) for p in dict.fromkeys(o.path for o in origin.values())
+                                        if p != first.path]}
         infos.append(FileInfo(first.path, det, readers, plevs))
     return infos, errors
 

@@ -7,6 +7,8 @@ the rows of the plain CF file.
 
 from __future__ import annotations
 
+import os
+
 import numpy as np
 import pytest
 import xarray as xr
@@ -281,6 +283,8 @@ def test_one_variable_per_file_split_by_period(tmp_path, masked_base):
     files = out.provenance["inputs"][0]["layout"]["files"]
     assert files["ua"].endswith("ua_Amon_INVENTED-1_historical_r1i1p1f1_gn_200001-200002.nc")
     assert files["va"].endswith("va_Amon_INVENTED-1_historical_r1i1p1f1_gn_200001-200002.nc")
+    joined = out.provenance["inputs"][0]["layout"]["joined_inputs"]     # size and mtime of the other files too
+    assert sorted(os.path.basename(j["path"])[:2] for j in joined) == ["ua", "va"] and all(j["size"] > 0 for j in joined)
     # a period whose va file is missing: one clear error naming the file
     (d / "va_Amon_INVENTED-1_historical_r1i1p1f1_gn_200003-200003.nc").unlink()
     with pytest.raises(InputError) as e:
