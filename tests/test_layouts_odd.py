@@ -13,9 +13,8 @@ from circtrack import config, synthetic
 from circtrack import output as O
 from circtrack.errors import InputError
 from circtrack.inputs import dataset as D
-from tests.conftest import CALENDAR, LAT, LON
-from tests.layout_helpers import (assert_rows_close, baseline, dates, make_dataset, run_cfg, with_time_column,
-                                  write)
+from tests.conftest import CALENDAR
+from tests.layout_helpers import assert_rows_close, baseline, make_dataset, run_cfg, with_time_column, write
 
 
 @pytest.fixture(scope="module")

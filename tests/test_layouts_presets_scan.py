@@ -9,11 +9,10 @@ import pytest
 import xarray as xr
 from click.testing import CliRunner
 
-from circtrack import config, synthetic
+from circtrack import config
 from circtrack import output as O
 from circtrack.cli import main
 from circtrack.errors import InputError
-from tests.conftest import CALENDAR
 from tests.layout_helpers import LAT, LON, PLEV, assert_rows_close, baseline, dates, make_dataset, run_cfg, write
 from tests.test_layouts_model_levels import P0, _hybrid_file
 from tests.test_layouts_styles import _cmip, _packed, _reanalysis, _write_cmip, _write_reanalysis

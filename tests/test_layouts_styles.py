@@ -15,7 +15,7 @@ import xarray as xr
 
 from circtrack import output as O
 from circtrack.errors import InputError
-from tests.layout_helpers import (LABEL, assert_rows_close, baseline, dates, extra_fields, keyed, make_dataset,
+from tests.layout_helpers import (assert_rows_close, baseline, dates, extra_fields, keyed, make_dataset,
                                   run_cfg, with_time_column, write)
 
 
