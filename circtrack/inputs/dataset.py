@@ -373,7 +373,7 @@ def _detect_streams(ds, det):
         det.streams = {"name": name, "kind": "dim", "labels": labels, "final": final, "order": order}
         det.layout["streams"] = (f"'{name}' dimension with streams {', '.join(labels)}: per time step the final "
                                  f"stream ({', '.join(l for l, f in zip(labels, final) if f) or 'none'}) is used "
-                                 f"where it has data, else the next; such time steps are flagged '{PROVISIONAL}'")
+                                 f"where it has data, else the next; time steps taken from another stream are flagged '{PROVISIONAL}'")
     elif name in ds.variables and tdim is not None and ds[name].dims == (tdim,):
         along = [_label(x) for x in np.asarray(ds[name].values).ravel()]
         det.streams = {"name": name, "kind": "coord", "labels_along_time": along}
