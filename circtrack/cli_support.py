@@ -53,7 +53,8 @@ def parse_vars(pairs):
         if "=" not in p:
             raise UsageError(f"--var '{p}': expected ROLE=NAME, e.g. --var ua=U")
         role, name = (x.strip() for x in p.split("=", 1))
-        if role not in VARIABLES:
-            raise UsageError(f"--var '{p}': unknown role '{role}'; roles are {' '.join(VARIABLES)}")
+        if role not in VARIABLES and role not in ("time", "lat", "lon", "plev"):
+            raise UsageError(f"--var '{p}': unknown role '{role}'; roles are {' '.join(VARIABLES)} "
+                             "(and the coordinates time lat lon plev)")
         out[role] = name
     return out

@@ -14,6 +14,7 @@ batch in numpy, and tidy rows come out. Memory is bounded by the batch, never by
 from __future__ import annotations
 
 import collections
+import copy
 import functools
 import multiprocessing
 import os
@@ -29,7 +30,7 @@ import numpy as np
 from circtrack import registry
 from circtrack.errors import InputError, UsageError
 from circtrack.inputs import dataset as D
-from circtrack.inputs.files import expand
+from circtrack.inputs.files import expand, same_period_siblings
 from circtrack.inputs.rules import VARIABLES
 from circtrack.lowpass import setup as _lowpass_setup
 from circtrack.metrics.common import Fields
@@ -103,14 +104,15 @@ def _my_open():
         return _OPEN.setdefault(key, collections.OrderedDict())
 
 
-def _open_cached(path, cfg):
-    """This thread's open handle of ``path`` (threads never share a netCDF handle)."""
+def _open_cached(path, cfg, keep=_OPEN_MAX):
+    """This thread's open handle of ``path`` (threads never share a netCDF handle); ``keep``: how
+    many handles the current task needs at once (one per file when variables come in several files)."""
     mine = _my_open()
     ds = mine.pop(path, None)
     if ds is None:
         with _NC_LOCK:
             ds = D.open_dataset(path, cfg)
-            while len(mine) >= _OPEN_MAX:
+            while len(mine) >= max(_OPEN_MAX, keep):
                 mine.popitem(last=False)[1].close()
     mine[path] = ds
     return ds
@@ -142,18 +144,25 @@ def reduce_chunk(job):
     """One task: read time steps ``t0:t1`` of every role of one file and reduce them.
 
     ``job`` is a plain dict (path, cfg, readers, t0, t1, masks, reducers) so it pickles cheaply.
-    Returns ``{"stats": {role: (t, *extra, [L], J, S, 2)}, "extras": {name: (t, *extra, ..., S)}}``.
+    Returns ``{"stats": {role: (t, *extra, [L], J, S, 2)}, "extras": {name: (t, *extra, ..., S)},
+    "notes": {"time": (t,) str}}``.
     """
-    slabs = {}
+    slabs, notes = {}, []
+    # variables may come from several files with the same time steps (one variable per file)
+    paths = list(dict.fromkeys([job["path"]] + [r.path for r in job["readers"].values()]))
     with _NC_LOCK:     # one netCDF/HDF5 call at a time per process; the reductions below run freely
-        ds = _open_cached(job["path"], job["cfg"])
+        opened = {}
         try:
             for role, reader in job["readers"].items():
-                slabs[role] = reader.read(ds, job["t0"], job["t1"])
+                if reader.path not in opened:
+                    opened[reader.path] = _open_cached(reader.path, job["cfg"], keep=len(paths))
+                slabs[role], note = reader.read_noted(opened[reader.path], job["t0"], job["t1"])
+                notes.append(note)
         except Exception:
-            # a damaged file: drop the handle so a retry reopens it, and let the caller name the file
-            _forget(job["path"])
-            ds.close()
+            # a damaged file: drop the handles so a retry reopens them, and let the caller name the file
+            for p, ds in opened.items():
+                _forget(p)
+                ds.close()
             raise
     stats = {role: _zonal_block(a, job["masks"]) for role, a in slabs.items()}
     extras = {}
@@ -163,7 +172,8 @@ def reduce_chunk(job):
         for name, fn in job["reducers"].items():
             kw = {"lat": job["lat"]} if _wants_lat(fn) else {}     # latitudes for per-longitude features
             extras[name] = np.asarray(fn(as64, plev, job["lon"], job["masks"], job["cfg"], **kw), dtype=np.float64)
-    return {"stats": stats, "extras": extras}
+    # per time step layout notes (e.g. provisional_data), joined into the rows' flags
+    return {"stats": stats, "extras": extras, "notes": {"time": D.merge_notes(notes)}}
 
 
 def reduce_chunks(jobs):
@@ -262,16 +272,73 @@ def _prepare_open(ds, path, plan, cfg, overrides):
             raise InputError(f"{path}: no {'latitude' if key == 'lat' else 'longitude'} axis found; name it "
                              f"'{key}' or give it units '{'degrees_north' if key == 'lat' else 'degrees_east'}'")
     info = FileInfo(path, det)
+    missing = []
     for role, levels in plan.roles.items():
         if role not in det.variables:
-            hint = det.problems.get(role) or "no variable matched"
-            raise InputError(f"{path}: {VARIABLES[role]['long']} ({role}) not found ({hint}); "
-                             f"add --var {role}=NAME or '{role} = \"NAME\"' under [variables] in the config "
-                             f"('circtrack scan {path}' lists the variables)")
+            missing.append(role)
+            continue
         reader, plev = D.standardise(ds, det, role, levels, cfg)
         info.readers[role] = reader
         info.plev[role] = plev
+    if missing:
+        role = missing[0]
+        hint = det.problems.get(role) or "no variable matched"
+        raise MissingRoles(f"{path}: {VARIABLES[role]['long']} ({role}) not found ({hint}); "
+                           f"add --var {role}=NAME or '{role} = \"NAME\"' under [variables] in the config "
+                           f"('circtrack scan {path}' lists the variables)", info, missing)
     return info
+
+
+class MissingRoles(InputError):
+    """A file lacks some roles; files with the same time steps may hold them (one variable per file)."""
+
+    def __init__(self, message, info, missing):
+        super().__init__(message)
+        self.info, self.missing = info, missing
+
+
+def _join_split_variables(partial, plan):
+    """Join files that hold different roles for the same time steps and grid into one input.
+
+    ``partial``: MissingRoles errors in the order the files were given. Returns ``(infos, errors)``:
+    joined inputs, and the errors of files whose roles no file with the same time steps supplies.
+    """
+    groups = collections.OrderedDict()
+    for e in partial:
+        det = e.info.detected
+        key = (tuple(iso_time(t) for t in det.times), _calendar(det.calendar),
+               tuple(np.round(np.sort(det.lat), 4)), tuple(np.round(np.sort(np.mod(det.lon, 360.0)), 4)))
+        groups.setdefault(key, []).append(e)
+    infos, errors = [], []
+    for members in groups.values():
+        first = members[0].info
+        readers, plevs, origin = {}, {}, {}
+        for e in members:
+            for role, reader in e.info.readers.items():
+                if role not in readers:
+                    readers[role], plevs[role], origin[role] = reader, e.info.plev[role], e.info
+        lacking = [r for r in plan.roles if r not in readers]
+        if lacking:
+            if len(members) == 1:
+                errors.append(members[0])
+            else:
+                role = lacking[0]
+                others = ", ".join(os.path.basename(e.info.path) for e in members[1:])
+                errors.append(MissingRoles(
+                    f"{first.path}: {VARIABLES[role]['long']} ({role}) is neither in this file nor in the "
+                    f"{len(members) - 1} other file(s) with the same time steps ({others}); add the file that holds "
+                    f"{role} for these times, or name it with --var {role}=NAME if it is there under another name",
+                    first, lacking))
+            continue
+        det = copy.copy(first.detected)
+        det.variables = {r: o.detected.variables[r] for r, o in origin.items()}
+        det.units = {r: o.detected.units[r] for r, o in origin.items()}
+        det.why = {**first.detected.why, **{r: o.detected.why[r] for r, o in origin.items()}}
+        det.layout = {**det.layout, "files": {r: o.path for r, o in origin.items()},
+                      "joined_inputs": [_stat(p) for p in dict.fromkeys(o.path for o in origin.values())
+                                        if p != first.path]}
+        infos.append(FileInfo(first.path, det, readers, plevs))
+    return infos, errors
 
 
 def _calendar(name):
@@ -293,7 +360,21 @@ def _available_metrics(files, cfg, overrides, policy):
             if policy == "skip":           # reported when the file is prepared
                 continue
             raise
-        ids = [m.id for f in registry.families().values() if set(f.inputs) <= set(det.variables) for m in f.metrics]
+        found = set(det.variables)
+        # one variable per file: the files named like this one but for another variable, same time steps
+        for q in same_period_siblings(p, files):
+            try:
+                qs = D.open_dataset(q, cfg)
+                try:
+                    qd = D.detect(qs, q, overrides)
+                finally:
+                    qs.close()
+            except InputError:
+                continue
+            if qd.times is not None and det.times is not None and qd.times.size == det.times.size \
+                    and all(iso_time(a) == iso_time(b) for a, b in zip(qd.times, det.times)):
+                found |= set(qd.variables)
+        ids = [m.id for f in registry.families().values() if set(f.inputs) <= found for m in f.metrics]
         if not ids:
             roles = sorted({r for f in registry.families().values() for r in f.inputs})
             raise InputError(f"{p}: none of the variables the metrics need ({', '.join(roles)}) was found; "
@@ -398,8 +479,11 @@ def _active_client():
         return None
 
 
-def _choose_time_steps(times, last=False):
-    """Chronological positions to keep, the repeated ones dropped, and for each its kept twin."""
+def _choose_time_steps(times, last=False, prefer=None):
+    """Chronological positions to keep, the repeated ones dropped, and for each its kept twin.
+
+    ``prefer`` (bool per position, e.g. final rather than provisional data): among repeats of a time
+    step the preferred positions win, then the file order decides."""
     order = np.argsort(times, kind="stable")
     keep, dropped, partner = [], [], []
     i = 0
@@ -408,7 +492,8 @@ def _choose_time_steps(times, last=False):
         while j + 1 < order.size and times[order[j + 1]] == times[order[i]]:
             j += 1
         group = list(order[i:j + 1])
-        chosen = group[-1] if last else group[0]
+        best = [g for g in group if prefer is None or prefer[g]] or group
+        chosen = best[-1] if last else best[0]
         keep.append(chosen)
         for g in group:
             if g != chosen:
@@ -517,16 +602,25 @@ class Run:
         if metric_ids is None:
             metric_ids = _available_metrics(files, cfg, overrides, policy)
         self.plan = plan = Plan.make(metric_ids, cfg, sectors)
-        infos, self.skipped = [], []
+        infos, self.skipped, partial = [], [], []
         for p in files:
             try:
                 infos.append(_prepare_file(p, plan, cfg, sectors, overrides))
+            except MissingRoles as e:
+                partial.append(e)          # joined below with files holding its other variables
             except InputError as e:
                 if policy == "skip":
                     self.skipped.append({"path": p, "reason": str(e)})
                     print(f"circtrack: skipped {e}", file=sys.stderr, flush=True)
                     continue
                 raise
+        joined, unmatched = _join_split_variables(partial, plan)
+        infos += joined
+        for e in unmatched:
+            if policy != "skip":
+                raise e
+            self.skipped.append({"path": e.info.path, "reason": str(e)})
+            print(f"circtrack: skipped {e}", file=sys.stderr, flush=True)
         if not infos:
             raise InputError(f"{files[0]}: no usable input among {len(files)} file(s); see the messages above")
         _check_consistent(infos)
@@ -539,8 +633,11 @@ class Run:
         self.times_all = np.concatenate([i.detected.times for i in infos])
         self.file_of = np.concatenate([np.full(i.detected.times.size, k) for k, i in enumerate(infos)])
         self.repeat_policy = cfg["run"].get("repeated_times", "refuse")
+        # a time step in a final and in a provisional stream (e.g. expver 0001 and 0005 files): final wins
+        self.provisional = np.concatenate([D.provisional_steps(i.detected) for i in infos])
         self.keep, self.dropped, self.partner = _choose_time_steps(self.times_all,
-                                                                   last=(self.repeat_policy == "keep-last"))
+                                                                   last=(self.repeat_policy == "keep-last"),
+                                                                   prefer=~self.provisional)
         self.times = self.times_all[self.keep]
 
         # tasks: one per file and time chunk (chunk along time only; lat/level/lon stay whole)
@@ -590,10 +687,13 @@ class Run:
                              "re-copy it or leave it out")
         cache.update(zip(need, results))
         for d, p in mine:
+            if self.provisional[d] and not self.provisional[p]:
+                continue                   # provisional data replaced by final data: expected to differ
             self._compare_repeat(d, p, cache)
         g = functools.partial(_gather, cache, chunk_of=self.chunk_of, chunks=self.chunks, starts=self.starts)
         out = {"stats": {r: g("stats", r, positions) for r in self.plan.roles},
-               "extras": {n: g("extras", n, positions) for n in self.plan.reducers}}
+               "extras": {n: g("extras", n, positions) for n in self.plan.reducers},
+               "notes": g("notes", "time", positions)}
         for c in [c for c in cache if last_use[c] <= bi]:
             del cache[c]
         return out
@@ -631,6 +731,7 @@ class Run:
         wanted = set(plan.metric_ids)
         cols = {k: [] for k in ["t", "e", "hemisphere", "sector", "metric", "value", "flag"]}
         cache, reduced = {}, {}
+        self.step_notes = np.full(nt, "", dtype=object)
         runner = _Runner(cfg, len(self.chunks))
         nb = len(self.batches)
         try:
@@ -641,6 +742,7 @@ class Run:
                         reduced[bj] = self._reduce_batch(bj, runner, cache, last_use, batch_of_pos)
                 t0, t1 = self.batches[bi]
                 bt = t1 - t0
+                self.step_notes[t0:t1] = reduced[bi]["notes"]
                 lowpassed = self.lowpass.apply(reduced, bi, self.batches) if self.lowpass else {}
                 tidx = np.repeat(np.arange(t0, t1), n_extra)
                 eidx = np.tile(np.arange(n_extra), bt)
@@ -699,6 +801,11 @@ class Run:
         out["value"] = flat["value"].astype(float)
         out["units"] = np.array([cat[m].units for m in flat["metric"]], dtype=object)
         out["flag"] = flat["flag"]
+        notes = self.step_notes
+        if nt and flat["t"].size and (notes != "").any():
+            row_notes = notes[flat["t"]]
+            out["flag"] = np.where(row_notes != "", flat["flag"].astype(str).astype(object) + ";" + row_notes,
+                                   flat["flag"])
         prov = {
             "inputs": [{**_stat(i.path), "variables": i.detected.variables, "units": i.detected.units,
                         "found_by": i.detected.why, "time_steps": int(i.detected.times.size),
@@ -706,11 +813,13 @@ class Run:
                         "last_time": iso_time(i.detected.times[-1]) if i.detected.times.size else None,
                         "pressure_levels_hpa": {r: (None if v is None else [float(x) for x in v])
                                                 for r, v in i.plev.items()},
-                        "pressure_units_in_file": i.detected.plev_units}
+                        "pressure_units_in_file": i.detected.plev_units, "layout": i.detected.layout}
                        for i in infos],
             "skipped_inputs": self.skipped,
             "repeated_time_steps_dropped": [{"time": iso_time(self.times_all[k]), "path": infos[self.file_of[k]].path,
-                                             "kept_from": infos[self.file_of[p]].path}
+                                             "kept_from": infos[self.file_of[p]].path,
+                                             **({"provisional_replaced_by_final": True}
+                                                if self.provisional[k] and not self.provisional[p] else {})}
                                             for k, p in zip(self.dropped, self.partner)],
             "repeated_times_policy": self.repeat_policy,
             "calendar": infos[0].detected.calendar,
@@ -719,6 +828,8 @@ class Run:
             "metrics": self.plan.metric_ids,
             "sectors": {n: [a, b] for n, a, b in self.sectors},
             "extra_key_columns": extra_names,
+            "time_step_notes": {code: [iso[k] for k in range(nt) if code in str(notes[k]).split(";")]
+                                for code in sorted({c for n in notes for c in str(n).split(";") if c})},
         }
         if self.lowpass:
             prov["lowpass"] = self.lowpass.describe()

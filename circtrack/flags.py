@@ -13,4 +13,5 @@ FLAGS = {
     "time_mean_input": "the input's time step exceeds eddies.max_time_step_days (e.g. monthly means): the eddy and energy fluxes contain only the time-mean flow (mean circulation and stationary eddies), the transient eddies are missing; value kept",
     "time_step_unknown": "a single time step, so it is unknown whether transient eddies are resolved; eddy and energy flux value kept",
     "cells_out_of_order": "the southern cell's minimum lies north of the northern cell's maximum; boundary is NaN",
+    "provisional_data": "appended after ';' (e.g. 'ok;provisional_data'): the time step comes from a provisional data stream (expver other than 1) because the final one has no data there",
 }

@@ -8,6 +8,7 @@ from circtrack import registry
 from circtrack.engine import iso_time
 from circtrack.errors import InputError
 from circtrack.inputs import dataset as D
+from circtrack.inputs import units as U
 from circtrack.inputs.files import expand
 from circtrack.inputs.rules import VARIABLES
 
@@ -19,7 +20,10 @@ def _grid(det):
         parts.append(f"{det.lat.size} latitudes {det.lat.min():g}..{det.lat.max():g} ({d})")
     if det.lon is not None:
         parts.append(f"{det.lon.size} longitudes {det.lon.min():g}..{det.lon.max():g}")
-    if det.plev_hpa is not None:
+    if det.plev_hpa is not None and det.vertical == "hybrid":
+        parts.append(f"{det.plev_hpa.size} hybrid sigma-pressure model levels ({det.plev_hpa.max():g}..{det.plev_hpa.min():g} "
+                     "hPa where the surface pressure is 1000 hPa)")
+    elif det.plev_hpa is not None:
         parts.append(f"{det.plev_hpa.size} pressure levels {det.plev_hpa.max():g}..{det.plev_hpa.min():g} hPa "
                      f"(units in file: '{det.plev_units}')")
     elif "plev" in det.problems:
@@ -31,10 +35,12 @@ def report(paths, cfg, overrides) -> str:
     files = expand(paths)
     lines = []
     dets, bad = [], []
+    det_dims = {}
     for p in files:
         try:
             ds = D.open_dataset(p, cfg)
             dets.append((D.detect(ds, p, overrides), sorted(map(str, ds.data_vars))))
+            det_dims[p] = [str(d) for d in ds.dims]
             ds.close()
         except InputError as e:
             bad.append(str(e))
@@ -50,11 +56,25 @@ def report(paths, cfg, overrides) -> str:
     det, names = dets[0]
     lines.append(f"first input: {det.path}")
     lines.append(f"  grid: {_grid(det)}")
+    lines.append("  coordinates: " + "; ".join(
+        f"{k} = '{det.coords[k]}' ({det.coord_why.get(k, '')})" for k in ("time", "lat", "lon", "plev") if k in det.coords))
+    for key, what, unit in (("time", "time", "days since 2000-01-01"), ("lat", "latitude", "degrees_north"),
+                            ("lon", "longitude", "degrees_east")):
+        if key not in det.coords:
+            spare = [d for d in det_dims.get(det.path, []) if d not in det.coords.values()]
+            problem = det.problems.get(key, "not found by name, standard_name, axis or units")
+            lines.append(f"  {what} axis: {problem}; add --var {key}=DIM  or in a config file:  [variables] {key} = \"DIM\""
+                         f"  (or give it units '{unit}')" + (f"; dimensions without a part: {', '.join(spare)}" if spare else ""))
+    for what, note in det.layout.items():
+        lines.append(f"  {what}: {note}")
+    if det.problems.get("vertical"):
+        lines.append(f"  vertical axis: {det.problems['vertical']}")
     ntime = sum(d.times.size for d, _ in dets if d.times is not None)
     times = [d.times for d, _ in dets if d.times is not None and d.times.size]
     if times:
         allt = np.concatenate(times)
-        lines.append(f"  time: {ntime} steps over all inputs, {iso_time(min(allt))} .. {iso_time(max(allt))}, "
+        ntime = len({iso_time(t) for t in allt})
+        lines.append(f"  time: {ntime} distinct steps over all inputs, {iso_time(min(allt))} .. {iso_time(max(allt))}, "
                      f"calendar {det.calendar}")
     else:
         lines.append("  time: no time axis found (name it 'time' or give it CF units 'days since ...')")
@@ -64,12 +84,31 @@ def report(paths, cfg, overrides) -> str:
     lines.append("variables found:")
     for role, rule in VARIABLES.items():
         if role in det.variables:
-            extra = f"; other candidates not used: {', '.join(det.others[role])}" if det.others.get(role) else ""
-            lines.append(f"  {role:8s} = '{det.variables[role]}' ({det.why[role]}; units '{det.units.get(role, '')}'){extra}")
+            lines.append(f"  {role:8s} = '{det.variables[role]}' ({det.why[role]}; units '{det.units.get(role, '')}')")
+            if U.conversion(det.units.get(role, ""), rule["kind"]) is None:
+                canon = U.CANONICAL[rule["kind"]]
+                lines.append(f"  {'':8s}   units '{det.units.get(role, '')}' are not understood for {rule['kind'].replace('_', ' ')}: "
+                             f"set them, e.g. ncatted -a units,{det.variables[role]},o,c,'{canon}' {det.path}")
+            if det.others.get(role):
+                lines.append(f"  {'':8s}   to use another, add --var {role}={det.others[role][0]}  or in a config file:  "
+                             f"[variables] {role} = \"{det.others[role][0]}\"")
+    # one variable per file: roles from other inputs with the same time steps join this one
+    def same_times(a, b):
+        return (a.times is not None and b.times is not None and a.times.size == b.times.size
+                and all(iso_time(x) == iso_time(y) for x, y in zip(a.times, b.times)))
+
+    joined = dict(det.variables)
+    for other, _ in dets[1:]:
+        if same_times(det, other):
+            for role, name in other.variables.items():
+                if role not in joined:
+                    joined[role] = name
+                    lines.append(f"  {role:8s} = '{name}' in {other.path} (same time steps; {other.why[role]}; "
+                                 f"units '{other.units.get(role, '')}')")
     lines.append("metrics:")
     missing_roles = set()
     for fam in registry.families().values():
-        lacking = [r for r in fam.inputs if r not in det.variables]
+        lacking = [r for r in fam.inputs if r not in joined]
         for m in fam.metrics:
             if lacking:
                 lines.append(f"  {m.id:30s} cannot run: needs {', '.join(lacking)}")
@@ -82,8 +121,11 @@ def report(paths, cfg, overrides) -> str:
         lines.append("to run the rest, name the missing variables:")
         for r in sorted(missing_roles):
             hint = det.problems.get(r, "")
-            lines.append(f"  {r} ({VARIABLES[r]['long']}): add --var {r}=NAME  or in a config file:  "
-                         f"[variables] {r} = \"NAME\"" + (f"  ({hint})" if hint else ""))
+            fits = [t.split("=", 1)[1] for t in hint.split(": ", 1)[-1].split(" or ") if t.startswith(f"--var {r}=")] \
+                if "fit" in hint else []
+            name = fits[0] if len(fits) == 1 else "NAME"
+            lines.append(f"  {r} ({VARIABLES[r]['long']}): add --var {r}={name}  or in a config file:  "
+                         f"[variables] {r} = \"{name}\"" + (f"  ({hint})" if hint else ""))
         if spare:
             lines.append(f"  unassigned variables in the file: {', '.join(spare)}")
     return "\n".join(lines)

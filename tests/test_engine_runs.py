@@ -57,13 +57,13 @@ def test_distributed_cluster_gives_identical_rows(four_files):
 
 def test_planning_reads_nothing(four_files, monkeypatch):
     calls = []
-    real = D.RoleReader.read
+    real = D.RoleReader.read_noted      # what the tasks call (values and per-time-step notes)
 
     def counting(self, ds, t0, t1):
         calls.append((self.path, self.role, t0, t1))
         return real(self, ds, t0, t1)
 
-    monkeypatch.setattr(D.RoleReader, "read", counting)
+    monkeypatch.setattr(D.RoleReader, "read_noted", counting)
     cfg = C.load(None)
     cfg["run"]["time_chunk"] = 2
     run = engine.Run(four_files, cfg, metric_ids=["hadley_edge_lat", "eddy_jet_lat"])

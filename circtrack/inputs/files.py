@@ -51,3 +51,25 @@ def expand(paths, stdin=None) -> list[str]:
     if not uniq:
         raise InputError("no input files given; pass files, directories, globs or '-' to read paths from stdin")
     return uniq
+
+
+def _split_variable_token(path):
+    """``ua_Amon_X_200001-200912.nc`` -> ("ua", "_Amon_X_200001-200912.nc"); ``uwnd.mon.mean.nc`` -> ("uwnd", ".mon.mean.nc")."""
+    name = os.path.basename(path.rstrip("/"))
+    cut = min((i for i in (name.find("_"), name.find(".")) if i > 0), default=-1)
+    return (name[:cut], name[cut:]) if cut > 0 else (name, "")
+
+
+def same_period_siblings(path, files):
+    """Files in the same directory whose names differ from ``path`` only in the leading variable name
+    (the usual naming of one-variable-per-file collections), e.g. ``va_Amon_...`` beside ``ua_Amon_...``."""
+    head, rest = _split_variable_token(path)
+    if not rest:
+        return []
+    d = os.path.dirname(os.path.abspath(path))
+    out = []
+    for f in files:
+        h, r = _split_variable_token(f)
+        if r == rest and h != head and os.path.dirname(os.path.abspath(f)) == d:
+            out.append(f)
+    return out

@@ -16,13 +16,13 @@ VARIABLES = {
                kind="speed", levels=True, long="northward wind on pressure levels"),
     "ta": dict(standard_names=["air_temperature"], names=["ta", "t", "air", "T", "temperature", "TMP"],
                kind="temperature", levels=True, long="air temperature on pressure levels"),
-    "zg": dict(standard_names=["geopotential_height", "geopotential"], names=["zg", "z", "hgt", "Z", "Z3", "geopotential", "HGT"],
+    "zg": dict(standard_names=["geopotential_height", "geopotential"], names=["zg", "z", "hgt", "Z", "Z3", "geopotential", "HGT", "H", "gh"],
                kind="height", levels=True, long="geopotential height on pressure levels"),
-    "hus": dict(standard_names=["specific_humidity"], names=["hus", "q", "shum", "Q", "SPFH"],
+    "hus": dict(standard_names=["specific_humidity"], names=["hus", "q", "shum", "Q", "SPFH", "QV"],
                 kind="fraction", levels=True, long="specific humidity on pressure levels"),
-    "uas": dict(standard_names=["eastward_wind"], names=["uas", "u10", "10u", "uwnd", "U10", "UBOT"],
+    "uas": dict(standard_names=["eastward_wind"], names=["uas", "u10", "10u", "uwnd", "U10", "U10M", "UBOT"],
                 kind="speed", levels=False, long="near-surface eastward wind"),
-    "vas": dict(standard_names=["northward_wind"], names=["vas", "v10", "10v", "vwnd", "V10", "VBOT"],
+    "vas": dict(standard_names=["northward_wind"], names=["vas", "v10", "10v", "vwnd", "V10", "V10M", "VBOT"],
                 kind="speed", levels=False, long="near-surface northward wind"),
     "ps": dict(standard_names=["surface_air_pressure"], names=["ps", "sp", "pres", "PS", "PSFC"],
                kind="pressure", levels=False, long="surface air pressure"),
@@ -45,5 +45,8 @@ COORDS = {
     "lon": dict(names=["lon", "longitude", "nav_lon", "lons", "LON", "Longitude", "x"], standard_names=["longitude"], axis="X",
                 units=["degrees_east", "degree_east", "degree_e", "degrees_e", "degreee", "degreese"]),
     "plev": dict(names=["plev", "level", "lev", "pressure_level", "isobaricInhPa", "pressure", "pres", "levels"],
-                 standard_names=["air_pressure"], axis="Z", units=[]),
+                 standard_names=["air_pressure", "atmosphere_hybrid_sigma_pressure_coordinate"], axis="Z", units=[]),
 }
+
+# Data streams of one product in one file (e.g. final and provisional), as a dimension or along time.
+STREAM_NAMES = ("expver",)
