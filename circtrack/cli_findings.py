@@ -10,6 +10,7 @@ import click
 
 from circtrack.cli_support import guarded
 from circtrack.errors import InputError, UsageError
+from circtrack.flags import usable
 
 CALENDARS = ("standard", "gregorian", "proleptic_gregorian", "julian", "noleap", "365_day",
              "all_leap", "366_day", "360_day")
@@ -34,10 +35,10 @@ def _load(path):
     cols = list(df.columns)
     if cols.index("hemisphere") < cols.index("time"):
         raise InputError(f"{path}: column 'time' must come before 'hemisphere' (circtrack track layout)")
-    if not (df["flag"] == "ok").any():
+    if not usable(df["flag"]).any():
         raise InputError(f"{path}: no rows with flag 'ok'; rerun 'circtrack track' or check its flag column")
     try:
-        S.parse_times(df.loc[df["flag"] == "ok", "time"])
+        S.parse_times(df.loc[usable(df["flag"]), "time"])
     except S.StatsInputError as e:
         raise InputError(f"{path}: {e}; times must be ISO 8601 as written by 'circtrack track'")
     return df
@@ -59,7 +60,7 @@ def _calendar(path, df, given):
                 return str(cal)
         except (OSError, ValueError):
             pass
-    return S.infer_calendar(df.loc[df["flag"] == "ok", "time"])
+    return S.infer_calendar(df.loc[usable(df["flag"]), "time"])
 
 
 def _metric_ids(metrics, df, path):

@@ -15,3 +15,11 @@ FLAGS = {
     "cells_out_of_order": "the southern cell's minimum lies north of the northern cell's maximum; boundary is NaN",
     "provisional_data": "appended after ';' (e.g. 'ok;provisional_data'): the time step comes from a provisional data stream (expver other than 1) because the final one has no data there",
 }
+
+
+def usable(flags):
+    """Rows whose value is computed as defined: flag ``ok``, possibly followed by notes after ';'
+    (e.g. ``ok;provisional_data``). Works on a string or on a pandas Series of strings."""
+    if isinstance(flags, str):
+        return flags.split(";", 1)[0] == "ok"
+    return flags.astype(str).str.split(";", n=1).str[0] == "ok"

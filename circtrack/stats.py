@@ -4,7 +4,8 @@ Pure pandas/numpy/scipy (no command line here).
 
 Conventions
 -----------
-* Only rows with ``flag == "ok"`` and a finite value are used.
+* Only rows whose flag is ``ok`` (notes after ';' such as ``ok;provisional_data`` allowed) and
+  whose value is finite are used.
 * Times are ISO 8601 strings in the data's own calendar; year/month/day are parsed from the
   text (never through pandas datetimes, so 2001-02-30 of a 360_day calendar is fine).
 * Daily (or sub-monthly) rows are first averaged to calendar months (mean of the available
@@ -42,6 +43,8 @@ from functools import lru_cache
 import numpy as np
 import pandas as pd
 from scipy import stats as sps
+
+from circtrack.flags import usable
 
 REQUIRED = ("source", "time", "hemisphere", "sector", "metric", "value", "units", "flag")
 SEASONS = ("annual", "DJF", "MAM", "JJA", "SON")
@@ -90,7 +93,7 @@ def clean(df):
     missing = [c for c in REQUIRED if c not in df.columns]
     if missing:
         raise StatsInputError(f"missing column(s) {', '.join(missing)}")
-    out = df[df["flag"].astype(str) == "ok"].copy()
+    out = df[usable(df["flag"])].copy()
     out["value"] = pd.to_numeric(out["value"], errors="coerce").astype(float)
     out = out[np.isfinite(out["value"].to_numpy())]
     if out.empty:

@@ -264,3 +264,13 @@ def test_csv_text_is_stable():
     b = S.table_to_csv(S.trends(df.sample(frac=1, random_state=1)))
     assert a == b
     assert a.splitlines()[0].startswith("source,metric,hemisphere,sector,season,method,slope_per_decade")
+
+
+def test_only_usable_rows_enter_the_statistics():
+    import pandas as pd
+
+    df = pd.DataFrame({"source": "s", "time": ["2001-01-15", "2001-02-15", "2001-03-15", "2001-04-15"],
+                       "hemisphere": "NH", "sector": "zonal", "metric": "m", "value": [1.0, 2.0, 3.0, "NaN"],
+                       "units": "u", "flag": ["ok", "ok;provisional_data", "extremum_at_window_edge", "ok"]})
+    out = S.clean(df)
+    assert list(out["value"]) == [1.0, 2.0]          # a note after ';' keeps a row; a doubtful flag or NaN drops it
