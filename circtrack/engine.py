@@ -63,24 +63,25 @@ def sector_mask(lon, lon0, lon1):
 def _zonal_block(block, masks):
     """Zonal statistics of one chunk ``(..., lon)`` -> ``(..., S, 2)``: mean of valid, valid share.
 
-    The NaN check runs once per chunk; chunks without missing values take the plain mean.
+    One pass for clean data: the plain mean is taken first, and only rows whose mean is not finite
+    (a NaN or inf among their longitudes, e.g. below ground) are redone counting valid points.
     The first mask is the full circle (``None``).
     """
     out = np.empty(block.shape[:-1] + (len(masks), 2), dtype=np.float64)
-    finite = np.isfinite(block)
-    all_ok = bool(finite.all())
-    for s, m in enumerate(masks):
-        part = block if m is None else block[..., m]
-        if all_ok:
-            out[..., s, 0] = part.mean(axis=-1, dtype=np.float64)
+    with np.errstate(invalid="ignore", over="ignore"):
+        for s, m in enumerate(masks):
+            part = block if m is None else block[..., m]
+            mean = part.mean(axis=-1, dtype=np.float64)
+            out[..., s, 0] = mean
             out[..., s, 1] = 1.0
-        else:
-            f = finite if m is None else finite[..., m]
-            cnt = f.sum(axis=-1)
-            tot = np.where(f, part, 0.0).sum(axis=-1, dtype=np.float64)
-            with np.errstate(invalid="ignore", divide="ignore"):
-                out[..., s, 0] = np.where(cnt > 0, tot / np.maximum(cnt, 1), np.nan)
-            out[..., s, 1] = cnt / part.shape[-1]
+            bad = ~np.isfinite(mean)
+            if bad.any():
+                rows = part[bad]                              # (n_bad, lon): only the doubtful rows
+                f = np.isfinite(rows)
+                cnt = f.sum(axis=-1)
+                tot = np.where(f, rows, 0.0).sum(axis=-1, dtype=np.float64)
+                out[..., s, 0][bad] = np.where(cnt > 0, tot / np.maximum(cnt, 1), np.nan)
+                out[..., s, 1][bad] = cnt / part.shape[-1]
     return out
 
 
@@ -104,22 +105,34 @@ def _my_open():
         return _OPEN.setdefault(key, collections.OrderedDict())
 
 
-def _open_cached(path, cfg, keep=_OPEN_MAX):
+def _open_cached(path, cfg, keep=_OPEN_MAX, raw=False):
     """This thread's open handle of ``path`` (threads never share a netCDF handle); ``keep``: how
-    many handles the current task needs at once (one per file when variables come in several files)."""
+    many files the current task needs at once (one per file when variables come in several files).
+    ``raw``: a plain netCDF4.Dataset for the fast read path (None where it does not apply)."""
     mine = _my_open()
-    ds = mine.pop(path, None)
-    if ds is None:
+    key = (path, raw)
+    if key in mine:
+        ds = mine.pop(key)
+    else:
         with _NC_LOCK:
-            ds = D.open_dataset(path, cfg)
-            while len(mine) >= max(_OPEN_MAX, keep):
-                mine.popitem(last=False)[1].close()
-    mine[path] = ds
+            ds = D.open_raw(path, cfg) if raw else D.open_dataset(path, cfg)
+            while len(mine) >= 2 * max(_OPEN_MAX, keep):
+                old = mine.popitem(last=False)[1]
+                if old is not None:
+                    old.close()
+    mine[key] = ds
     return ds
 
 
 def _forget(path):
-    _my_open().pop(path, None)
+    mine = _my_open()
+    for key in [(path, False), (path, True)]:
+        ds = mine.pop(key, None)
+        if ds is not None:
+            try:
+                ds.close()
+            except Exception:  # noqa: BLE001 - a damaged file may fail to close; it is dropped anyway
+                pass
 
 
 def close_cached():
@@ -131,7 +144,9 @@ def close_cached():
     with _NC_LOCK:
         for g in groups:
             while g:
-                g.popitem()[1].close()
+                ds = g.popitem()[1]
+                if ds is not None:
+                    ds.close()
 
 
 def _wants_lat(fn):
@@ -154,15 +169,20 @@ def reduce_chunk(job):
         opened = {}
         try:
             for role, reader in job["readers"].items():
+                raw = _open_cached(reader.path, job["cfg"], keep=len(paths), raw=True)
+                arr = reader.read_fast(raw, job["t0"], job["t1"]) if raw is not None else None
+                if arr is not None:
+                    slabs[role] = arr
+                    notes.append(np.full(arr.shape[0], "", dtype=object))
+                    continue
                 if reader.path not in opened:
                     opened[reader.path] = _open_cached(reader.path, job["cfg"], keep=len(paths))
                 slabs[role], note = reader.read_noted(opened[reader.path], job["t0"], job["t1"])
                 notes.append(note)
         except Exception:
             # a damaged file: drop the handles so a retry reopens them, and let the caller name the file
-            for p, ds in opened.items():
+            for p in paths:
                 _forget(p)
-                ds.close()
             raise
     stats = {role: _zonal_block(a, job["masks"]) for role, a in slabs.items()}
     extras = {}

@@ -57,13 +57,16 @@ def test_distributed_cluster_gives_identical_rows(four_files):
 
 def test_planning_reads_nothing(four_files, monkeypatch):
     calls = []
-    real = D.RoleReader.read_noted      # what the tasks call (values and per-time-step notes)
 
-    def counting(self, ds, t0, t1):
-        calls.append((self.path, self.role, t0, t1))
-        return real(self, ds, t0, t1)
+    def counting(real):
+        def wrapped(self, ds, t0, t1):
+            calls.append((self.path, self.role, t0, t1))
+            return real(self, ds, t0, t1)
+        return wrapped
 
-    monkeypatch.setattr(D.RoleReader, "read_noted", counting)
+    # what the tasks call: the plain netCDF4 path, else xarray's (values and per-time-step notes)
+    monkeypatch.setattr(D.RoleReader, "read_fast", counting(D.RoleReader.read_fast))
+    monkeypatch.setattr(D.RoleReader, "read_noted", counting(D.RoleReader.read_noted))
     cfg = C.load(None)
     cfg["run"]["time_chunk"] = 2
     run = engine.Run(four_files, cfg, metric_ids=["hadley_edge_lat", "eddy_jet_lat"])
@@ -218,3 +221,47 @@ def test_process_pool_runs_tasks_in_parallel_workers():
     finally:
         runner.close()
     assert runner.mode == "processes" and len({p[0] for p in pids}) == 2   # not one batch in one worker
+
+
+@pytest.mark.parametrize("layout", ["plain", "lat_descending", "levels_in_pa_descending", "fill_below_ground",
+                                    "lon_first", "packed"])
+def test_fast_read_equals_xarray_decoding(tmp_path, layout):
+    """The plain-netCDF4 read path gives exactly what xarray's CF decoding gives, or steps aside."""
+    import netCDF4
+
+    ds = make_dataset(3)
+    enc = {}
+    if layout == "lat_descending":
+        ds = ds.isel(lat=slice(None, None, -1))
+    elif layout == "levels_in_pa_descending":
+        ds = ds.assign_coords(plev=ds["plev"] * 100.0)
+        ds["plev"].attrs.update(units="Pa")
+    elif layout == "fill_below_ground":
+        for v in ("ua", "va"):
+            ds[v][:, 0, :, ::3] = np.nan
+            enc[v] = {"_FillValue": np.float32(1.0e20)}
+    elif layout == "lon_first":
+        ds = ds.transpose("time", "lon", "plev", "lat")
+    elif layout == "packed":
+        for v in ("ua", "va"):
+            enc[v] = {"dtype": "int16", "scale_factor": 0.01, "add_offset": 0.0, "_FillValue": np.int16(-32767)}
+    path = str(tmp_path / f"{layout}.nc")
+    ds.to_netcdf(path, encoding={**synthetic.time_encoding("noleap"), **enc})
+    cfg = C.load(None)
+    run = engine.Run([path], cfg, metric_ids=["hadley_edge_lat", "subtropical_jet_lat", "eddy_jet_lat"])
+    xds = D.open_dataset(path, cfg)
+    nc = netCDF4.Dataset(path)
+    try:
+        for role, reader in run.infos[0].readers.items():
+            slow, _ = reader.read_noted(xds, 1, 3)
+            fast = reader.read_fast(nc, 1, 3)
+            if layout == "packed":
+                assert fast is None                      # scale/offset: xarray's decoding is used
+                continue
+            assert fast is not None and fast.shape == slow.shape and fast.dtype == slow.dtype, role
+            assert np.array_equal(fast, slow, equal_nan=True), role
+            if layout == "fill_below_ground" and role == "va":    # va is read on every level
+                assert np.isnan(fast).any()
+    finally:
+        nc.close()
+        xds.close()

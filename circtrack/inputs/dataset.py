@@ -28,6 +28,19 @@ PROVISIONAL = "provisional_data"
 _CACHE_SET = False
 
 
+def open_raw(path, cfg):
+    """A plain ``netCDF4.Dataset`` for :meth:`RoleReader.read_fast`, or None (other engines)."""
+    if cfg["run"]["netcdf_engine"] != "netcdf4" or not os.path.isfile(path) or \
+            path.lower().endswith((".grib", ".grb", ".grib2", ".grb2")):
+        return None
+    import netCDF4
+    _set_chunk_cache(cfg["run"]["chunk_cache_bytes"])
+    try:
+        return netCDF4.Dataset(path, "r")
+    except OSError:
+        return None
+
+
 def _set_chunk_cache(nbytes):
     global _CACHE_SET
     if not _CACHE_SET:
@@ -811,6 +824,66 @@ class RoleReader:
 
     def read(self, ds, t0, t1):
         return self.read_noted(ds, t0, t1)[0]
+
+    def read_fast(self, nc, t0, t1):
+        """The same array as :meth:`read`, straight from a ``netCDF4.Dataset`` without xarray's
+        decoding passes; None when the variable needs more than that (packed values, data streams,
+        model levels), and the caller takes :meth:`read_noted`.
+
+        Contiguous level runs are read as one hyperslab and reversed as a view; scattered levels
+        one by one (each level is a whole HDF5 chunk in usual layouts, so nothing is decoded twice).
+        Fill and missing values become NaN in place, as CF decoding would do.
+        """
+        if self.stream is not None or self.hybrid is not None or self.name not in nc.variables:
+            return None
+        var = nc.variables[self.name]
+        if var.dtype.kind != "f" or any(a in var.ncattrs() for a in ("scale_factor", "add_offset")):
+            return None
+        var.set_auto_maskandscale(False)
+        index, post = [], []
+        for d in var.dimensions:
+            if d == self.time_dim:
+                index.append(slice(int(t0), int(t1)))
+                post.append(slice(None))
+                continue
+            v = self.selection.get(d)
+            if v is None:
+                index.append(slice(None))
+                post.append(slice(None))
+            elif isinstance(v, int):
+                index.append(v)
+            elif isinstance(v, tuple):                       # (None, None, -1): reversed
+                index.append(slice(None))
+                post.append(slice(None, None, -1))
+            else:
+                ids = [int(k) for k in v]
+                lo, hi = min(ids), max(ids)
+                if ids == list(range(lo, hi + 1)):
+                    index.append(slice(lo, hi + 1))
+                    post.append(slice(None))
+                elif ids == list(range(hi, lo - 1, -1)):
+                    index.append(slice(lo, hi + 1))
+                    post.append(slice(None, None, -1))
+                else:
+                    index.append(sorted(ids))                # netCDF4 reads the listed levels only
+                    post.append(np.argsort(np.argsort(ids)))  # each id's place among the sorted ones
+        arr = var[tuple(index)]
+        for k, p in enumerate(post):                         # views, except for scattered levels
+            if isinstance(p, np.ndarray):
+                arr = np.take(arr, p, axis=k)
+            elif p.step == -1:
+                arr = arr[(slice(None),) * k + (p,)]
+        for attr in ("_FillValue", "missing_value"):
+            if attr in var.ncattrs():
+                for fv in np.atleast_1d(var.getncattr(attr)):
+                    if np.isfinite(fv):
+                        arr[arr == arr.dtype.type(fv)] = np.nan
+        kept = [d for d, i in zip(var.dimensions, index) if not isinstance(i, int)]
+        if kept != list(self.dims):
+            arr = np.transpose(arr, [kept.index(d) for d in self.dims])
+        if self.factor != 1.0 or self.offset != 0.0:
+            arr = arr.astype(np.float64) * self.factor + self.offset
+        return arr
 
     def read_noted(self, ds, t0, t1):
         """``(array, notes)``: the chunk and a note per time step ("" or e.g. ``provisional_data``)."""
