@@ -265,3 +265,30 @@ def test_fast_read_equals_xarray_decoding(tmp_path, layout):
     finally:
         nc.close()
         xds.close()
+
+
+def test_fast_read_of_shuffled_latitudes_and_scattered_levels(tmp_path):
+    import netCDF4
+
+    ds = make_dataset(2)
+    rng = np.random.default_rng(3)
+    ds = ds.isel(lat=rng.permutation(ds.sizes["lat"]), plev=rng.permutation(ds.sizes["plev"]))
+    path = str(tmp_path / "shuffled.nc")
+    ds.to_netcdf(path, encoding=synthetic.time_encoding("noleap"))
+    cfg = C.load(None)
+    run = engine.Run([path], cfg, metric_ids=["hadley_edge_lat", "subtropical_jet_lat"])
+    xds, nc = D.open_dataset(path, cfg), netCDF4.Dataset(path)
+    try:
+        for role, reader in run.infos[0].readers.items():
+            slow, _ = reader.read_noted(xds, 0, 2)
+            fast = reader.read_fast(nc, 0, 2)
+            assert np.array_equal(fast, slow, equal_nan=True), role
+    finally:
+        nc.close()
+        xds.close()
+    ref = make_dataset(2)
+    plain = str(tmp_path / "plain.nc")
+    ref.to_netcdf(plain, encoding=synthetic.time_encoding("noleap"))
+    a = csv_rows(engine.track([path], cfg, label="L", metric_ids=["hadley_edge_lat", "subtropical_jet_lat"]))
+    b = csv_rows(engine.track([plain], cfg, label="L", metric_ids=["hadley_edge_lat", "subtropical_jet_lat"]))
+    assert a == b
