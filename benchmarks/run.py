@@ -26,6 +26,7 @@ METRICS = "hadley_edge_lat,hadley_strength,subtropical_jet_lat,eddy_jet_lat"
 NOISE_STD = 0.1          # m/s, so zlib has real work to do
 SEED = 20010101
 TIME_CHUNK = 8
+WITH_CDO = True          # --no-cdo turns the (slow) cdo row off
 
 # ----------------------------------------------------------------------------- data generation
 
@@ -176,13 +177,18 @@ def approaches(files, outdir):
     out.append(("baseline B: xarray open_mfdataset + mean", [py, "-c", BASELINE_B, *files]))
     out.append(("circtrack track (default: worker processes)",
                 ct_cmd + ["track", *files, "-o", str(outdir / "track_threads.csv"), "--metrics", METRICS, "-q"]))
+    one = Path(outdir) / "one_process.toml"
+    one.write_text("[run]\nprocesses = 1\n")
+    out.append(("circtrack track, 1 worker process (run.processes = 1)",
+                ct_cmd + ["track", *files, "-o", str(outdir / "track_p1.csv"), "--metrics", METRICS, "-q",
+                          "-c", str(one)]))
     out.append(("circtrack track --workers 1",
                 ct_cmd + ["track", *files, "-o", str(outdir / "track_w1.csv"), "--metrics", METRICS, "-q",
                           "--workers", "1"]))
     out.append(("circtrack track --workers 2",
                 ct_cmd + ["track", *files, "-o", str(outdir / "track_w2.csv"), "--metrics", METRICS, "-q",
                           "--workers", "2"]))
-    cdo = shutil.which("cdo")
+    cdo = shutil.which("cdo") if WITH_CDO else None
     if cdo:
         script = "set -e\n" + "\n".join(
             f'{cdo} -s zonmean "{f}" "{outdir}/cdo_zm_{i}.nc"' for i, f in enumerate(files))
@@ -295,7 +301,10 @@ def main(argv=None):
                     help="also time N small one-day files (uncompressed, --many-res grid)")
     ap.add_argument("--many-res", type=float, default=5.0)
     ap.add_argument("--skip-large", action="store_true", help="only the --many-files case")
+    ap.add_argument("--no-cdo", action="store_true", help="leave out cdo zonmean even when cdo is installed")
     a = ap.parse_args(argv)
+    global WITH_CDO
+    WITH_CDO = not a.no_cdo
 
     workdir = Path(a.workdir).resolve()
     repo = Path(__file__).resolve().parents[1]

@@ -7,11 +7,11 @@ import sys
 import click
 
 from circtrack import __version__
-from circtrack.cli_support import _fail, guarded, parse_vars  # noqa: F401
+from circtrack.cli_support import OneLineGroup, _fail, guarded, parse_vars  # noqa: F401
 from circtrack.errors import UsageError
 
 
-@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.group(cls=OneLineGroup, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="circtrack")
 @click.option("--debug", is_flag=True, help="Show tracebacks on errors.")
 def main(debug):

@@ -58,3 +58,21 @@ def parse_vars(pairs):
                              "(and the coordinates time lat lon plev)")
         out[role] = name
     return out
+
+
+class OneLineGroup(click.Group):
+    """A click group whose usage errors (unknown option, bad choice, missing argument) are one
+    ``circtrack: error:`` line with exit status 2, like every other error, not click's usage block."""
+
+    def main(self, args=None, prog_name=None, **kwargs):
+        kwargs.pop("standalone_mode", None)
+        try:
+            rv = super().main(args=args, prog_name=prog_name, standalone_mode=False, **kwargs)
+        except click.UsageError as e:
+            where = e.ctx.command_path if e.ctx is not None else "circtrack"
+            _fail(f"{e.format_message()} (see '{where} --help')", 2)
+        except click.exceptions.Abort:
+            _fail("interrupted; the previous output is untouched", 130)
+        except click.ClickException as e:      # e.g. a file argument click could not open
+            _fail(e.format_message(), e.exit_code)
+        sys.exit(rv if isinstance(rv, int) else 0)

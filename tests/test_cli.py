@@ -198,3 +198,25 @@ def test_module_entry_point_imports_cleanly():
     assert r.returncode == 0, r.stderr
     for cmd in ("track", "scan", "metrics", "trend", "season", "plot", "update"):
         assert cmd in r.stdout
+
+
+@pytest.mark.parametrize("args, needle", [
+    (["track", "x.nc", "-o", "o.csv", "--on-bad-file", "maybe"], "--on-bad-file"),
+    (["track", "x.nc", "-o", "o.csv", "--no-such-option"], "--no-such-option"),
+    (["track", "x.nc"], "-o"),
+    (["trend"], "CSV"),
+    (["no-such-command"], "no-such-command"),
+])
+def test_click_usage_errors_are_one_line(args, needle):
+    r = CliRunner().invoke(main, args)
+    assert r.exit_code == 2
+    lines = [ln for ln in r.output.splitlines() if ln.strip()]
+    assert len(lines) == 1 and lines[0].startswith("circtrack: error:") and needle in lines[0], r.output
+    assert "--help" in lines[0]
+
+
+def test_help_and_version_still_exit_zero():
+    assert CliRunner().invoke(main, ["--help"]).exit_code == 0
+    assert CliRunner().invoke(main, ["track", "--help"]).exit_code == 0
+    r = CliRunner().invoke(main, ["--version"])
+    assert r.exit_code == 0 and "circtrack" in r.output

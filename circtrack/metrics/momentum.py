@@ -20,7 +20,7 @@ METRICS = [
     Metric("hadley_rossby_number", "Local Rossby number of the Hadley cell's upper branch", "1", "hemisphere",
            "-[zeta]/f with [zeta] = -1/(a cos(lat)) d([u] cos(lat))/d(lat), f = 2 Omega sin(lat), cos-weighted mean over "
            "levels in momentum.upper_branch_hpa (150-300 hPa) and latitudes from momentum.min_lat (5 deg) to the "
-           "Hadley edge; 1 for angular-momentum-conserving flow, 0 for flow with no relative vorticity",
+           "Hadley edge (grid bands counted with the share inside); 1 for angular-momentum-conserving flow, 0 for flow with no relative vorticity",
            "Walker & Schneider (2006) J. Atmos. Sci. 63, 3333-3350; Held & Hou (1980) J. Atmos. Sci. 37, 515-533"),
 ]
 
@@ -58,11 +58,20 @@ def compute(fields, cfg):
     u = fields.masked("ua", cfg)[:, sel, :]                      # (N, L', J)
     ro = local_rossby_number(u, lat)
     w = np.cos(np.deg2rad(lat))
+    # each latitude stands for the band between the midpoints to its neighbours; a band counts
+    # with the share of it that lies between min_lat and the edge, so the mean changes smoothly
+    # as the edge moves across a grid latitude
+    mid = (lat[1:] + lat[:-1]) / 2.0
+    lo = np.concatenate([[lat[0] - (mid[0] - lat[0])], mid])
+    hi = np.concatenate([mid, [lat[-1] + (lat[-1] - mid[-1])]])
     for h, hemi in enumerate(HEMISPHERES):
         edge = np.abs(edges.value[:, h])
-        inside = (np.abs(lat)[None, :] >= m["min_lat"]) & (np.abs(lat)[None, :] <= edge[:, None])
-        inside &= (lat[None, :] > 0) if hemi == "NH" else (lat[None, :] < 0)
-        wt = np.where(inside, w[None, :], 0.0)[:, None, :] * np.isfinite(ro)
+        a, b = (np.abs(lo), np.abs(hi)) if hemi == "NH" else (np.abs(hi), np.abs(lo))
+        a = np.where((lat > 0) if hemi == "NH" else (lat < 0), a, np.inf)     # the other hemisphere: none
+        with np.errstate(invalid="ignore"):
+            share = (np.minimum(b[None, :], edge[:, None]) - np.maximum(a[None, :], m["min_lat"])) / (b - a)[None, :]
+        share = np.clip(np.nan_to_num(share), 0.0, 1.0)
+        wt = (share * w[None, :])[:, None, :] * np.isfinite(ro)
         with np.errstate(invalid="ignore", divide="ignore"):
             val = np.nansum(np.nan_to_num(ro) * wt, axis=(1, 2)) / wt.sum(axis=(1, 2))
         res.value[:, h] = val

@@ -49,3 +49,26 @@ def test_hadley_rossby_number_through_the_engine(tmp_path):
     vals = dict(zip(out.columns["hemisphere"], out.columns["value"]))
     assert vals["NH"] == pytest.approx(1.0, abs=0.01)
     assert vals["SH"] == pytest.approx(1.0, abs=0.01)
+
+
+def test_hadley_rossby_number_changes_smoothly_as_the_edge_crosses_a_grid_latitude(tmp_path):
+    """Grid bands count with the share inside the edge: no jump when the edge passes 28.0 deg."""
+    lat = np.arange(-90, 90.1, 1.0)
+    lon = np.arange(0, 360, 30.0)
+    plev = [1000, 850, 700, 500, 300, 250, 200, 150, 100]
+    vals = []
+    for nh_edge in (27.98, 28.0, 28.02):
+        ds = synthetic.dataset(lat, lon, plev, synthetic.monthly_times(2001, 1)[:1], wave_amplitude=0.0,
+                               cell_zeros=(-60.0, -30.0, 5.0, nh_edge, 62.0))
+        # a wind whose Rossby number grows poleward, so the band at 28 deg matters
+        ds["ua"][:, 4:8, :, :] = (0.5 * angular_momentum_wind(lat) * (1 + np.abs(lat) / 30.0))[None, None, :, None]
+        path = tmp_path / f"e{nh_edge}.nc"
+        ds.to_netcdf(path, encoding=synthetic.time_encoding())
+        out = engine.track([str(path)], config.load(), metric_ids=["hadley_edge_lat", "hadley_rossby_number"])
+        c = out.columns
+        get = {(m, h): v for m, h, v in zip(c["metric"], c["hemisphere"], c["value"])}
+        assert get[("hadley_edge_lat", "NH")] == pytest.approx(nh_edge, abs=0.01)
+        vals.append(get[("hadley_rossby_number", "NH")])
+    # a 0.02 deg move of the edge changes the mean by far less than dropping a whole 1-deg band would
+    assert abs(vals[1] - vals[0]) < 2e-3 and abs(vals[2] - vals[1]) < 2e-3
+    assert vals[0] < vals[1] < vals[2]
