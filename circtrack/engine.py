@@ -295,6 +295,10 @@ def _prepare_open(ds, path, plan, cfg, overrides):
     missing = []
     for role, levels in plan.roles.items():
         if role not in det.variables:
+            sub = D.lowest_level_substitute(ds, det, role, cfg)
+            if sub is not None:
+                info.readers[role], info.plev[role] = sub, None
+                continue
             missing.append(role)
             continue
         reader, plev = D.standardise(ds, det, role, levels, cfg)

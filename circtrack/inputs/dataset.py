@@ -7,6 +7,7 @@ time inside the worker that reduces it.
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import os
 import re
@@ -791,6 +792,29 @@ def _surface_reader(ds, det, name):
     return RoleReader(path=path, role="ps", name=name, time_dim=c["time"], dims=dims, selection=_plain(sel),
                       factor=float(conv[0]), offset=float(conv[1]), ntime=int(ds.sizes[c["time"]]),
                       stream=_stream_spec(streams, stream_dim))
+
+
+# near-surface roles that may be taken from the lowest pressure level of a 3-D field
+SURFACE_SUBSTITUTES = {"uas": "ua", "vas": "va"}
+
+
+def lowest_level_substitute(ds, det, role, cfg):
+    """A reader for ``role`` (e.g. uas) made from the highest-pressure level of its 3-D counterpart
+    (ua), or None. ``det.variables``/``det.why`` record the substitution for the sidecar."""
+    src = SURFACE_SUBSTITUTES.get(role)
+    if src is None or src not in det.variables or det.plev_hpa is None or not np.isfinite(det.plev_hpa).any():
+        return None
+    p = float(np.nanmax(det.plev_hpa))
+    reader, _ = standardise(ds, det, src, [p], cfg)
+    plev_dim = det.coords["plev"]
+    k = int(np.flatnonzero(det.plev_hpa == p)[0])
+    reader = dataclasses.replace(reader, role=role, dims=[d for d in reader.dims if d != plev_dim],
+                                 selection={**reader.selection, plev_dim: k}, plev=None)
+    det.variables[role] = det.variables[src]
+    det.units[role] = det.units.get(src, "")
+    det.why[role] = (f"no near-surface wind in the file: the lowest pressure level of {src} "
+                     f"('{det.variables[src]}' at {p:g} hPa) stands in for {role}")
+    return reader
 
 
 @dataclass

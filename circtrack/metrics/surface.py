@@ -18,10 +18,14 @@ from circtrack.registry import Metric, Result, register_family
 WIND_REF = "Kang & Polvani (2011) J. Climate 24, 563-568; Waugh et al. (2018) J. Climate 31, 7565-7581"
 SLP_REF = "Davis & Rosenlof (2012) J. Climate 25, 1061-1078; Waugh et al. (2018) J. Climate 31, 7565-7581"
 
+# uas, or without it (and only when these metrics are asked for with --metrics) ua on the lowest
+# pressure level; the sidecar's found_by says which (inputs/dataset.py lowest_level_substitute)
+_UAS = ("; [uas] is the zonal-mean near-surface wind, or ua on the lowest pressure level when the file has no uas "
+        "and the metric is asked for (the sidecar says which)")
 WIND_METRICS = [
     Metric("surface_wind_zero_lat", "Edge between the trade winds and the surface westerlies", "degrees_north",
            "hemisphere", "first zero of [uas] poleward of the tropical easterly minimum (searched in "
-           "surface.trades_window, 0-35 deg poleward); linear interpolation", WIND_REF),
+           "surface.trades_window, 0-35 deg poleward); linear interpolation" + _UAS, WIND_REF),
     Metric("polar_easterly_edge_lat", "Edge between the surface westerlies and the polar easterlies", "degrees_north",
            "hemisphere", "first zero of [uas] poleward of the surface westerly maximum", WIND_REF),
     Metric("trade_wind_speed", "Strongest tropical easterly", "m s-1", "hemisphere",
