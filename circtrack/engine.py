@@ -675,7 +675,7 @@ class Run:
         self.masks_of = [sector_masks(i.detected.lon, sectors) for i in infos]
         nt = self.times.size
         self.lowpass = _lowpass_setup(cfg, self.times, plan, infos[0].path)
-        per_batch = int(cfg["run"].get("batch_time_steps") or 0) or tc * max(8, 4 * (os.cpu_count() or 1))
+        per_batch = int(cfg["run"].get("batch_time_steps") or 0) or tc * max(16, 8 * (os.cpu_count() or 1))
         if self.lowpass:
             per_batch = max(per_batch, self.lowpass.half_width)   # the halo fits in one neighbour
         self.batches = [(b0, min(nt, b0 + per_batch)) for b0 in range(0, nt, per_batch)]
@@ -758,12 +758,34 @@ class Run:
         self.step_notes = np.full(nt, "", dtype=object)
         runner = _Runner(cfg, len(self.chunks))
         nb = len(self.batches)
+        pending = None             # (batch index, thread, box) being read while the families run
         try:
+            ahead = 2 if self.lowpass else 1
             for bi in range(nb):
                 # a low-pass filter needs the next batch (its halo) reduced first; the previous one is kept
-                for bj in range(bi, min(nb, bi + (2 if self.lowpass else 1))):
+                for bj in range(bi, min(nb, bi + ahead)):
+                    if pending is not None and pending[0] == bj:
+                        pending[1].join()
+                        if "error" in pending[2]:
+                            raise pending[2]["error"]
+                        reduced[bj] = pending[2]["result"]
+                        pending = None
                     if bj not in reduced:
                         reduced[bj] = self._reduce_batch(bj, runner, cache, last_use, batch_of_pos)
+                # read the next batch in the background so the workers never wait for the families
+                nxt = bi + ahead
+                if nxt < nb and pending is None and nxt not in reduced:
+                    box = {}
+
+                    def prefetch(b=nxt, box=box):
+                        try:
+                            box["result"] = self._reduce_batch(b, runner, cache, last_use, batch_of_pos)
+                        except BaseException as e:  # noqa: BLE001 - re-raised in the main thread
+                            box["error"] = e
+
+                    th = threading.Thread(target=prefetch, daemon=True)
+                    th.start()
+                    pending = (nxt, th, box)
                 t0, t1 = self.batches[bi]
                 bt = t1 - t0
                 self.step_notes[t0:t1] = reduced[bi]["notes"]
@@ -804,6 +826,8 @@ class Run:
                 reduced.pop(bi - 1 if self.lowpass else bi, None)
                 self.progress.step(t1, nt)
         finally:
+            if pending is not None:
+                pending[1].join()
             runner.close()
             close_cached()
         return self._outcome(cols, extra, extra_names)
