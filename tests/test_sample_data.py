@@ -47,3 +47,14 @@ def test_edges_and_jets_move_poleward_in_local_summer(demo):
     c, month = demo
     assert _mean(c, month, "hadley_edge_lat", "NH", [6, 7, 8]) > _mean(c, month, "hadley_edge_lat", "NH", [12, 1, 2])
     assert _mean(c, month, "eddy_jet_lat", "SH", [12, 1, 2]) < _mean(c, month, "eddy_jet_lat", "SH", [6, 7, 8])
+
+
+def test_readme_demo_excerpt_is_what_the_first_command_writes():
+    """The README shows the head of model_q_indices.csv; it must be the real output, byte for byte."""
+    from circtrack import output
+
+    readme = (SAMPLE.parent.parent / "README.md").read_text()
+    block = readme.split("source,time,hemisphere,sector,metric,value,units,flag\n", 1)[1].split("...\n", 1)[0]
+    shown = ["source,time,hemisphere,sector,metric,value,units,flag"] + block.splitlines()
+    lines = output.sorted_lines(engine.track([str(SAMPLE)], config.load()))
+    assert lines[:len(shown)] == shown
