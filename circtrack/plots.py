@@ -13,6 +13,7 @@ import matplotlib
 
 matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
+from matplotlib.ticker import MaxNLocator  # noqa: E402
 import numpy as np  # noqa: E402
 
 from circtrack import stats as S  # noqa: E402
@@ -60,7 +61,7 @@ def figure(df, metrics=None, calendar="standard", poleward_positive=False):
     varying = [k for k in line_keys if mon[k].nunique() > 1] or ["hemisphere"]
     metric_ids = sorted(mon["metric"].unique())
     with plt.rc_context(STYLE):
-        fig, axes = plt.subplots(len(metric_ids), 2, figsize=(10, 2.6 * len(metric_ids)),
+        fig, axes = plt.subplots(len(metric_ids), 2, figsize=(10, 3.4 * len(metric_ids)),
                                  gridspec_kw={"width_ratios": [2.4, 1]}, squeeze=False)
         for i, mid in enumerate(metric_ids):
             ax_ts, ax_sc = axes[i]
@@ -96,7 +97,9 @@ def figure(df, metrics=None, calendar="standard", poleward_positive=False):
             ax_ts.set_title(f"{mid}{suffix}", loc="left")
             ax_ts.set_ylabel(f"{mid} ({units})")
             ax_ts.set_xlabel("year")
-            ax_ts.legend(loc="best")
+            # whole years on the axis (the data sit at fractional years, mid-month)
+            ax_ts.xaxis.set_major_locator(MaxNLocator(integer=True))
+            ax_ts.legend(loc="upper center", bbox_to_anchor=(0.5, -0.28), ncol=2)   # below, off the data
             ax_sc.set_title("seasonal cycle (mean \u00b1 1 std)", loc="left")
             ax_sc.set_ylabel(f"{mid} ({units})")
             ax_sc.set_xlabel("month")
