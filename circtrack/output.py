@@ -88,7 +88,9 @@ def atomic_write_text(path, text, before_replace=None):
 
 
 def sidecar_path(csv_path):
-    return csv_path + ".json" if not csv_path.endswith(".csv") else csv_path[:-4] + ".provenance.json"
+    """``OUT.csv`` -> ``OUT.provenance.json`` (any case of the suffix); other names get ``.provenance.json`` appended."""
+    stem = csv_path[:-4] if csv_path.lower().endswith(".csv") else csv_path
+    return stem + ".provenance.json"
 
 
 def library_versions():
@@ -121,6 +123,7 @@ def write(outcome, out_path, cfg, argv=None):
         sys.stdout.flush()
         return None
     prov = provenance(outcome, cfg, argv if argv is not None else sys.argv)
-    atomic_write_text(sidecar_path(out_path), json.dumps(prov, indent=2, sort_keys=False, default=str) + "\n")
+    # the CSV first, then the sidecar describing it (update writes its state after both)
     atomic_write_text(out_path, text)
+    atomic_write_text(sidecar_path(out_path), json.dumps(prov, indent=2, sort_keys=False, default=str) + "\n")
     return sidecar_path(out_path)

@@ -220,3 +220,9 @@ def test_help_and_version_still_exit_zero():
     assert CliRunner().invoke(main, ["track", "--help"]).exit_code == 0
     r = CliRunner().invoke(main, ["--version"])
     assert r.exit_code == 0 and "circtrack" in r.output
+
+
+def test_sidecar_names():
+    assert sidecar_path("/d/OUT.CSV") == "/d/OUT.provenance.json"
+    assert sidecar_path("/d/run.csv") == "/d/run.provenance.json"
+    assert sidecar_path("/d/indices.txt") == "/d/indices.txt.provenance.json"
