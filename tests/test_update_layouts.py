@@ -1,0 +1,212 @@
+"""circtrack update on the layouts track joins or deduplicates: after every data drop, OUT holds exactly
+the bytes of one clean ``circtrack track`` over all files given so far.
+
+Cases: one variable per file (a group of files for the same time steps), a time step repeated in two
+files (identical, conflicting, a later final stream replacing provisional data), one time step per
+file (the eddy-flux flags depend on the record's time step) and the low-pass filtered jet (reaches
+across files). All data are invented (tests.conftest / circtrack.synthetic).
+"""
+
+from __future__ import annotations
+
+import datetime
+import json
+import os
+
+import cftime
+import numpy as np
+import xarray as xr
+from click.testing import CliRunner
+
+from circtrack import synthetic
+from circtrack.cli import main
+from tests.conftest import make_dataset, write
+from tests.metrics.test_transport import _eddy_winds
+from tests.metrics.test_transport import _times as _eddy_times
+from tests.metrics.test_transport import _write as _eddy_write
+from tests.test_layouts_styles import _reanalysis, _write_reanalysis
+
+METRICS = "hadley_edge_lat,hadley_strength,eddy_jet_lat,eddy_jet_speed,eddy_momentum_flux_lat"
+
+
+def invoke(*args):
+    return CliRunner().invoke(main, [str(a) for a in args])
+
+
+def track_bytes(tmp_path, files, *extra):
+    ref = tmp_path / "ref.csv"
+    r = invoke("track", *files, "-o", ref, "-q", *extra)
+    assert r.exit_code == 0, r.output
+    return ref.read_bytes()
+
+
+def error_line(r, code):
+    assert r.exit_code == code, r.output
+    lines = [ln for ln in r.output.splitlines() if ln.strip()]
+    assert len(lines) == 1 and lines[0].startswith("circtrack: error:"), r.output
+    return lines[0]
+
+
+def drops_equal_track(tmp_path, drops, *extra):
+    """Run update after each drop (the list of all files so far); OUT must equal one clean track."""
+    out = tmp_path / "out.csv"
+    for files in drops:
+        r = invoke("update", *files, "-o", out, "-q", *extra)
+        assert r.exit_code == 0, r.output
+        assert out.read_bytes() == track_bytes(tmp_path, files, *extra)
+    return out
+
+
+def state_of(out):
+    return json.loads(out.with_name(out.stem + ".state.json").read_text())
+
+
+def sidecar_of(out):
+    return json.loads(out.with_name(out.stem + ".provenance.json").read_text())
+
+
+# --------------------------------------------------------------------------- one variable per file
+def _split(tmp_path, ds, months, **params):
+    """ua and va of the given months (0-based slice) in two files named after the variable."""
+    d = tmp_path / "data"
+    d.mkdir(exist_ok=True)
+    span = f"2000{months.start + 1:02d}-2000{months.stop:02d}"
+    part = ds.isel(time=months)
+    return [write(part[["ua"]], d / f"ua_mon_{span}.nc"), write(part[["va"]], d / f"va_mon_{span}.nc")]
+
+
+def test_one_variable_per_file_drops(tmp_path):
+    ds = make_dataset(4)
+    ua1, va1 = _split(tmp_path, ds, slice(0, 2))
+    ua2, va2 = _split(tmp_path, ds, slice(2, 4))
+    opts = ("--label", "L", "--metrics", METRICS)
+    out = drops_equal_track(tmp_path, [[ua1, va1]], *opts)
+    before = out.read_bytes()
+    # the u file of March-April arrives before its v file: refused as track refuses it, OUT untouched
+    r_upd = invoke("update", ua1, va1, ua2, "-o", out, "-q", *opts)
+    r_trk = invoke("track", ua1, va1, ua2, "-o", tmp_path / "ref.csv", "-q", *opts)
+    line = error_line(r_upd, 1)
+    assert line == error_line(r_trk, 1)
+    assert "ua_mon_200003-200004.nc" in line and "(va)" in line and "--var va=NAME" in line
+    assert out.read_bytes() == before
+    # the v file arrives: the pair is joined; only the new pair is read
+    drops_equal_track(tmp_path, [[ua1, va1, ua2, va2]], *opts)
+    side = sidecar_of(out)
+    assert side["updated_incrementally"]["processed"] == [ua2, va2]
+    st = state_of(out)
+    assert sorted(st["files"]) == sorted(os.path.abspath(p) for p in (ua1, va1, ua2, va2))
+    assert st["files"][os.path.abspath(va2)]["times"] == ["2000-03-15", "2000-04-15"]
+    assert st["files"][os.path.abspath(va2)]["owned"] == ["2000-03-15", "2000-04-15"]
+    # a member file rewritten (another v field): its group's time steps are computed again
+    write(make_dataset(4, hadley_peak=1.5e11).isel(time=slice(0, 2))[["va"]], va1)
+    fresh = out.read_bytes()
+    drops_equal_track(tmp_path, [[ua1, va1, ua2, va2]], *opts)
+    assert out.read_bytes() != fresh
+    assert sidecar_of(out)["updated_incrementally"]["processed"] == [ua1, va1]
+    r = invoke("update", ua1, va1, ua2, va2, "-o", out, "--label", "L", "--metrics", METRICS)
+    assert r.exit_code == 0 and "nothing new" in r.output
+
+
+def test_one_variable_per_file_siblings_found_without_metrics(tmp_path):
+    # without --metrics the metric set comes from the first file and its same-period siblings
+    ds = make_dataset(4)
+    ua1, va1 = _split(tmp_path, ds, slice(0, 2))
+    ua2, va2 = _split(tmp_path, ds, slice(2, 4))
+    drops_equal_track(tmp_path, [[ua1, va1], [ua1, va1, ua2, va2]], "--label", "L")
+
+
+# --------------------------------------------------------------------------- repeated time steps
+def _months(tmp_path, name, ds, sl):
+    d = tmp_path / "data"
+    d.mkdir(exist_ok=True)
+    return write(ds.isel(time=sl), d / name)
+
+
+def test_identical_repeat_in_a_later_drop_is_dropped(tmp_path):
+    ds = make_dataset(4)
+    a = _months(tmp_path, "m_a.nc", ds, slice(0, 3))
+    b = _months(tmp_path, "m_b.nc", ds, slice(2, 4))             # March again, same values
+    out = drops_equal_track(tmp_path, [[a], [a, b]], "--label", "L", "--metrics", METRICS)
+    (drop,) = sidecar_of(out)["repeated_time_steps_dropped"]
+    assert drop == {"time": "2000-03-15", "path": b, "kept_from": a}
+
+
+def test_conflicting_repeat_refused_naming_both_files_then_policies(tmp_path):
+    ds = make_dataset(4)
+    other = make_dataset(4, edj=(40.0, -45.0))
+    a = _months(tmp_path, "m_a.nc", ds, slice(0, 3))
+    b = _months(tmp_path, "m_b.nc", other, slice(2, 4))           # March again, other values
+    opts = ("--label", "L", "--metrics", METRICS)
+    out = drops_equal_track(tmp_path, [[a]], *opts)
+    before = {p: p.read_bytes() for p in tmp_path.glob("out.*")}
+    line = error_line(invoke("update", a, b, "-o", out, "-q", *opts), 1)
+    assert line == (f"circtrack: error: {b}: time step 2000-03-15 is also in {a} with different values; leave one "
+                    "file out, or choose which wins with --repeated-times keep-first|keep-last")
+    assert {p: p.read_bytes() for p in tmp_path.glob("out.*")} == before
+    drops_equal_track(tmp_path, [[a, b]], *opts, "--repeated-times", "keep-last")
+    assert b"2000-03-15,NH,zonal,eddy_jet_lat,40," in out.read_bytes()
+    # another policy (no new file): the repeated step follows it, without --rebuild
+    drops_equal_track(tmp_path, [[a, b]], *opts, "--repeated-times", "keep-first")
+    assert b"2000-03-15,NH,zonal,eddy_jet_lat,40," not in out.read_bytes()
+    # the files given in the other order: keep-first now means the other file
+    drops_equal_track(tmp_path, [[b, a]], *opts, "--repeated-times", "keep-first")
+    assert b"2000-03-15,NH,zonal,eddy_jet_lat,40," in out.read_bytes()
+
+
+def test_final_data_in_a_later_drop_replace_provisional_data(tmp_path):
+    # the reanalysis cron case: January-March arrive with March from the provisional stream (expver
+    # 0005, other values); a month later the final March arrives in a file of its own, with April
+    ds = make_dataset(4)
+    early = _reanalysis(ds.isel(time=slice(0, 3)), stream="coord", number=0)
+    early["u"] = early["u"] + xr.DataArray([0.0, 0.0, 5.0], dims="valid_time")
+    d = tmp_path / "data"
+    d.mkdir()
+    a = _write_reanalysis(early, d / "era_2000_01-03.nc")
+    late = _reanalysis(ds.isel(time=slice(0, 3)), number=0).isel(valid_time=[2])
+    late = late.assign_coords(expver=("valid_time", ["0001"]))
+    b = _write_reanalysis(late, d / "era_2000_03_final.nc")
+    opts = ("--label", "era", "--metrics", METRICS)
+    out = drops_equal_track(tmp_path, [[a]], *opts)
+    march = [ln for ln in out.read_text().splitlines() if ",2000-03-15," in ln]
+    assert march and all(ln.endswith(";provisional_data") for ln in march)
+    assert sidecar_of(out)["time_step_notes"] == {"provisional_data": ["2000-03-15"]}
+    drops_equal_track(tmp_path, [[a, b]], *opts)
+    assert "provisional_data" not in out.read_text()
+    side = sidecar_of(out)
+    assert side["time_step_notes"] == {}
+    assert side["repeated_time_steps_dropped"] == [{"time": "2000-03-15", "path": a, "kept_from": b,
+                                                    "provisional_replaced_by_final": True}]
+    assert side["updated_incrementally"]["processed"] == [a, b]
+
+
+# --------------------------------------------------------------------------- record-wide properties
+def test_one_time_step_per_file(tmp_path):
+    # monthly files of one step each: the first drop alone has no known time step (eddy fluxes
+    # flagged time_step_unknown); from the second drop on they are time means (time_mean_input)
+    times = _eddy_times(3, 30.0)
+    files = [_eddy_write(tmp_path / f"m_{k}.nc", _eddy_winds(), times[k:k + 1]) for k in range(3)]
+    out = tmp_path / "out.csv"
+    opts = ("--label", "L", "--metrics", "eddy_momentum_flux_lat,eddy_jet_lat")
+    drops_equal_track(tmp_path, [files[:1]], *opts)
+    assert out.read_text().count(",eddy_momentum_flux_lat,") == 2 and out.read_text().count("time_step_unknown") == 2
+    drops_equal_track(tmp_path, [files[:2], files[:3]], *opts)
+    assert out.read_text().count("time_mean_input") == 6 and "time_step_unknown" not in out.read_text()
+
+
+def test_lowpass_jet_reaches_across_drops(tmp_path):
+    n = 100
+    k = np.arange(n)
+    edj = np.stack([45.0 + 3.0 * np.sin(2 * np.pi * k / 60.0) + 4.0 * np.sin(2 * np.pi * k / 3.0),
+                    -50.0 - 4.0 * np.sin(2 * np.pi * k / 3.0)], axis=1)
+    times = np.array([cftime.datetime(2001, 1, 1, calendar="noleap") + datetime.timedelta(days=int(i)) for i in k])
+    ds = synthetic.dataset(np.arange(-90.0, 91.0, 2.0), np.arange(0.0, 360.0, 90.0), [850.0, 500.0, 200.0], times,
+                           edj=edj, wave_amplitude=0.0)
+    files = []
+    for j, (a, b) in enumerate(((0, 35), (35, 70), (70, 100))):
+        files.append(str(tmp_path / f"day_{j}.nc"))
+        ds.isel(time=slice(a, b)).to_netcdf(files[-1], encoding=synthetic.time_encoding("noleap"))
+    cfg = tmp_path / "lowpass.toml"
+    cfg.write_text("[jets]\neddy_lowpass_days = 10.0\n")
+    out = drops_equal_track(tmp_path, [files[:2], files], "--label", "L", "--metrics", "eddy_jet_lat", "-c", cfg)
+    flags = [ln.split(",")[-1] for ln in out.read_text().splitlines()[1:] if ",NH,zonal," in ln]
+    assert flags[40:60] == ["ok"] * 20           # were at the end of the record after the first drop
