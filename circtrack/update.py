@@ -414,8 +414,9 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
             "command": ["circtrack", *sys.argv[1:]],
             "columns": header.split(","),
             "parameters": cfg,
+            # joined one-variable-per-file members appear under their group's layout (joined_inputs)
             "inputs": [entries[a].get("provenance", {"path": a}) for a in used
-                       if entries[a].get("provenance") or entries[a]["times"]],
+                       if entries[a].get("provenance") or not entries[a].get("partial")],
             "skipped_inputs": skipped,
             "repeated_time_steps_dropped": [d for t in order for d in repeats.get(t, [])],
             "repeated_times_policy": repeat_policy,

@@ -113,6 +113,14 @@ def test_one_variable_per_file_siblings_found_without_metrics(tmp_path):
     ua1, va1 = _split(tmp_path, ds, slice(0, 2))
     ua2, va2 = _split(tmp_path, ds, slice(2, 4))
     drops_equal_track(tmp_path, [[ua1, va1], [ua1, va1, ua2, va2]], "--label", "L")
+    # without --label the source is derived from the first file of each joined group, as in track
+    out = tmp_path / "derived.csv"
+    r = invoke("update", ua1, va1, ua2, va2, "-o", out, "-q")
+    assert r.exit_code == 0, r.output
+    assert out.read_bytes() == track_bytes(tmp_path, [ua1, va1, ua2, va2])
+    assert out.read_text().splitlines()[1].startswith("ua_mon,2000-01-15,")
+    side = sidecar_of(out)
+    assert [os.path.basename(i["path"]) for i in side["inputs"]] == ["ua_mon_200001-200002.nc", "ua_mon_200003-200004.nc"]
 
 
 # --------------------------------------------------------------------------- repeated time steps
@@ -154,29 +162,47 @@ def test_conflicting_repeat_refused_naming_both_files_then_policies(tmp_path):
 
 
 def test_final_data_in_a_later_drop_replace_provisional_data(tmp_path):
-    # the reanalysis cron case: January-March arrive with March from the provisional stream (expver
-    # 0005, other values); a month later the final March arrives in a file of its own, with April
-    ds = make_dataset(4)
-    early = _reanalysis(ds.isel(time=slice(0, 3)), stream="coord", number=0)
-    early["u"] = early["u"] + xr.DataArray([0.0, 0.0, 5.0], dims="valid_time")
+    # the reanalysis cron case: each monthly download holds the months since the last one, the
+    # latest month from the provisional stream (expver 0005, here with u + 5 m/s); the next download
+    # brings that month again from the final stream (expver 0001)
+    full = _reanalysis(make_dataset(4), number=0)
     d = tmp_path / "data"
     d.mkdir()
-    a = _write_reanalysis(early, d / "era_2000_01-03.nc")
-    late = _reanalysis(ds.isel(time=slice(0, 3)), number=0).isel(valid_time=[2])
-    late = late.assign_coords(expver=("valid_time", ["0001"]))
-    b = _write_reanalysis(late, d / "era_2000_03_final.nc")
+
+    def download(name, steps, provisional):
+        part = full.isel(valid_time=steps)
+        part = part.assign_coords(expver=("valid_time", ["0005" if provisional and k == len(steps) - 1 else "0001"
+                                                         for k in range(len(steps))]))
+        if provisional:
+            part["u"] = part["u"] + xr.DataArray([0.0] * (len(steps) - 1) + [5.0], dims="valid_time")
+        return _write_reanalysis(part, d / name)
+
+    a = download("era_2000_01-03.nc", [0, 1, 2], True)
+    b = download("era_2000_03-04.nc", [2, 3], True)
+    c = download("era_2000_04.nc", [3], False)
     opts = ("--label", "era", "--metrics", METRICS)
     out = drops_equal_track(tmp_path, [[a]], *opts)
     march = [ln for ln in out.read_text().splitlines() if ",2000-03-15," in ln]
     assert march and all(ln.endswith(";provisional_data") for ln in march)
     assert sidecar_of(out)["time_step_notes"] == {"provisional_data": ["2000-03-15"]}
     drops_equal_track(tmp_path, [[a, b]], *opts)
+    flagged = {ln.split(",")[1] for ln in out.read_text().splitlines() if ln.endswith(";provisional_data")}
+    assert flagged == {"2000-04-15"}
+    side = sidecar_of(out)
+    assert side["time_step_notes"] == {"provisional_data": ["2000-04-15"]}
+    assert side["updated_incrementally"]["processed"] == [a, b]
+    drops_equal_track(tmp_path, [[a, b, c]], *opts)
     assert "provisional_data" not in out.read_text()
     side = sidecar_of(out)
     assert side["time_step_notes"] == {}
-    assert side["repeated_time_steps_dropped"] == [{"time": "2000-03-15", "path": a, "kept_from": b,
-                                                    "provisional_replaced_by_final": True}]
-    assert side["updated_incrementally"]["processed"] == [a, b]
+    assert side["repeated_time_steps_dropped"] == [
+        {"time": "2000-03-15", "path": a, "kept_from": b, "provisional_replaced_by_final": True},
+        {"time": "2000-04-15", "path": b, "kept_from": c, "provisional_replaced_by_final": True}]
+    assert side["updated_incrementally"]["processed"] == [b, c]
+    # the final rows equal those of the final data alone
+    final = tmp_path / "final.csv"
+    assert invoke("track", download("era_final.nc", [0, 1, 2, 3], False), "-o", final, "-q", *opts).exit_code == 0
+    assert final.read_bytes() == out.read_bytes()
 
 
 # --------------------------------------------------------------------------- record-wide properties
