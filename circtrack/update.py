@@ -361,6 +361,8 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
                 if got.get(t):
                     blocks[t] = got[t]
             processed = [a for a in run_files if any(t in need for t in entries[a]["times"])]
+            for a in run_files:                  # e.g. a file skipped for want of its partner, now joined
+                entries[a].pop("skipped", None)
             for s in outcome.provenance["skipped_inputs"]:            # e.g. a variable no file supplies
                 a = os.path.abspath(s["path"])
                 entries[a]["skipped"] = s["reason"]

@@ -107,6 +107,20 @@ def test_one_variable_per_file_drops(tmp_path):
     assert r.exit_code == 0 and "nothing new" in r.output
 
 
+def test_one_variable_per_file_skipped_until_its_partner_arrives(tmp_path):
+    ds = make_dataset(4)
+    ua1, va1 = _split(tmp_path, ds, slice(0, 2))
+    ua2, va2 = _split(tmp_path, ds, slice(2, 4))
+    opts = ("--label", "L", "--metrics", METRICS, "--on-bad-file", "skip")
+    out = drops_equal_track(tmp_path, [[ua1, va1], [ua1, va1, ua2]], *opts)
+    (skip,) = sidecar_of(out)["skipped_inputs"]
+    assert skip["path"] == ua2 and "(va)" in skip["reason"]
+    assert "2000-03-15" not in out.read_text()
+    drops_equal_track(tmp_path, [[ua1, va1, ua2, va2]], *opts)          # the unchanged ua2 is joined now
+    assert sidecar_of(out)["skipped_inputs"] == []
+    assert "skipped" not in state_of(out)["files"][os.path.abspath(ua2)]
+
+
 def test_one_variable_per_file_siblings_found_without_metrics(tmp_path):
     # without --metrics the metric set comes from the first file and its same-period siblings
     ds = make_dataset(4)
