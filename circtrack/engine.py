@@ -772,7 +772,8 @@ class Run:
         cols = {k: [] for k in ["t", "e", "hemisphere", "sector", "metric", "value", "flag"]}
         cache, reduced = {}, {}
         self.step_notes = np.full(nt, "", dtype=object)
-        runner = _Runner(cfg, len(self.chunks))
+        needed = {int(c) for c in self.chunk_of[self.keep]} | {int(self.chunk_of[d]) for d in self.dropped}
+        runner = _Runner(cfg, len(needed))          # only_times: no worker pool for a chunk or two
         nb = len(self.batches)
         pending = None             # (batch index, thread, box) being read while the families run
         try:

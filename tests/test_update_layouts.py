@@ -250,3 +250,29 @@ def test_lowpass_jet_reaches_across_drops(tmp_path):
     out = drops_equal_track(tmp_path, [files[:2], files], "--label", "L", "--metrics", "eddy_jet_lat", "-c", cfg)
     flags = [ln.split(",")[-1] for ln in out.read_text().splitlines()[1:] if ",NH,zonal," in ln]
     assert flags[40:60] == ["ok"] * 20           # were at the end of the record after the first drop
+
+
+def test_engine_computes_only_the_asked_time_steps(tmp_path, monkeypatch):
+    from circtrack import config, engine
+    from circtrack import output as O
+
+    ds = make_dataset(4)
+    a = _months(tmp_path, "m_a.nc", ds, slice(0, 3))
+    b = _months(tmp_path, "m_b.nc", ds, slice(2, 4))
+    cfg = config.load()
+    cfg["run"].update(scheduler="sync", time_chunk=1)
+    ids = METRICS.split(",")
+    full = O.sorted_lines(engine.track([a, b], cfg, metric_ids=ids, label="L"))
+    read = []
+    real = engine.reduce_chunk
+
+    def counting(job):
+        read.append((os.path.basename(job["path"]), job["t0"]))
+        return real(job)
+
+    monkeypatch.setattr(engine, "reduce_chunk", counting)
+    part = engine.track([a, b], cfg, metric_ids=ids, label="L", only_times={"2000-03-15"},
+                        time_step_days=engine._time_step_days(ds["time"].values))
+    assert O.sorted_lines(part)[1:] == [ln for ln in full[1:] if ",2000-03-15," in ln]
+    assert sorted(read) == [("m_a.nc", 2), ("m_b.nc", 0)]        # March from both files, nothing else
+    assert part.provenance["repeated_time_steps_dropped"] == [{"time": "2000-03-15", "path": b, "kept_from": a}]
