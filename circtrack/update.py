@@ -225,6 +225,9 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
         sp = state_path(output)
         _remove_stale_temps([output, O.sidecar_path(output), sp])
         state = _load_state(sp)
+        if state is None and not rebuild and os.path.exists(sp):
+            echo(f"circtrack: {sp} is unreadable or from an older circtrack; rebuilding {output} from all files",
+                 err=True)
         old_lines, header = {}, None
         if state is not None and not rebuild:
             if state["params_hash"] != phash:

@@ -276,3 +276,17 @@ def test_engine_computes_only_the_asked_time_steps(tmp_path, monkeypatch):
     assert O.sorted_lines(part)[1:] == [ln for ln in full[1:] if ",2000-03-15," in ln]
     assert sorted(read) == [("m_a.nc", 2), ("m_b.nc", 0)]        # March from both files, nothing else
     assert part.provenance["repeated_time_steps_dropped"] == [{"time": "2000-03-15", "path": b, "kept_from": a}]
+
+
+def test_state_of_an_older_version_rebuilds(tmp_path):
+    ds = make_dataset(4)
+    files = [_months(tmp_path, "m_a.nc", ds, slice(0, 2)), _months(tmp_path, "m_b.nc", ds, slice(2, 4))]
+    out = drops_equal_track(tmp_path, [files[:1]], "--label", "L", "--metrics", METRICS)
+    sp = out.with_name("out.state.json")
+    st = json.loads(sp.read_text())
+    sp.write_text(json.dumps({**st, "version": 1}))
+    r = invoke("update", *files, "-o", out, "--label", "L", "--metrics", METRICS)
+    assert r.exit_code == 0, r.output
+    assert f"{sp} is unreadable or from an older circtrack; rebuilding" in r.output
+    assert out.read_bytes() == track_bytes(tmp_path, files, "--label", "L", "--metrics", METRICS)
+    assert json.loads(sp.read_text())["version"] == 2
