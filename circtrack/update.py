@@ -335,7 +335,7 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
         base_prov = state.get("provenance", {}) if state else {}
         processed = []
         prog = engine.Progress(quiet=quiet)
-        for attempt in range(2):
+        for _attempt in range(2):      # a second pass only when the run changed the time step
             if not need:
                 break
             repeats, notes = {}, {}

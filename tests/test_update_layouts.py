@@ -134,7 +134,8 @@ def test_one_variable_per_file_siblings_found_without_metrics(tmp_path):
     assert out.read_bytes() == track_bytes(tmp_path, [ua1, va1, ua2, va2])
     assert out.read_text().splitlines()[1].startswith("ua_mon,2000-01-15,")
     side = sidecar_of(out)
-    assert [os.path.basename(i["path"]) for i in side["inputs"]] == ["ua_mon_200001-200002.nc", "ua_mon_200003-200004.nc"]
+    assert [os.path.basename(i["path"]) for i in side["inputs"]] == ["ua_mon_200001-200002.nc",
+                                                                     "ua_mon_200003-200004.nc"]
 
 
 # --------------------------------------------------------------------------- repeated time steps
