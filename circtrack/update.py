@@ -9,6 +9,11 @@ matches the hash in the state and the next run rebuilds from all inputs, so the 
 sequence of data drops equals one clean ``circtrack track`` over all files. Temp files left by a
 killed run are removed by the next run (it holds the lock, so no other run can own them).
 
+The time steps to compute again (those of new or changed files, and see DEVELOPERS.md for the
+rest) are computed by ``engine.track(only_times=...)`` from every file that holds them, so the
+engine's own rules apply: one-variable-per-file groups are joined, identical repeats dropped,
+provisional data replaced by final data, conflicting repeats refused naming both files.
+
 Test hook: with the environment variable ``CIRCTRACK_PAUSE_AT`` set to a phase name, the run
 prints ``circtrack: paused at PHASE (pid N)`` on stderr and sleeps there, so a test can kill it at
 exactly that moment. Phases: ``before-csv-rename`` (the new CSV is written to its temp file and
