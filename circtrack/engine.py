@@ -598,10 +598,13 @@ class Progress:
 
 
 def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None,
-          progress=None, on_bad_file=None, stdin=None):
-    """Run the chosen metrics over all inputs; returns an :class:`Outcome` of tidy rows."""
+          progress=None, on_bad_file=None, stdin=None, only_times=None, time_step_days=None):
+    """Run the chosen metrics over all inputs; returns an :class:`Outcome` of tidy rows.
+
+    ``only_times`` (ISO strings) and ``time_step_days`` are for ``circtrack update``: see :class:`Run`."""
     return Run(paths, cfg, metric_ids=metric_ids, label=label, sectors=sectors, overrides=overrides,
-               progress=progress, on_bad_file=on_bad_file, stdin=stdin).execute()
+               progress=progress, on_bad_file=on_bad_file, stdin=stdin, only_times=only_times,
+               time_step_days=time_step_days).execute()
 
 
 class Run:
@@ -611,10 +614,15 @@ class Run:
     the time axis across files is settled and the tasks (file, time chunk) are laid out. Nothing is
     read then. :meth:`tasks` gives the dask.delayed calls (for inspection); :meth:`execute` computes
     them batch by batch, runs the metric families and returns the tidy :class:`Outcome`.
+
+    For ``circtrack update``: ``only_times`` (a set of ISO time strings) computes only those time
+    steps (repeats among the given files are still resolved and compared for them; other chunks are
+    never read), and ``time_step_days`` replaces the time step the eddy-flux flags see by that of
+    the whole record (of which the given files may be a part). Neither works with the low-pass filter.
     """
 
     def __init__(self, paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None,
-                 progress=None, on_bad_file=None, stdin=None):
+                 progress=None, on_bad_file=None, stdin=None, only_times=None, time_step_days=None):
         self.cfg = cfg
         self.label = label
         self.progress = progress = progress or Progress(quiet=True)
@@ -662,6 +670,12 @@ class Run:
         self.keep, self.dropped, self.partner = _choose_time_steps(self.times_all,
                                                                    last=(self.repeat_policy == "keep-last"),
                                                                    prefer=~self.provisional)
+        self.step_days = _time_step_days(self.times_all[self.keep]) if time_step_days is None else time_step_days
+        if only_times is not None:
+            wanted = np.array([iso_time(t) in only_times for t in self.times_all], dtype=bool)
+            pairs = [(d, p) for d, p in zip(self.dropped, self.partner) if wanted[p]]
+            self.keep = self.keep[wanted[self.keep]]
+            self.dropped, self.partner = [d for d, _ in pairs], [p for _, p in pairs]
         self.times = self.times_all[self.keep]
 
         # tasks: one per file and time chunk (chunk along time only; lat/level/lon stay whole)
@@ -675,6 +689,8 @@ class Run:
         self.masks_of = [sector_masks(i.detected.lon, sectors) for i in infos]
         nt = self.times.size
         self.lowpass = _lowpass_setup(cfg, self.times, plan, infos[0].path)
+        if self.lowpass and (only_times is not None or time_step_days is not None):
+            raise ValueError("the low-pass filter needs the whole record: run without only_times/time_step_days")
         per_batch = int(cfg["run"].get("batch_time_steps") or 0) or tc * max(16, 8 * (os.cpu_count() or 1))
         if self.lowpass:
             per_batch = max(per_batch, self.lowpass.half_width)   # the halo fits in one neighbour
@@ -735,7 +751,7 @@ class Run:
     def execute(self):
         cfg, plan, infos = self.cfg, self.plan, self.infos
         nt = self.times.size
-        batch_of_pos = np.empty(self.times_all.size, dtype=int)
+        batch_of_pos = np.full(self.times_all.size, -1, dtype=int)      # -1: not computed (only_times)
         for bi, (b0, b1) in enumerate(self.batches):
             batch_of_pos[self.keep[b0:b1]] = bi
         for d, p in zip(self.dropped, self.partner):
@@ -751,12 +767,13 @@ class Run:
         sector_names = ["zonal"] + [s[0] for s in self.sectors]
         lat = np.sort(infos[0].detected.lat)
         plev = {r: infos[0].plev[r] for r in plan.roles}
-        step_days = _time_step_days(self.times)
+        step_days = self.step_days
         wanted = set(plan.metric_ids)
         cols = {k: [] for k in ["t", "e", "hemisphere", "sector", "metric", "value", "flag"]}
         cache, reduced = {}, {}
         self.step_notes = np.full(nt, "", dtype=object)
-        runner = _Runner(cfg, len(self.chunks))
+        needed = {int(c) for c in self.chunk_of[self.keep]} | {int(self.chunk_of[d]) for d in self.dropped}
+        runner = _Runner(cfg, len(needed))          # only_times: no worker pool for a chunk or two
         nb = len(self.batches)
         pending = None             # (batch index, thread, box) being read while the families run
         try:

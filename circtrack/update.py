@@ -9,6 +9,11 @@ matches the hash in the state and the next run rebuilds from all inputs, so the 
 sequence of data drops equals one clean ``circtrack track`` over all files. Temp files left by a
 killed run are removed by the next run (it holds the lock, so no other run can own them).
 
+The time steps to compute again (those of new or changed files, and see DEVELOPERS.md for the
+rest) are computed by ``engine.track(only_times=...)`` from every file that holds them, so the
+engine's own rules apply: one-variable-per-file groups are joined, identical repeats dropped,
+provisional data replaced by final data, conflicting repeats refused naming both files.
+
 Test hook: with the environment variable ``CIRCTRACK_PAUSE_AT`` set to a phase name, the run
 prints ``circtrack: paused at PHASE (pid N)`` on stderr and sleeps there, so a test can kill it at
 exactly that moment. Phases: ``before-csv-rename`` (the new CSV is written to its temp file and
@@ -22,6 +27,7 @@ import fcntl
 import glob
 import hashlib
 import json
+import math
 import os
 import sys
 import time
@@ -30,7 +36,7 @@ import click
 
 from circtrack.errors import InputError, UsageError
 
-STATE_VERSION = 1
+STATE_VERSION = 2
 CHUNK = 1 << 20
 
 
@@ -150,19 +156,42 @@ def _group_lines(lines, source):
     return out
 
 
-def _disjoint_groups(files, times_of):
-    """Split files into groups whose time steps do not overlap (so engine.track drops nothing)."""
-    groups = []
-    for f in files:
-        ts = set(times_of[f])
-        for g in groups:
-            if not (g["times"] & ts):
-                g["files"].append(f)
-                g["times"] |= ts
-                break
-        else:
-            groups.append({"files": [f], "times": set(ts)})
-    return [g["files"] for g in groups]
+def _record_step_days(holders, entries, calendar):
+    """The time step of the whole record in days, as engine.Run computes it from its time axis
+    (median spacing of the first steps; NaN for a single step), from the ISO times in the state."""
+    import cftime
+    import numpy as np
+
+    from circtrack.engine import _time_step_days
+
+    ts = sorted((t for t, hs in holders.items() if any(not entries[h].get("skipped") for h in hs)), key=time_key)
+    if len(ts) > 401:
+        ts = ts[:401]
+    try:
+        objs = [cftime.datetime(*time_key(t), calendar=calendar) for t in ts]
+    except (ValueError, TypeError):
+        return None          # a calendar cftime cannot rebuild from the text: the caller recomputes everything
+    return _time_step_days(np.array(objs, dtype=object))
+
+
+def _source_paths(ab, entries):
+    """The files engine.derive_source sees in a clean track: complete files in the order given, then
+    the first file of each group joined from one-variable-per-file files (same time steps)."""
+    usable = [a for a in ab if entries[a]["times"] and not entries[a].get("skipped")]
+    usable = usable or [a for a in ab if entries[a]["times"]]
+    firsts = {}
+    for a in usable:
+        if entries[a].get("partial"):
+            firsts.setdefault(tuple(entries[a]["times"]), a)
+    return [a for a in usable if not entries[a].get("partial")] + list(firsts.values())
+
+
+def _step_class(days, cfg):
+    """What the families make of the record's time step (metrics.transport.time_mean_flag): unknown
+    (a single step), longer than eddies.max_time_step_days, or not. Rows change only with this."""
+    if days is None or not math.isfinite(days):
+        return "unknown"
+    return "long" if days > cfg["eddies"]["max_time_step_days"] else "short"
 
 
 # --------------------------------------------------------------------------- the run
@@ -191,6 +220,9 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
     all_secs = list(secs) + [(k, float(v[0]), float(v[1])) for k, v in cfg.get("sectors", {}).items()
                              if k not in {s[0] for s in secs}]
     policy = on_bad_file or cfg["run"]["on_bad_file"]
+    if repeated_times:
+        cfg["run"]["repeated_times"] = repeated_times        # after the hash: a policy change is no parameter change
+    repeat_policy = cfg["run"].get("repeated_times", "refuse")
 
     O.check_output_path(output)
     lock_fd = acquire_lock(output)
@@ -198,6 +230,9 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
         sp = state_path(output)
         _remove_stale_temps([output, O.sidecar_path(output), sp])
         state = _load_state(sp)
+        if state is None and not rebuild and os.path.exists(sp):
+            echo(f"circtrack: {sp} is unreadable or from an older circtrack; rebuilding {output} from all files",
+                 err=True)
         old_lines, header = {}, None
         if state is not None and not rebuild:
             if state["params_hash"] != phash:
@@ -230,7 +265,11 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
         unchanged = [a for a in ab if _same_file(old_files.get(a), records[a])]
         fresh = [a for a in ab if a not in unchanged]
         removed = [a for a in old_files if a not in records]
-        if state is not None and not fresh and not removed:
+        old_order = {a: i for i, a in enumerate(state.get("order", list(old_files)))} if state else {}
+        policy_changed = state is not None and state.get("repeated_times", "refuse") != repeat_policy
+        order_changed = state is not None and [a for a in ab if a in old_order] != sorted(
+            (a for a in ab if a in old_order), key=old_order.get)
+        if state is not None and not fresh and not removed and not policy_changed and not order_changed:
             echo(f"circtrack: nothing new for {output} ({len(ab)} files up to date)")
             return None
 
@@ -239,120 +278,166 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
             ids = state["metrics"] if state else engine._available_metrics(files, cfg, overrides, policy)
         plan = engine.Plan.make(ids, cfg, all_secs)
 
-        # ---- open the new files (lazily) for their time axes; unreadable ones stop or are skipped
+        # ---- open the new files (lazily) for their time axes; unreadable ones stop or are skipped.
+        # A file lacking some variables (one variable per file) is joined by the engine run below
+        # with the files holding them for the same time steps.
         entries = {a: dict(old_files[a]) for a in unchanged}
-        skipped, infos = [], []
+        calendar = (state or {}).get("provenance", {}).get("calendar")
         for a in fresh:
+            partial = False
             try:
-                info = engine._prepare_file(shown[a], plan, cfg, all_secs, overrides)
+                det = engine._prepare_file(shown[a], plan, cfg, all_secs, overrides).detected
+            except engine.MissingRoles as e:
+                det, partial = e.info.detected, True
             except InputError as e:
                 if policy == "skip":
                     print(f"circtrack: skipped {e}", file=sys.stderr, flush=True)
-                    entries[a] = {**records[a], "skipped": str(e), "times": [], "owned": [], "attrs": {}}
+                    entries[a] = {**records[a], "skipped": str(e), "times": []}
                     continue
                 raise
-            infos.append(info)
-            times = list(dict.fromkeys(engine.iso_time(t) for t in info.detected.times))
-            entries[a] = {**records[a], "times": times, "owned": [], "attrs": info.detected.attrs}
-        # new files must fit those already in OUT (grid, levels, calendar, extra dimensions), as in
-        # one track over all files; only new files are computed, so compare them with a kept one
-        kept = [a for a in unchanged if not entries[a].get("skipped")]
-        if infos and kept:
-            infos.insert(0, engine._prepare_file(shown[kept[0]], plan, cfg, all_secs, overrides))
-        if len(infos) > 1:
-            engine._check_consistent(infos)
-        for a in ab:
-            if entries[a].get("skipped"):
-                skipped.append({"path": shown[a], "reason": entries[a]["skipped"]})
-        used = [a for a in ab if not entries[a].get("skipped")]
-        if not used:
+            calendar = calendar or det.calendar
+            times = list(dict.fromkeys(engine.iso_time(t) for t in det.times))
+            entries[a] = {**records[a], "times": times, "attrs": det.attrs, **({"partial": True} if partial else {})}
+        if not any(entries[a]["times"] for a in ab):
             raise InputError(f"{files[0]}: no usable input among {len(files)} file(s); see the messages above")
-        fresh_used = [a for a in fresh if a in used]
 
         # ---- the source column must stay what a clean track over all files would write
-        source = label or engine.derive_source([shown[a] for a in used], entries[used[0]].get("attrs", {}))
+        named = _source_paths(ab, entries)
+        source = label or engine.derive_source([shown[a] for a in named], entries[named[0]].get("attrs", {}))
         if state is not None and source != state["source"]:
             raise UsageError(f"the source derived from the file names would change from '{state['source']}' to "
                              f"'{source}'; give --label '{state['source']}' to keep it, or --rebuild")
 
-        # ---- who owns each time step
+        # ---- which time steps must be computed again: those of new or changed files, those a
+        # removed or rewritten file held, repeats whose file order or policy changed, and all of
+        # them when the record's time step changes what the eddy-flux flags say (or for the
+        # low-pass filter, which reaches across files)
         holders = {}
-        for a in used:
+        for a in ab:
             for t in entries[a]["times"]:
                 holders.setdefault(t, []).append(a)
-        old_owner = {t: a for a, e in old_files.items() for t in e.get("owned", [])}
-        owner, dropped = {}, []
-        fresh_set = set(fresh_used)
+        fresh_set = set(fresh)
+        gone = {t for a in removed + fresh for t in old_files.get(a, {}).get("times", [])}
+        need = set()
         for t, hs in holders.items():
-            if len(hs) > 1 and fresh_set & set(hs):
-                if repeated_times in (None, "refuse"):
-                    new = next(h for h in hs if h in fresh_set)
-                    other = next(h for h in hs if h != new)
-                    raise InputError(f"{shown[new]}: time step {t} is also in {shown[other]}; remove one of the "
-                                     "files or rerun with --repeated-times keep-first (the file listed first wins) "
-                                     "or --repeated-times keep-last")
-                owner[t] = hs[0] if repeated_times == "keep-first" else hs[-1]
-            elif old_owner.get(t) in hs:
-                owner[t] = old_owner[t]
-            else:
-                owner[t] = hs[0]
-            dropped += [{"time": t, "path": shown[h]} for h in hs if h != owner[t]]
-        need = {t for t, o in owner.items() if o in fresh_set or old_owner.get(t) != o or t not in old_lines}
-        to_run = [a for a in used if any(owner[t] == a for t in entries[a]["times"] if t in need)]
+            if fresh_set & set(hs) or t in gone or t not in old_lines:
+                need.add(t)
+            elif len(hs) > 1 and (policy_changed or hs != sorted(hs, key=lambda h: old_order.get(h, -1))):
+                need.add(t)
+        lowpass = float(cfg.get("jets", {}).get("eddy_lowpass_days", 0) or 0) > 0 and "ua" in plan.roles
+        old_step = (state or {}).get("time_step_days")
+        step_days = None
 
-        # ---- compute what is needed, keep the rest as text
-        blocks = {t: old_lines[t] for t in owner if t not in need}
-        new_prov = {}
+        if state is None or lowpass or calendar is None:
+            need = set(holders)
+        else:
+            step_days = _record_step_days(holders, entries, calendar)
+            if step_days is None or _step_class(step_days, cfg) != _step_class(old_step, cfg):
+                need = set(holders)
+
+        blocks = {t: old_lines[t] for t in holders if t not in need and t in old_lines}
+        new_prov, repeats, notes = {}, {}, {}
         base_prov = state.get("provenance", {}) if state else {}
-        if to_run:
-            prog = engine.Progress(quiet=quiet)
+        processed = []
+        prog = engine.Progress(quiet=quiet)
+        for _attempt in range(2):      # a second pass only when the run changed the time step
+            if not need:
+                break
+            repeats, notes = {}, {}
+            # every file holding a needed time step (so repeats are resolved as in one clean track),
+            # and one kept file the new ones must fit (grid, levels, calendar, extra dimensions)
+            run_set = {h for t in need for h in holders[t]}
+            kept = [a for a in unchanged if a not in run_set and entries[a]["times"] and not entries[a].get("skipped")]
+            if kept:
+                ref = entries[kept[0]]["times"]
+                run_set |= {a for a in kept if entries[a]["times"] == ref}
+            run_files = [a for a in ab if a in run_set]
+            full = need == set(holders) and (lowpass or step_days is None)
             with scheduler_context(workers, scheduler, cfg):
-                for group in _disjoint_groups(to_run, {a: entries[a]["times"] for a in to_run}):
-                    outcome = engine.track([shown[a] for a in group], cfg, metric_ids=ids, label=source,
-                                           sectors=secs, overrides=overrides_cli, progress=prog,
-                                           on_bad_file="stop")
-                    lines = O.sorted_lines(outcome)
-                    if header is not None and lines[0] != header:
-                        raise InputError(f"{shown[group[0]]}: its columns ({lines[0]}) differ from those of {output} "
-                                         f"({header}); rerun with --rebuild")
-                    header = lines[0]
-                    got = _group_lines(lines[1:], source)
-                    for a in group:
-                        for t in entries[a]["times"]:
-                            if t in need and owner[t] == a:
-                                blocks[t] = got.get(t, [])
-                    for inp in outcome.provenance["inputs"]:
-                        new_prov[inp["path"]] = inp
-                    base_prov = {k: outcome.provenance[k] for k in
-                                 ("calendar", "metrics", "sectors", "extra_key_columns")}
-            prog.done(sum(len(blocks[t]) for t in need if t in blocks))
+                outcome = engine.track([shown[a] for a in run_files], cfg, metric_ids=ids, label=source,
+                                       sectors=secs, overrides=overrides_cli, progress=prog, on_bad_file=policy,
+                                       only_times=None if full else need,
+                                       time_step_days=None if full else step_days)
+            lines = O.sorted_lines(outcome)
+            if header is not None and lines[0] != header and not (need == set(holders)):
+                raise InputError(f"{shown[run_files[0]]}: its columns ({lines[0]}) differ from those of {output} "
+                                 f"({header}); rerun with --rebuild")
+            header = lines[0]
+            got = _group_lines(lines[1:], source)
+            for t in need:
+                blocks.pop(t, None)
+                if got.get(t):
+                    blocks[t] = got[t]
+            processed = [a for a in run_files if any(t in need for t in entries[a]["times"])]
+            for a in run_files:                  # e.g. a file skipped for want of its partner, now joined
+                entries[a].pop("skipped", None)
+            for s in outcome.provenance["skipped_inputs"]:            # e.g. a variable no file supplies
+                a = os.path.abspath(s["path"])
+                entries[a]["skipped"] = s["reason"]
+            for inp in outcome.provenance["inputs"]:
+                new_prov[inp["path"]] = inp
+            for d in outcome.provenance["repeated_time_steps_dropped"]:
+                repeats.setdefault(d["time"], []).append(d)
+            for code, ts in outcome.provenance["time_step_notes"].items():
+                for t in ts:
+                    notes.setdefault(t, []).append(code)
+            base_prov = {k: outcome.provenance[k] for k in ("calendar", "metrics", "sectors", "extra_key_columns")}
+            calendar = outcome.provenance["calendar"]
+            # the record's time step over the time steps that have rows (files the run skipped left out)
+            final_step = _record_step_days({t: hs for t, hs in holders.items() if t in blocks}, entries, calendar)
+            if step_days is None or full or _step_class(final_step, cfg) == _step_class(step_days, cfg):
+                step_days = final_step
+                break
+            step_days, need = final_step, set(holders)        # the run's skips changed the time step: redo all
+        if need:
+            prog.done(sum(len(blocks.get(t, [])) for t in need))
         if header is None:
             raise InputError(f"{output}: no rows to write and no header known; rerun with --rebuild")
 
-        order = sorted(owner, key=time_key)
-        body = [ln for t in order for ln in blocks.get(t, [])]
+        order = sorted(blocks, key=time_key)
+        body = [ln for t in order for ln in blocks[t]]
         text = "\n".join([header, *body]) + "\n"
 
-        # ---- state bookkeeping
+        # ---- state bookkeeping: repeats and notes of the kept time steps come from the last state
+        old_repeats = (state or {}).get("repeats", {})
+        old_notes = (state or {}).get("notes", {})
+        for t in order:
+            if t not in need:
+                if t in old_repeats:
+                    repeats[t] = old_repeats[t]
+                if t in old_notes:
+                    notes[t] = old_notes[t]
+        repeats = {t: repeats[t] for t in order if t in repeats}
+        notes = {t: notes[t] for t in order if t in notes}
+        used = [a for a in ab if not entries[a].get("skipped")]
+        skipped = [{"path": shown[a], "reason": entries[a]["skipped"]} for a in ab if entries[a].get("skipped")]
+        dropped_from = {t: {os.path.abspath(d["path"]) for d in ds} for t, ds in repeats.items()}
+        for a in ab:
+            entries[a]["owned"] = [] if entries[a].get("skipped") else [
+                t for t in entries[a]["times"] if t in blocks and a not in dropped_from.get(t, ())]
         for a in used:
-            entries[a]["owned"] = [t for t in entries[a]["times"] if owner[t] == a]
             if a in new_prov:
                 entries[a]["provenance"] = new_prov[a]
+        note_codes = sorted({c for cs in notes.values() for c in cs})
         prov = {
             "tool": "circtrack",
             "command": ["circtrack", *sys.argv[1:]],
             "columns": header.split(","),
             "parameters": cfg,
-            "inputs": [entries[a].get("provenance", {"path": a}) for a in used],
+            # joined one-variable-per-file members appear under their group's layout (joined_inputs)
+            "inputs": [entries[a].get("provenance", {"path": a}) for a in used
+                       if entries[a].get("provenance") or not entries[a].get("partial")],
             "skipped_inputs": skipped,
-            "duplicate_time_steps_dropped": dropped,
+            "repeated_time_steps_dropped": [d for t in order for d in repeats.get(t, [])],
+            "repeated_times_policy": repeat_policy,
             "calendar": base_prov.get("calendar"),
             "time_span": [order[0], order[-1]] if order else None,
             "time_steps": len(order),
             "metrics": base_prov.get("metrics", ids),
             "sectors": base_prov.get("sectors", {}),
             "extra_key_columns": base_prov.get("extra_key_columns", []),
-            "updated_incrementally": {"processed": [shown[a] for a in to_run], "removed": removed},
+            "time_step_notes": {c: [t for t in order if c in notes.get(t, [])] for c in note_codes},
+            "updated_incrementally": {"processed": [shown[a] for a in processed], "removed": removed},
         }
         from circtrack import __version__
 
@@ -360,7 +445,9 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
                 "libraries": O.library_versions()}
         new_state = {
             "version": STATE_VERSION, "params_hash": phash, "source": source, "metrics": ids,
-            "csv_sha256": _sha_text(text), "provenance": base_prov,
+            "csv_sha256": _sha_text(text), "provenance": base_prov, "order": ab,
+            "repeated_times": repeat_policy, "time_step_days": step_days,
+            "repeats": repeats, "notes": notes,
             "files": {a: entries[a] for a in ab},
         }
         O.atomic_write_text(output, text, before_replace=lambda: _pause_point("before-csv-rename"))
@@ -368,7 +455,7 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
         _pause_point("before-state-write")
         O.atomic_write_text(sp, json.dumps(new_state, indent=1, default=str) + "\n")
         if not quiet:
-            echo(f"circtrack: updated {output}: {len(to_run)} file(s) processed, {len(unchanged)} kept, "
+            echo(f"circtrack: updated {output}: {len(processed)} file(s) processed, {len(ab) - len(processed)} kept, "
                  f"{len(removed)} removed, {len(order)} time steps", err=True)
         return new_state
     finally:
