@@ -86,6 +86,13 @@ def scheduler_context(workers=None, address=None, cfg=None):
     from distributed import Client, LocalCluster
 
     if address:
+        from distributed.comm.addressing import parse_address, parse_host_port
+
+        try:                     # check the form first: a failed Client can linger as the default client
+            parse_host_port(parse_address(address)[1])
+        except ValueError as e:
+            raise UsageError(f"--scheduler {address}: not a scheduler address ({e}); give the address the "
+                             "scheduler printed, e.g. tcp://10.0.0.5:8786")
         try:
             client = Client(address, timeout="20s")
         except (OSError, ValueError, TimeoutError) as e:
