@@ -203,5 +203,8 @@ def _section(path, output, time, log_pressure, config, variables):
     cfg = C.load(config)
     overrides = parse_vars(variables)
     check_output_path(output)
-    sec = SEC.section_data(path, cfg, time=time, overrides=overrides)
+    try:
+        sec = SEC.section_data(path, cfg, time=time, overrides=overrides)
+    except InputError as e:           # the engine's line, without its hint for 'track' options
+        raise InputError(re.sub(r",?\s*or pass --on-bad-file skip", "", str(e)))
     SEC.save(sec, output, log_pressure=log_pressure)
