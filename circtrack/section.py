@@ -59,6 +59,23 @@ def _pick_time(times, wanted, path):
                      f"{iso[0]} to {iso[-1]} (give the date as in the CSV 'time' column, e.g. {iso[0]})")
 
 
+def _with_siblings(path):
+    """``path`` and, for one variable per file (``ua_Amon_...`` beside ``va_Amon_...``), the files in its
+    directory named like it but for another variable; the engine joins those holding the same time steps."""
+    from circtrack.inputs.files import SUFFIXES, _split_variable_token, same_period_siblings
+
+    rest = _split_variable_token(path)[1]
+    ext = os.path.splitext(path)[1]
+    if not os.path.isfile(path) or not rest[:len(rest) - len(ext)]:
+        return [path]                  # 'synth.nc' and 'other.nc' are not one variable per file
+    d = os.path.dirname(os.path.abspath(path))
+    try:
+        names = sorted(n for n in os.listdir(d) if n.lower().endswith(SUFFIXES))
+    except OSError:
+        return [path]
+    return [path] + same_period_siblings(path, [os.path.join(d, n) for n in names])
+
+
 def section_data(path, cfg, time=None, overrides=None, label=None):
     """Read one time step of ``path`` and return the :class:`Section` behind the picture.
 
@@ -72,11 +89,12 @@ def section_data(path, cfg, time=None, overrides=None, label=None):
         raise UsageError("--section draws one time step, but jets.eddy_lowpass_days in the config filters the "
                          "eddy-driven jet over the whole record; set jets.eddy_lowpass_days = 0 for the section")
     cfg = {**cfg, "sectors": {}}                       # the section is the full zonal mean
+    paths = _with_siblings(path)
     # planning only (reads no data): the time axis, to choose the time step
-    plan = engine.Run([path], cfg, metric_ids=METRIC_IDS, overrides=overrides, label=label)
+    plan = engine.Run(paths, cfg, metric_ids=METRIC_IDS, overrides=overrides, label=label)
     iso = _pick_time(plan.times, time, path)
     # the engine's rows for that time step: the same code and readers as 'circtrack track'
-    out = engine.Run([path], cfg, metric_ids=METRIC_IDS, overrides=overrides, label=label,
+    out = engine.Run(paths, cfg, metric_ids=METRIC_IDS, overrides=overrides, label=label,
                      only_times={iso}).execute()
     c = out.columns
     extra = [k for k in out.key_columns if k not in ("source", "time", "hemisphere", "sector", "metric")]
@@ -87,7 +105,7 @@ def section_data(path, cfg, time=None, overrides=None, label=None):
             continue
         rows[(c["metric"][i], c["hemisphere"][i])] = (float(c["value"][i]), str(c["flag"][i]))
     # the zonal means behind them, ua and va on every level, first member when there are several
-    zm = engine.Run([path], cfg, metric_ids=METRIC_IDS, overrides=overrides, label=label,
+    zm = engine.Run(paths, cfg, metric_ids=METRIC_IDS, overrides=overrides, label=label,
                     only_times={iso}, all_levels=("ua", "va")).zonal_means()
     mean = {r: a.reshape((-1,) + a.shape[-2:])[:1] for r, a in zm["mean"].items()}
     cov = {r: a.reshape((-1,) + a.shape[-2:])[:1] for r, a in zm["coverage"].items()}
