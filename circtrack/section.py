@@ -39,6 +39,7 @@ class Section:
     lower_level_hpa: float         # jets.lower_level_hpa (eddy-driven jet)
     rows: dict = field(default_factory=dict)   # (metric, hemisphere) -> (value, flag)
     member: str = ""               # which member, when the file holds several
+    files: list = field(default_factory=list)   # the files read (one variable per file: several)
 
     def value(self, metric, hemisphere):
         return self.rows.get((metric, hemisphere), (float("nan"), "missing"))[0]
@@ -118,7 +119,8 @@ def section_data(path, cfg, time=None, overrides=None, label=None):
                    edge_level_hpa=float(cfg["cells"]["level_hpa"]),
                    upper_level_hpa=float(cfg["jets"]["upper_level_hpa"]),
                    lower_level_hpa=float(cfg["jets"]["lower_level_hpa"]),
-                   rows=rows, member=", ".join(f"{k} {v}" for k, v in first.items()))
+                   rows=rows, member=", ".join(f"{k} {v}" for k, v in first.items()),
+                   files=sorted({r.path for i in plan.infos for r in i.readers.values()}))
 
 
 def _levels(vmax, n=10):
@@ -140,7 +142,7 @@ def figure(sec, log_pressure=False):
     with plt.rc_context(style):
         fig, ax = plt.subplots(figsize=(10, 6.2))
         umax = np.nanmax(np.abs(sec.u)) if np.isfinite(sec.u).any() else 1.0
-        ulev = _levels(max(umax, 1.0))
+        ulev = _levels(max(umax, 1.0), 12)
         cf = ax.contourf(sec.lat, sec.plev_u, sec.u, levels=ulev, cmap="RdBu_r", extend="both")
         cb = fig.colorbar(cf, ax=ax, pad=0.02)
         cb.set_label("zonal-mean zonal wind [u] (m s-1)")
@@ -193,7 +195,8 @@ def figure(sec, log_pressure=False):
         ax.set_xlabel("latitude (degrees_north)")
         ax.set_ylabel("pressure (hPa)")
         who = f"{sec.source}" + (f", {sec.member}" if sec.member else "")
-        ax.set_title(f"{os.path.basename(sec.path)}   {sec.time}   source: {who}", loc="left")
+        names = " + ".join(os.path.basename(f) for f in (sec.files or [sec.path]))
+        ax.set_title(f"{names}   {sec.time}   source: {who}", loc="left")
         fig.tight_layout()
     return fig
 

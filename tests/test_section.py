@@ -156,3 +156,32 @@ def test_cli_misuse_and_bad_files(moving_nc, tmp_path):
     cfg = tmp_path / "lowpass.toml"
     cfg.write_text("[jets]\neddy_lowpass_days = 10.0\n")
     _one_error(invoke("plot", "--section", moving_nc, "-c", cfg, "-o", out), 2, "eddy_lowpass_days")
+
+
+def test_one_variable_per_file_and_members(tmp_path):
+    import xarray as xr
+    import matplotlib.pyplot as plt
+
+    from tests.conftest import make_dataset, write
+
+    ds = make_dataset(2)
+    write(ds[["ua"]], tmp_path / "ua_Amon_X_2000.nc")
+    write(ds[["va"]], tmp_path / "va_Amon_X_2000.nc")
+    write(ds[["ua"]], tmp_path / "ua_Amon_X_2001.nc")        # another period: not joined
+    sec = SEC.section_data(str(tmp_path / "ua_Amon_X_2000.nc"), C.load(None))
+    assert [p.rsplit("/", 1)[-1] for p in sec.files] == ["ua_Amon_X_2000.nc", "va_Amon_X_2000.nc"]
+    assert sec.value("hadley_edge_lat", "NH") == pytest.approx(28.0, abs=0.05)
+    fig = SEC.figure(sec)
+    assert "ua_Amon_X_2000.nc + va_Amon_X_2000.nc" in fig.axes[0].get_title(loc="left")
+    plt.close(fig)
+    # two members: the first one is drawn and named; its rows are the engine's rows of that member
+    other = make_dataset(2, cell_zeros=(-60.0, -25.0, 5.0, 33.0, 62.0))
+    both = xr.concat([other, ds], dim="member").assign_coords(member=("member", ["r2", "r1"]))
+    path = write(both.transpose("time", "member", "plev", "lat", "lon"), tmp_path / "members.nc")
+    sec = SEC.section_data(path, C.load(None), time="2000-02-15")
+    assert sec.member == "member r2"
+    assert sec.value("hadley_edge_lat", "NH") == pytest.approx(33.0, abs=0.05)
+    assert sec.value("hadley_edge_lat", "SH") == pytest.approx(-25.0, abs=0.05)
+    k500 = int(np.flatnonzero(sec.plev_psi == 500)[0])
+    j = int(np.searchsorted(LAT, 33.0))
+    assert sec.psi[k500, j - 1] > 0 > sec.psi[k500, j + 1]     # the drawn psi is that member's too
