@@ -195,7 +195,9 @@ def figure(sec, log_pressure=False):
         ax.set_xlabel("latitude (degrees_north)")
         ax.set_ylabel("pressure (hPa)")
         who = f"{sec.source}" + (f", {sec.member}" if sec.member else "")
-        names = " + ".join(os.path.basename(f) for f in (sec.files or [sec.path]))
+        files = sec.files or [sec.path]
+        names = (" + ".join(os.path.basename(f) for f in files) if len(files) <= 3
+                 else f"{os.path.basename(sec.path.rstrip('/'))} ({len(files)} files)")
         ax.set_title(f"{names}   {sec.time}   source: {who}", loc="left")
         fig.tight_layout()
     return fig
