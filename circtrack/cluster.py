@@ -20,6 +20,7 @@ from __future__ import annotations
 import contextlib
 import math
 import os
+import shutil
 import tempfile
 
 from circtrack.errors import UsageError
@@ -48,6 +49,10 @@ def jobqueue_cluster(kind, workers, cfg, *, scale=True):
         raise UsageError(f"[cluster] kind = '{kind}' needs dask-jobqueue on the login node: "
                          "pip install 'circtrack[cluster]'")
     c = dict((cfg or {}).get("cluster") or {})
+    submit = "sbatch" if kind == "slurm" else "qsub"
+    if scale and shutil.which(submit) is None:
+        raise UsageError(f"[cluster] kind = '{kind}' needs the batch command '{submit}', which is not on PATH here; "
+                         "run circtrack on the cluster's login node (or use --workers without a cluster config)")
     per_job = max(1, int(c.get("processes_per_job", 1)))
     cores = max(per_job, int(c.get("cores_per_job", per_job)))
     env = _worker_environment()
@@ -83,8 +88,9 @@ def scheduler_context(workers=None, address=None, cfg=None):
     if address:
         try:
             client = Client(address, timeout="20s")
-        except OSError as e:
-            raise UsageError(f"--scheduler {address}: cannot connect ({e}); check the address printed by the scheduler")
+        except (OSError, ValueError, TimeoutError) as e:
+            raise UsageError(f"--scheduler {address}: cannot connect ({e}); give the address the scheduler printed, "
+                             "e.g. tcp://10.0.0.5:8786")
         with client:
             yield client
         return

@@ -29,8 +29,36 @@ def merge(base: dict, extra: dict, where="config") -> dict:
                 raise UsageError(f"'{key}' in {where} must be a table [{key}]")
             out[key] = merge(out[key], val, f"{where}.{key}")
         else:
-            out[key] = val
+            out[key] = _checked(out[key], val, f"{where}.{key}")
     return out
+
+
+def _checked(default, val, where):
+    """``val`` if it has the kind of value the default has (number, text, list of numbers, ...)."""
+    def kind(v):
+        if isinstance(v, bool):
+            return "true or false"
+        if isinstance(v, (int, float)):
+            return "a number"
+        if isinstance(v, str):
+            return "text in quotes"
+        if isinstance(v, list):
+            return "a list"
+        return type(v).__name__
+
+    name = where.replace("config.", "", 1)
+    if kind(default) != kind(val):
+        raise UsageError(f"{name} = {val!r} in the config: expected {kind(default)}, like the default {default!r}")
+    if isinstance(default, list) and default and isinstance(val, list):
+        if len(val) != len(default) and all(isinstance(x, (int, float)) for x in default) and len(default) == 2:
+            raise UsageError(f"{name} = {val!r} in the config: expected two numbers [low, high]")
+        for x in val:
+            if default and kind(x) != kind(default[0]):
+                raise UsageError(f"{name} = {val!r} in the config: expected a list of {kind(default[0])}s")
+        if len(default) == 2 and all(isinstance(x, (int, float)) for x in val) and len(val) == 2 and \
+                name.endswith(("window", "_hpa")) and val[0] > val[1]:
+            raise UsageError(f"{name} = {val!r} in the config: give the lower bound first, e.g. [{val[1]!r}, {val[0]!r}]")
+    return val
 
 
 def load(path: str | None = None) -> dict:

@@ -18,6 +18,7 @@ import copy
 import functools
 import multiprocessing
 import os
+import signal
 import sys
 import threading
 import time as _time
@@ -198,6 +199,9 @@ def reduce_chunk(job):
 
 def reduce_chunks(jobs):
     """One task over several small chunks (e.g. one-day files), to keep the per-task cost small."""
+    pause = os.environ.get("CIRCTRACK_TASK_PAUSE_S")   # test hook: slow tasks down to interrupt them
+    if pause:
+        _time.sleep(float(pause))
     return [reduce_chunk(j) for j in jobs]
 
 
@@ -398,6 +402,12 @@ def _available_metrics(files, cfg, overrides, policy):
             if qd.times is not None and det.times is not None and qd.times.size == det.times.size \
                     and all(iso_time(a) == iso_time(b) for a, b in zip(qd.times, det.times)):
                 found |= set(qd.variables)
+        # a variable named with --var or [variables] that is not there is a mistake, not a reason to
+        # quietly leave out every metric that needs it
+        for role, name in overrides.items():
+            if role in VARIABLES and role not in found:
+                raise InputError(f"{p}: variable '{name}' given for {role} (--var {role}={name} or [variables]) is not "
+                                 f"in the file; 'circtrack scan {p}' lists its variables")
         ids = [m.id for f in registry.families().values() if set(f.inputs) <= found for m in f.metrics]
         if not ids:
             roles = sorted({r for f in registry.families().values() for r in f.inputs})
@@ -481,16 +491,32 @@ class _Runner:
         if self.mode == "processes":
             if self.pool is None:
                 close_cached()   # the children must not inherit open HDF5 handles
-                self.pool = ProcessPoolExecutor(max_workers=self.nproc,
+                self.pool = ProcessPoolExecutor(max_workers=self.nproc, initializer=_worker_ignores_interrupts,
                                                 mp_context=multiprocessing.get_context("fork"))
             # chunksize=1: dask would otherwise hand up to 6 tasks to one worker as a single batch
             return list(dask.compute(*tasks, scheduler="processes", pool=self.pool, chunksize=1))
         return list(dask.compute(*tasks, scheduler=self.mode))
 
-    def close(self):
-        if self.pool is not None:
+    def close(self, interrupted=False):
+        """Shut the pool down; after Ctrl-C or an error the workers are stopped at once."""
+        if self.pool is None:
+            return
+        if interrupted:
+            procs = list((getattr(self.pool, "_processes", None) or {}).values())
+            for proc in procs:
+                proc.terminate()
+            for proc in procs:       # gone before we return: they share our open files (e.g. update's lock)
+                proc.join(timeout=10)
+            self.pool.shutdown(wait=False, cancel_futures=True)
+        else:
             self.pool.shutdown(wait=True, cancel_futures=True)
-            self.pool = None
+        self.pool = None
+
+
+def _worker_ignores_interrupts():
+    # Ctrl-C reaches the whole process group: the parent stops the workers itself, so workers
+    # ignore SIGINT instead of dying half-way with tracebacks of their own
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def _active_client():
@@ -628,6 +654,10 @@ class Run:
                  progress=None, on_bad_file=None, stdin=None, only_times=None, time_step_days=None,
                  all_levels=()):
         self.cfg = cfg
+        if label is not None and any(ch in label for ch in ',"\n\r'):
+            clean = " ".join(label.replace(",", " ").replace('"', " ").split())
+            raise UsageError(f"--label '{label}': commas, quotes and line breaks would break the CSV's 'source' "
+                             f"column; use e.g. --label '{clean}'")
         self.label = label
         self.progress = progress = progress or Progress(quiet=True)
         overrides = {**cfg.get("variables", {}), **(overrides or {})}
@@ -880,7 +910,13 @@ class Run:
                                 cols["flag"].append(res.flag[:, h].astype(object))
                 reduced.pop(bi - 1 if self.lowpass else bi, None)
                 self.progress.step(t1, nt)
-        finally:
+        except BaseException:
+            runner.close(interrupted=True)       # stop the workers first, so a waiting prefetch returns
+            if pending is not None:
+                pending[1].join(timeout=30)
+            close_cached()
+            raise
+        else:
             if pending is not None:
                 pending[1].join()
             runner.close()

@@ -67,7 +67,16 @@ def atomic_write_text(path, text, before_replace=None):
     """
     path = os.path.abspath(path)
     d = os.path.dirname(path)
-    fd, tmp = tempfile.mkstemp(prefix=temp_prefix(path), suffix=".tmp", dir=d)
+    if not os.path.isdir(d):
+        raise UsageError(f"{path}: the output directory {d} does not exist; create it first (mkdir -p {d})")
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=temp_prefix(path), suffix=".tmp", dir=d)
+    except OSError as e:
+        raise UsageError(f"{path}: cannot write in {d} ({e.strerror}); choose a directory you can write to")
+    # mkstemp makes the file private (0600); give it the mode a plain open() would (0666 minus umask)
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp, 0o666 & ~umask)
     try:
         with os.fdopen(fd, "w", newline="") as f:
             f.write(text)

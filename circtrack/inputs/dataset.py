@@ -474,8 +474,14 @@ def detect(ds, path, overrides=None) -> Detected:
         if det.lat is None:
             det.problems["lat"] = f"dimension '{det.coords['lat']}' has no coordinate values"
             del det.coords["lat"]
+        elif _in_radians(ds[det.coords["lat"]]):
+            det.lat = np.rad2deg(det.lat)
+            det.coord_why["lat"] = det.coord_why.get("lat", "") + " (values in radians, converted to degrees)"
     if "lon" in det.coords:
         lon = np.asarray(ds[det.coords["lon"]].values, dtype=float)
+        if _in_radians(ds[det.coords["lon"]]):
+            lon = np.rad2deg(lon)
+            det.coord_why["lon"] = det.coord_why.get("lon", "") + " (values in radians, converted to degrees)"
         key = np.round(np.mod(lon, 360.0), 6)
         _, first = np.unique(key, return_index=True)
         if first.size < lon.size and np.all(np.isfinite(lon)):
@@ -533,6 +539,11 @@ def detect(ds, path, overrides=None) -> Detected:
     for d in sorted(extra):
         det.extra_dims[d] = np.asarray(ds[d].values) if d in ds.variables else np.arange(ds.sizes[d])
     return det
+
+
+def _in_radians(var):
+    u = _attr(var, "units").strip().lower()
+    return u in ("radian", "radians", "rad")
 
 
 def require_axes(det):
@@ -730,7 +741,13 @@ def standardise(ds, det: Detected, role, levels_hpa, cfg):
                       "ps": ps_reader, "targets_pa": (targets * 100.0).tolist()}
             plev_out = targets
         else:
+            if det.problems.get("plev") or det.plev_hpa is None:
+                raise InputError(f"{path}: {role} '{name}': {det.problems.get('plev', 'no pressure levels found')}")
             p = det.plev_hpa
+            if np.nanmax(p) > 1500.0:
+                raise InputError(f"{path}: pressure levels of '{c['plev']}' reach {np.nanmax(p):g} hPa, more than any "
+                                 f"real atmosphere: the values look like Pa while its units say '{det.plev_units}'; "
+                                 f"set its units attribute to 'Pa' (e.g. ncatted -a units,{c['plev']},o,c,Pa)")
             if levels_hpa is None:
                 idx = np.argsort(p)
             else:
