@@ -151,20 +151,60 @@ def season(csv_path, output, base, anomalies, metrics, calendar):
 
 
 @click.command()
-@click.argument("csv_path", metavar="CSV")
+@click.argument("csv_path", metavar="CSV", required=False)
 @click.option("-o", "--output", required=True, help="Figure file: .png, .pdf or .svg.")
 @click.option("--metrics", default=None, metavar="ID,...", help="Comma-separated metric ids (default: all).")
 @click.option("--poleward-positive", is_flag=True, help="Flip SH latitude metrics so that poleward is positive.")
 @_calendar_opt
+@click.option("--section", "section", default=None, metavar="DATAFILE",
+              help="Instead of a CSV: the latitude-pressure cross-section of one time step of this data file "
+                   "([u], streamfunction, detected Hadley edges and jets).")
+@click.option("--time", "time", default=None, metavar="DATE",
+              help="With --section: the time step, as in the CSV 'time' column (default: the first).")
+@click.option("--log-pressure", is_flag=True, help="With --section: logarithmic pressure axis.")
+@click.option("-c", "--config", "config", default=None, help="With --section: TOML config, as for 'track'.")
+@click.option("--var", "variables", multiple=True, metavar="ROLE=NAME", help="With --section: as for 'track'.")
 @guarded
-def plot(csv_path, output, metrics, poleward_positive, calendar):
-    """Time series with OLS trend and 95 % band, and the monthly seasonal cycle, per metric."""
+def plot(csv_path, output, metrics, poleward_positive, calendar, section, time, log_pressure, config, variables):
+    """Time series with OLS trend and 95 % band, and the monthly seasonal cycle, per metric; or, with
+    --section DATAFILE, the latitude-pressure cross-section of one time step with the detected positions."""
     from circtrack import plots
 
+    if csv_path and section:
+        raise UsageError(f"give either a CSV ({csv_path}) or --section DATAFILE ({section}), not both")
+    if not csv_path and not section:
+        raise UsageError("give a CSV written by 'circtrack track', or --section DATAFILE for a cross-section")
     ext = os.path.splitext(output)[1].lower().lstrip(".")
     if ext not in plots.FORMATS:
         raise UsageError(f"-o {output}: unknown figure format; end the name with .png, .pdf or .svg")
+    if section:
+        used = [n for n, v in (("--metrics", metrics), ("--poleward-positive", poleward_positive),
+                               ("--calendar", calendar)) if v]
+        if used:
+            raise UsageError(f"{', '.join(used)}: for the time-series plot of a CSV, not for --section")
+        _section(section, output, time, log_pressure, config, variables)
+        return
+    used = [n for n, v in (("--time", time), ("--log-pressure", log_pressure), ("-c/--config", config),
+                           ("--var", variables)) if v]
+    if used:
+        raise UsageError(f"{', '.join(used)}: only with --section DATAFILE")
     df = _load(csv_path)
     ids = _metric_ids(metrics, df, csv_path)
     cal = _calendar(csv_path, df, calendar)
     _wrap(lambda: plots.save(df, output, metrics=ids, calendar=cal, poleward_positive=poleward_positive), csv_path)
+
+
+def _section(path, output, time, log_pressure, config, variables):
+    from circtrack import config as C
+    from circtrack import section as SEC
+    from circtrack.cli_support import parse_vars
+    from circtrack.output import check_output_path
+
+    cfg = C.load(config)
+    overrides = parse_vars(variables)
+    check_output_path(output)
+    try:
+        sec = SEC.section_data(path, cfg, time=time, overrides=overrides)
+    except InputError as e:           # the engine's line, without its hint for 'track' options
+        raise InputError(re.sub(r",?\s*or pass --on-bad-file skip", "", str(e)))
+    SEC.save(sec, output, log_pressure=log_pressure)

@@ -645,10 +645,14 @@ class Run:
     steps (repeats among the given files are still resolved and compared for them; other chunks are
     never read), and ``time_step_days`` replaces the time step the eddy-flux flags see by that of
     the whole record (of which the given files may be a part). Neither works with the low-pass filter.
+
+    ``all_levels`` (roles) reads those roles on every pressure level, whatever the metrics need; with
+    :meth:`zonal_means` this gives the fields behind a latitude-pressure cross-section.
     """
 
     def __init__(self, paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None,
-                 progress=None, on_bad_file=None, stdin=None, only_times=None, time_step_days=None):
+                 progress=None, on_bad_file=None, stdin=None, only_times=None, time_step_days=None,
+                 all_levels=()):
         self.cfg = cfg
         if label is not None and any(ch in label for ch in ',"\n\r'):
             clean = " ".join(label.replace(",", " ").replace('"', " ").split())
@@ -664,6 +668,8 @@ class Run:
         if metric_ids is None:
             metric_ids = _available_metrics(files, cfg, overrides, policy)
         self.plan = plan = Plan.make(metric_ids, cfg, sectors)
+        for role in all_levels:            # e.g. the cross-section: [u] on every level, not just 200/850 hPa
+            plan.roles[role] = None
         infos, self.skipped, partial = [], [], []
         for p in files:
             try:
@@ -778,10 +784,9 @@ class Run:
             raise InputError(f"{fb}: time step {iso_time(self.times_all[d])} is also in {fa} with different values; "
                              "leave one file out, or choose which wins with --repeated-times keep-first|keep-last")
 
-    def execute(self):
-        cfg, plan, infos = self.cfg, self.plan, self.infos
-        nt = self.times.size
-        batch_of_pos = np.full(self.times_all.size, -1, dtype=int)      # -1: not computed (only_times)
+    def _schedule(self):
+        """Batch of every position (-1: not computed, only_times) and the last batch using each chunk."""
+        batch_of_pos = np.full(self.times_all.size, -1, dtype=int)
         for bi, (b0, b1) in enumerate(self.batches):
             batch_of_pos[self.keep[b0:b1]] = bi
         for d, p in zip(self.dropped, self.partner):
@@ -790,6 +795,39 @@ class Run:
         for pos in range(self.times_all.size):
             c = self.chunk_of[pos]
             last_use[c] = max(last_use[c], batch_of_pos[pos])
+        return batch_of_pos, last_use
+
+    def zonal_means(self):
+        """The full-circle zonal statistics the families see, for the run's time steps.
+
+        Returns ``{"lat": (J,) ascending, "plev": {role: hPa levels or None}, "mean": {role: (T, *extra,
+        [L], J)}, "coverage": {role: same}, "times": (T,)}``: the mean of valid longitudes and the share
+        of valid longitudes, read and reduced exactly as :meth:`execute` does (same readers and tasks).
+        Meant for a few time steps (``only_times``); it holds them all in memory.
+        """
+        batch_of_pos, last_use = self._schedule()
+        needed = {int(c) for c in self.chunk_of[self.keep]} | {int(self.chunk_of[d]) for d in self.dropped}
+        runner = _Runner(self.cfg, len(needed))
+        parts = []
+        try:
+            cache = {}
+            for bi in range(len(self.batches)):
+                parts.append(self._reduce_batch(bi, runner, cache, last_use, batch_of_pos)["stats"])
+        finally:
+            runner.close()
+            close_cached()
+        roles = list(self.plan.roles)
+        stats = {r: np.concatenate([p[r] for p in parts], axis=0) if parts else None for r in roles}
+        return {"lat": np.sort(self.infos[0].detected.lat),
+                "plev": {r: self.infos[0].plev[r] for r in roles},
+                "mean": {r: a[..., 0, 0] for r, a in stats.items() if a is not None},
+                "coverage": {r: a[..., 0, 1] for r, a in stats.items() if a is not None},
+                "times": self.times}
+
+    def execute(self):
+        cfg, plan, infos = self.cfg, self.plan, self.infos
+        nt = self.times.size
+        batch_of_pos, last_use = self._schedule()
 
         extra = infos[0].detected.extra_dims
         extra_names = list(extra)

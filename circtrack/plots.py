@@ -109,16 +109,17 @@ def figure(df, metrics=None, calendar="standard", poleward_positive=False):
     return fig
 
 
-def save(df, path, metrics=None, calendar="standard", poleward_positive=False):
-    """Render the figure to ``path`` (format from the extension: png, pdf or svg), atomically."""
+def save_figure(fig, path):
+    """Write ``fig`` to ``path`` (format from the extension: png, pdf or svg) atomically and close it;
+    no dates in the metadata, so reruns give the same bytes."""
     ext = os.path.splitext(path)[1].lower().lstrip(".")
     if ext not in FORMATS:
+        plt.close(fig)
         raise ValueError(f"{path}: unknown figure format '.{ext}'; use .png, .pdf or .svg")
-    fig = figure(df, metrics=metrics, calendar=calendar, poleward_positive=poleward_positive)
     path = os.path.abspath(path)
     tmp = os.path.join(os.path.dirname(path), "." + os.path.basename(path) + ".tmp")
     try:
-        meta = {"Creator": "circtrack"} if ext in ("png", "svg", "pdf") else None
+        meta = {"Creator": "circtrack"}
         if ext == "pdf":
             meta = {"Creator": "circtrack", "CreationDate": None}
         elif ext == "svg":
@@ -131,3 +132,11 @@ def save(df, path, metrics=None, calendar="standard", poleward_positive=False):
         if os.path.exists(tmp):
             os.unlink(tmp)
     return path
+
+
+def save(df, path, metrics=None, calendar="standard", poleward_positive=False):
+    """Render the figure to ``path`` (format from the extension: png, pdf or svg), atomically."""
+    ext = os.path.splitext(path)[1].lower().lstrip(".")
+    if ext not in FORMATS:
+        raise ValueError(f"{path}: unknown figure format '.{ext}'; use .png, .pdf or .svg")
+    return save_figure(figure(df, metrics=metrics, calendar=calendar, poleward_positive=poleward_positive), path)

@@ -1,0 +1,187 @@
+"""The cross-section of one time step (``circtrack plot --section``): the data behind the picture
+against the synthetic field's closed-form answers and the engine's rows, the picture itself, and
+the command's errors."""
+
+import matplotlib.image as mpimg
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+from circtrack import config as C
+from circtrack import section as SEC
+from circtrack import synthetic
+from circtrack.cli import main
+from circtrack.constants import EARTH_RADIUS, GRAVITY
+from tests.conftest import LAT, LON, PLEV, run as engine_rows
+
+# a circulation that changes from month to month, so choosing the time step matters
+ZEROS = np.array([[-60.0, -30.0, 5.0, 28.0, 62.0],
+                  [-58.0, -27.5, 4.0, 31.5, 63.0],
+                  [-61.0, -33.0, 6.0, 25.0, 60.0]])
+STJ = np.array([[30.0, -32.0], [34.0, -28.0], [26.0, -35.0]])
+EDJ = np.array([[45.0, -50.0], [48.0, -46.0], [41.0, -53.0]])
+TIMES = ["2000-01-15", "2000-02-15", "2000-03-15"]
+
+
+@pytest.fixture(scope="module")
+def moving_nc(tmp_path_factory):
+    ds = synthetic.dataset(LAT, LON, PLEV, synthetic.monthly_times(2000, 1, "noleap")[:3],
+                           cell_zeros=ZEROS, stj=STJ, edj=EDJ)
+    path = tmp_path_factory.mktemp("sec") / "moving.nc"
+    ds.to_netcdf(path, encoding=synthetic.time_encoding("noleap"))
+    return str(path)
+
+
+def invoke(*args):
+    return CliRunner().invoke(main, [str(a) for a in args])
+
+
+@pytest.mark.parametrize("k", [0, 1, 2])
+def test_positions_are_the_synthetic_answers_and_the_engine_rows(moving_nc, k):
+    sec = SEC.section_data(moving_nc, C.load(None), time=None if k == 0 else TIMES[k])
+    assert sec.time == TIMES[k]
+    # closed-form answers of the synthetic field (grid 1 degree; zero crossings are linear interpolation)
+    assert sec.value("hadley_edge_lat", "NH") == pytest.approx(ZEROS[k, 3], abs=0.05)
+    assert sec.value("hadley_edge_lat", "SH") == pytest.approx(ZEROS[k, 1], abs=0.05)
+    assert sec.value("subtropical_jet_lat", "NH") == pytest.approx(STJ[k, 0], abs=0.1)
+    assert sec.value("subtropical_jet_lat", "SH") == pytest.approx(STJ[k, 1], abs=0.1)
+    assert sec.value("eddy_jet_lat", "NH") == pytest.approx(EDJ[k, 0], abs=0.1)
+    assert sec.value("eddy_jet_lat", "SH") == pytest.approx(EDJ[k, 1], abs=0.1)
+    # the same numbers and flags as 'circtrack track' over the whole file writes for that time step
+    table, _ = engine_rows(moving_nc, metric_ids=SEC.METRIC_IDS)
+    for metric in SEC.METRIC_IDS:
+        for hemi in ("NH", "SH"):
+            assert sec.rows[(metric, hemi)] == table[(TIMES[k], hemi, metric)]
+
+
+def test_fields_are_the_zonal_means_on_every_level(moving_nc):
+    sec = SEC.section_data(moving_nc, C.load(None), time=TIMES[1])
+    ua, va, _ = synthetic.fields(LAT, LON, PLEV, ntime=3, cell_zeros=ZEROS, stj=STJ, edj=EDJ)
+    order = np.argsort(PLEV)                        # the section has the top first
+    np.testing.assert_array_equal(sec.plev_u, PLEV[order])
+    np.testing.assert_array_equal(sec.plev_psi, PLEV[order])
+    u_zm = ua[1].astype(np.float32).astype(float).mean(axis=-1)[order]
+    np.testing.assert_allclose(sec.u, u_zm, atol=1e-4)
+    # psi: the trapezoid integral of [v] from the top, written out here independently of the kernel
+    v = va[1].astype(np.float32).astype(float).mean(axis=-1)[order]
+    p = PLEV[order] * 100.0
+    integral = np.vstack([v[:1] * p[0], v[:1] * p[0] + np.cumsum(0.5 * (v[1:] + v[:-1]) * np.diff(p)[:, None], axis=0)])
+    psi = 2 * np.pi * EARTH_RADIUS * np.cos(np.deg2rad(LAT)) / GRAVITY * integral
+    np.testing.assert_allclose(sec.psi, psi, rtol=1e-4, atol=1e6)
+    # the northern Hadley cell peaks near hadley_peak (1e11 kg s-1) at 500 hPa (quadrature error of
+    # a 14-level trapezoid integral), and psi500 changes sign at the detected edges
+    k500 = int(np.flatnonzero(sec.plev_psi == 500)[0])
+    nh = (LAT > ZEROS[1, 2]) & (LAT < ZEROS[1, 3])
+    assert sec.psi[k500, nh].max() == pytest.approx(1e11, rel=0.1)
+    for edge in (sec.value("hadley_edge_lat", "NH"), sec.value("hadley_edge_lat", "SH")):
+        j = int(np.searchsorted(LAT, edge))
+        assert sec.psi[k500, j - 1] * sec.psi[k500, j] < 0
+
+
+def test_time_must_match_exactly(moving_nc):
+    with pytest.raises(SEC.UsageError) as e:
+        SEC.section_data(moving_nc, C.load(None), time="2000-02-14")
+    msg = str(e.value)
+    assert "2000-02-14" in msg and "2000-01-15" in msg and "2000-03-15" in msg and "3 time step(s)" in msg
+
+
+def _markers(fig, marker):
+    ax = fig.axes[0]
+    return sorted(float(x) for line in ax.get_lines() if line.get_marker() == marker for x in line.get_xdata())
+
+
+def test_figure_marks_the_rows_and_labels_units(moving_nc):
+    import matplotlib.pyplot as plt
+
+    sec = SEC.section_data(moving_nc, C.load(None), time=TIMES[2])
+    fig = SEC.figure(sec)
+    try:
+        ax = fig.axes[0]
+        assert _markers(fig, "*") == sorted([sec.value("subtropical_jet_lat", h) for h in ("NH", "SH")])
+        assert _markers(fig, "D") == sorted([sec.value("eddy_jet_lat", h) for h in ("NH", "SH")])
+        assert _markers(fig, "o") == sorted([sec.value("hadley_edge_lat", h) for h in ("NH", "SH")])
+        on_level = [float(y) for line in ax.get_lines() if line.get_marker() == "*" for y in line.get_ydata()]
+        assert on_level == [200.0, 200.0]
+        assert ax.get_ylim()[0] > ax.get_ylim()[1]          # pressure increases downward
+        assert ax.get_ylabel() == "pressure (hPa)" and ax.get_xlabel() == "latitude (degrees_north)"
+        assert "m s-1" in fig.axes[1].get_ylabel()           # colour bar
+        assert "moving.nc" in ax.get_title(loc="left") and TIMES[2] in ax.get_title(loc="left")
+        assert "source: moving" in ax.get_title(loc="left")
+    finally:
+        plt.close(fig)
+
+
+def test_cli_writes_real_images(moving_nc, tmp_path):
+    png = tmp_path / "section.png"
+    r = invoke("plot", "--section", moving_nc, "--time", TIMES[1], "-o", png)
+    assert r.exit_code == 0, r.output
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    img = mpimg.imread(str(png))
+    assert img.shape[0] >= 600 and img.shape[1] >= 1000 and img.shape[2] in (3, 4)
+    assert img[..., :3].std() > 0.05
+    svg = tmp_path / "section.svg"
+    r = invoke("plot", "--section", moving_nc, "--log-pressure", "-o", svg)
+    assert r.exit_code == 0, r.output
+    text = svg.read_text()
+    assert "<svg" in text and "m s-1" in text and "hPa" in text and "1e10 kg s-1" in text
+    pdf = tmp_path / "section.pdf"
+    assert invoke("plot", "--section", moving_nc, "-o", pdf).exit_code == 0
+    assert pdf.read_bytes()[:5] == b"%PDF-"
+
+
+def _one_error(r, code, *words):
+    assert r.exit_code == code, r.output
+    lines = r.output.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("circtrack: error: "), r.output
+    for w in words:
+        assert w in lines[0]
+
+
+def test_cli_misuse_and_bad_files(moving_nc, tmp_path):
+    out = tmp_path / "s.png"
+    _one_error(invoke("plot", "--section", moving_nc, "--time", "1999-01-01", "-o", out), 2,
+               "1999-01-01", "2000-01-15", "2000-03-15")
+    _one_error(invoke("plot", tmp_path / "idx.csv", "--section", moving_nc, "-o", out), 2, "not both")
+    _one_error(invoke("plot", "-o", out), 2, "--section DATAFILE")
+    _one_error(invoke("plot", tmp_path / "idx.csv", "--time", TIMES[0], "-o", out), 2, "--time", "only with --section")
+    _one_error(invoke("plot", "--section", moving_nc, "--metrics", "eddy_jet_lat", "-o", out), 2, "--metrics")
+    _one_error(invoke("plot", "--section", moving_nc, "-o", tmp_path / "s.gif"), 2, ".png, .pdf or .svg")
+    _one_error(invoke("plot", "--section", tmp_path / "missing.nc", "-o", out), 1, "missing.nc", "no such file")
+    junk = tmp_path / "junk.nc"
+    junk.write_bytes(b"not a netCDF file at all" * 10)
+    r = invoke("plot", "--section", junk, "-o", out)
+    _one_error(r, 1, "junk.nc", "netCDF")
+    assert "--on-bad-file" not in r.output                  # a 'track' option, not one of 'plot'
+    assert not out.exists()
+    cfg = tmp_path / "lowpass.toml"
+    cfg.write_text("[jets]\neddy_lowpass_days = 10.0\n")
+    _one_error(invoke("plot", "--section", moving_nc, "-c", cfg, "-o", out), 2, "eddy_lowpass_days")
+
+
+def test_one_variable_per_file_and_members(tmp_path):
+    import xarray as xr
+    import matplotlib.pyplot as plt
+
+    from tests.conftest import make_dataset, write
+
+    ds = make_dataset(2)
+    write(ds[["ua"]], tmp_path / "ua_Amon_X_2000.nc")
+    write(ds[["va"]], tmp_path / "va_Amon_X_2000.nc")
+    write(ds[["ua"]], tmp_path / "ua_Amon_X_2001.nc")        # another period: not joined
+    sec = SEC.section_data(str(tmp_path / "ua_Amon_X_2000.nc"), C.load(None))
+    assert [p.rsplit("/", 1)[-1] for p in sec.files] == ["ua_Amon_X_2000.nc", "va_Amon_X_2000.nc"]
+    assert sec.value("hadley_edge_lat", "NH") == pytest.approx(28.0, abs=0.05)
+    fig = SEC.figure(sec)
+    assert "ua_Amon_X_2000.nc + va_Amon_X_2000.nc" in fig.axes[0].get_title(loc="left")
+    plt.close(fig)
+    # two members: the first one is drawn and named; its rows are the engine's rows of that member
+    other = make_dataset(2, cell_zeros=(-60.0, -25.0, 5.0, 33.0, 62.0))
+    both = xr.concat([other, ds], dim="member").assign_coords(member=("member", ["r2", "r1"]))
+    path = write(both.transpose("time", "member", "plev", "lat", "lon"), tmp_path / "members.nc")
+    sec = SEC.section_data(path, C.load(None), time="2000-02-15")
+    assert sec.member == "member r2"
+    assert sec.value("hadley_edge_lat", "NH") == pytest.approx(33.0, abs=0.05)
+    assert sec.value("hadley_edge_lat", "SH") == pytest.approx(-25.0, abs=0.05)
+    k500 = int(np.flatnonzero(sec.plev_psi == 500)[0])
+    j = int(np.searchsorted(LAT, 33.0))
+    assert sec.psi[k500, j - 1] > 0 > sec.psi[k500, j + 1]     # the drawn psi is that member's too
