@@ -54,6 +54,8 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
     cfg = C.load(config)
     if repeated_times:
         cfg["run"]["repeated_times"] = repeated_times
+    if on_bad_file:
+        cfg["run"]["on_bad_file"] = on_bad_file          # so the sidecar records the policy used
     ids = [m.strip() for m in metrics.split(",") if m.strip()] if metrics else None
     secs = [engine.parse_sector(s) for s in sectors]
     O.check_output_path(output)

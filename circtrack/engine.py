@@ -18,6 +18,7 @@ import copy
 import functools
 import multiprocessing
 import os
+import re
 import signal
 import sys
 import threading
@@ -369,6 +370,11 @@ def _join_split_variables(partial, plan):
     return infos, errors
 
 
+def _without_skip_hint(err):
+    """The message of a skipped file, without the advice to skip it."""
+    return re.sub(r",?\s*or pass --on-bad-file skip", "", str(err))
+
+
 def _calendar(name):
     name = str(name).lower()
     return "standard" if name == "gregorian" else name
@@ -679,7 +685,7 @@ class Run:
             except InputError as e:
                 if policy == "skip":
                     self.skipped.append({"path": p, "reason": str(e)})
-                    print(f"circtrack: skipped {e}", file=sys.stderr, flush=True)
+                    print(f"circtrack: skipped {_without_skip_hint(e)}", file=sys.stderr, flush=True)
                     continue
                 raise
         joined, unmatched = _join_split_variables(partial, plan)
@@ -688,7 +694,7 @@ class Run:
             if policy != "skip":
                 raise e
             self.skipped.append({"path": e.info.path, "reason": str(e)})
-            print(f"circtrack: skipped {e}", file=sys.stderr, flush=True)
+            print(f"circtrack: skipped {_without_skip_hint(e)}", file=sys.stderr, flush=True)
         if not infos:
             raise InputError(f"{files[0]}: no usable input among {len(files)} file(s); see the messages above")
         _check_consistent(infos)
@@ -722,7 +728,16 @@ class Run:
         self.chunk_of = np.empty(self.times_all.size, dtype=int)
         for c, (k, a, b) in enumerate(self.chunks):
             self.chunk_of[self.starts[k] + a:self.starts[k] + b] = c
+        names = [n for n, _, _ in sectors]
+        if len(set(names)) != len(names):
+            dup = sorted({n for n in names if names.count(n) > 1})
+            raise UsageError(f"sector name(s) {', '.join(dup)} given twice (--sector or [sectors]); give each band its own name")
         self.masks_of = [sector_masks(i.detected.lon, sectors) for i in infos]
+        for inf, masks in zip(infos, self.masks_of):
+            for (name, a, b), m in zip(sectors, masks[1:]):
+                if not m.any():
+                    raise UsageError(f"--sector {name}={a:g}:{b:g} holds no grid longitude of {inf.path} "
+                                     f"(longitudes every {np.median(np.abs(np.diff(inf.detected.lon))):g} deg); widen the band")
         nt = self.times.size
         self.lowpass = _lowpass_setup(cfg, self.times, plan, infos[0].path)
         if self.lowpass and (only_times is not None or time_step_days is not None):

@@ -110,7 +110,11 @@ def report(paths, cfg, overrides) -> str:
     for fam in registry.families().values():
         lacking = [r for r in fam.inputs if r not in joined]
         for m in fam.metrics:
-            if lacking:
+            subs = {r: D.SURFACE_SUBSTITUTES.get(r) for r in lacking}
+            if lacking and all(src in joined for src in subs.values()) and det.plev_hpa is not None:
+                lines.append(f"  {m.id:30s} can run when asked for (--metrics {m.id}): "
+                             + ", ".join(f"{r} from {src} on the lowest pressure level" for r, src in subs.items()))
+            elif lacking:
                 lines.append(f"  {m.id:30s} cannot run: needs {', '.join(lacking)}")
             else:
                 lines.append(f"  {m.id:30s} can run")

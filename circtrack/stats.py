@@ -251,6 +251,8 @@ def poleward_flip(df):
     out = df.copy()
     sel = (out["hemisphere"] == "SH") & (out["units"] == "degrees_north")
     out.loc[sel, "value"] = -out.loc[sel, "value"]
+    # every hemisphere's latitudes now count poleward from the equator
+    out.loc[out["units"] == "degrees_north", "units"] = "degrees_poleward"
     return out
 
 

@@ -3,7 +3,7 @@
 Scenario (our own, not a real dataset): "Model Q", a fictional coarse climate model, runs 20
 years (2031-2050, noleap calendar) of monthly means. Its Hadley cells widen by about 0.4 degrees
 per decade in each hemisphere, its cells and jets migrate with the seasons (poleward in local
-summer), and the winter Hadley cell is the stronger one. One file per year, like a model archive.
+summer, in both hemispheres), and the winter Hadley cell is the stronger one. One file per year, like a model archive.
 
     python sample_inputs/make_sample.py
 """
@@ -25,7 +25,7 @@ def main():
     years = np.array([t.year + (t.month - 0.5) / 12 for t in times]) - 2031
     phase = np.array([np.cos(2 * np.pi * (t.month - 7) / 12) for t in times])   # +1 in July, -1 in January
     widen = 0.04 * years                                                            # degrees per year
-    zeros = np.stack([-60 - 2 * phase - widen, -30 - 2 * phase - widen, 4 * phase,
+    zeros = np.stack([-60 + 2 * phase - widen, -30 + 2 * phase - widen, 4 * phase,
                       28 + 2 * phase + widen, 60 + 2 * phase + widen], axis=1)
     params = dict(
         cell_zeros=zeros,

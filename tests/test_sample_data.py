@@ -46,6 +46,7 @@ def test_summer_hadley_cell_is_the_weaker_one(demo):
 def test_edges_and_jets_move_poleward_in_local_summer(demo):
     c, month = demo
     assert _mean(c, month, "hadley_edge_lat", "NH", [6, 7, 8]) > _mean(c, month, "hadley_edge_lat", "NH", [12, 1, 2])
+    assert _mean(c, month, "hadley_edge_lat", "SH", [12, 1, 2]) < _mean(c, month, "hadley_edge_lat", "SH", [6, 7, 8])
     assert _mean(c, month, "eddy_jet_lat", "SH", [12, 1, 2]) < _mean(c, month, "eddy_jet_lat", "SH", [6, 7, 8])
 
 
