@@ -629,14 +629,76 @@ class Progress:
         self.line(f"{rows} rows in {(_time.time() - self.t0):.1f} s")
 
 
+MEMBER_ATTRIBUTES = ("variant_label", "member_id", "realization", "ensemble_member")
+
+
+def _member_of(path):
+    """The ensemble member a file belongs to, from its global attributes (CMIP ``variant_label``...)."""
+    if not os.path.isfile(path):
+        return None
+    try:
+        import netCDF4
+        with netCDF4.Dataset(path) as nc:
+            for a in MEMBER_ATTRIBUTES:
+                if a in nc.ncattrs():
+                    return str(nc.getncattr(a)).strip() or None
+    except (OSError, RuntimeError, ValueError):
+        return None
+    return None
+
+
 def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None,
           progress=None, on_bad_file=None, stdin=None, only_times=None, time_step_days=None):
     """Run the chosen metrics over all inputs; returns an :class:`Outcome` of tidy rows.
 
-    ``only_times`` (ISO strings) and ``time_step_days`` are for ``circtrack update``: see :class:`Run`."""
-    return Run(paths, cfg, metric_ids=metric_ids, label=label, sectors=sectors, overrides=overrides,
-               progress=progress, on_bad_file=on_bad_file, stdin=stdin, only_times=only_times,
-               time_step_days=time_step_days).execute()
+    ``only_times`` (ISO strings) and ``time_step_days`` are for ``circtrack update``: see :class:`Run`.
+    Files of several ensemble members (one member per file, told apart by a global attribute such
+    as ``variant_label``) are run member by member and get a ``member`` key column; otherwise the
+    same time step in two members' files would be a conflicting repeat.
+    """
+    kw = dict(metric_ids=metric_ids, label=label, sectors=sectors, overrides=overrides, progress=progress,
+              on_bad_file=on_bad_file, only_times=only_times, time_step_days=time_step_days)
+    files = expand(paths, stdin=stdin)
+    members = collections.OrderedDict()
+    for f in files:
+        members.setdefault(_member_of(f), []).append(f)
+    if len(members) < 2 or None in members:
+        return Run(files, cfg, **kw).execute()
+    labels = sorted(members)
+    return _merge_members(labels, [Run(members[m], cfg, **kw).execute() for m in labels])
+
+
+def _merge_members(labels, outs):
+    """One Outcome from per-member Outcomes, with a ``member`` key column after ``time``."""
+    first = outs[0]
+    names = list(first.columns)
+    at = names.index("time") + 1
+    names = names[:at] + ["member"] + names[at:]
+    cols = {}
+    for name in names:
+        parts = []
+        for m, o in zip(labels, outs):
+            n = len(o.columns["metric"])
+            if name == "member":
+                parts.append(np.full(n, m, dtype=object))
+            elif name in o.columns:
+                parts.append(np.asarray(o.columns[name], dtype=object if name != "value" else float))
+            else:
+                raise InputError(f"member {m}: its rows have other key columns than member {labels[0]}'s "
+                                 f"({', '.join(o.key_columns)}); run the members separately")
+        cols[name] = np.concatenate(parts)
+    k = first.key_columns.index("time") + 1
+    keys = first.key_columns[:k] + ["member"] + first.key_columns[k:]
+    # ISO 8601 dates of one calendar sort as text (years 0000-9999)
+    _, rank = np.unique(np.asarray(cols["time"], dtype=str), return_inverse=True)
+    prov = dict(first.provenance)
+    prov["inputs"] = [i for o in outs for i in o.provenance["inputs"]]
+    prov["skipped_inputs"] = [i for o in outs for i in o.provenance["skipped_inputs"]]
+    prov["members"] = {m: {"found_by": "global attribute " + "/".join(MEMBER_ATTRIBUTES),
+                           "time_span": o.provenance["time_span"], "time_steps": o.provenance["time_steps"],
+                           "inputs": [i["path"] for i in o.provenance["inputs"]]} for m, o in zip(labels, outs)}
+    prov["extra_key_columns"] = ["member"] + list(first.provenance.get("extra_key_columns", []))
+    return Outcome(cols, keys, prov, rank)
 
 
 class Run:
