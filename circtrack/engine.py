@@ -290,12 +290,7 @@ def _prepare_file(path, plan, cfg, sectors, overrides):
 
 def _prepare_open(ds, path, plan, cfg, overrides):
     det = D.detect(ds, path, overrides)
-    if "time" not in det.coords:
-        raise InputError(f"{path}: no time axis found; name it 'time' or give it CF units ('days since ...')")
-    for key in ("lat", "lon"):
-        if key not in det.coords:
-            raise InputError(f"{path}: no {'latitude' if key == 'lat' else 'longitude'} axis found; name it "
-                             f"'{key}' or give it units '{'degrees_north' if key == 'lat' else 'degrees_east'}'")
+    D.require_axes(det)
     info = FileInfo(path, det)
     missing = []
     for role, levels in plan.roles.items():
@@ -380,15 +375,20 @@ def _calendar(name):
     return "standard" if name == "gregorian" else name
 
 
+def _detect_only(path, cfg, overrides):
+    """What a file holds (coordinates, variables), opened and closed again."""
+    ds = D.open_dataset(path, cfg)
+    try:
+        return D.detect(ds, path, overrides)
+    finally:
+        ds.close()
+
+
 def _available_metrics(files, cfg, overrides, policy):
     """Without --metrics: every metric whose inputs the first readable file holds."""
     for p in files:
         try:
-            ds = D.open_dataset(p, cfg)
-            try:
-                det = D.detect(ds, p, overrides)
-            finally:
-                ds.close()
+            det = _detect_only(p, cfg, overrides)
             D.require_axes(det)
         except InputError:
             if policy == "skip":           # reported when the file is prepared
@@ -398,11 +398,7 @@ def _available_metrics(files, cfg, overrides, policy):
         # one variable per file: the files named like this one but for another variable, same time steps
         for q in same_period_siblings(p, files):
             try:
-                qs = D.open_dataset(q, cfg)
-                try:
-                    qd = D.detect(qs, q, overrides)
-                finally:
-                    qs.close()
+                qd = _detect_only(q, cfg, overrides)
             except InputError:
                 continue
             if qd.times is not None and det.times is not None and qd.times.size == det.times.size \
