@@ -301,7 +301,8 @@ def seasonal_cycle(df, base=None, calendar="standard", metrics=None):
 
     * climatology: keys, month (1-12), mean, std (sample, ddof=1), n (years), amplitude
       (max - min of the 12 climatological means; NaN if a month is missing), extreme
-      ("poleward" for latitude metrics, i.e. max |lat|; "max" otherwise), extreme_month, units;
+      ("poleward" for hemispheric latitude metrics, i.e. max |lat|; "max" otherwise, e.g. the
+      northernmost month of a global latitude), extreme_month, units;
     * anomalies: keys, year, month, value, anomaly (monthly mean minus its base climatology), units.
 
     ``base=(y0, y1)`` restricts the climatology to years y0..y1 inclusive (default: all years).
@@ -324,7 +325,10 @@ def seasonal_cycle(df, base=None, calendar="standard", metrics=None):
     parts = []
     for _, c in clim.groupby(keys, sort=False, dropna=False):
         c = c.sort_values("month").copy()
-        lat = (c["units"].iloc[0] == "degrees_north")
+        # a hemisphere's latitude has a poleward extreme; a global one (e.g. the boundary between
+        # the two Hadley cells) only a northernmost one
+        lat = (c["units"].iloc[0] in ("degrees_north", "degrees_poleward")) and \
+            str(c["hemisphere"].iloc[0]) in ("NH", "SH")
         full = len(c) == 12
         c["amplitude"] = float(c["mean"].max() - c["mean"].min()) if full else np.nan
         score = c["mean"].abs() if lat else c["mean"]

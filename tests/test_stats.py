@@ -274,3 +274,16 @@ def test_only_usable_rows_enter_the_statistics():
                        "units": "u", "flag": ["ok", "ok;provisional_data", "extremum_at_window_edge", "ok"]})
     out = S.clean(df)
     assert list(out["value"]) == [1.0, 2.0]          # a note after ';' keeps a row; a doubtful flag or NaN drops it
+
+
+def test_season_extreme_of_a_global_latitude_is_its_northernmost_month():
+    import pandas as pd
+
+    months = list(range(1, 13))
+    vals = [5.0 * np.cos(2 * np.pi * (m - 8) / 12) for m in months]        # northernmost in August
+    df = pd.DataFrame({"source": "s", "time": [f"2001-{m:02d}-15" for m in months], "hemisphere": "global",
+                       "sector": "zonal", "metric": "cell_boundary_lat", "value": vals,
+                       "units": "degrees_north", "flag": "ok"})
+    clim, _ = S.seasonal_cycle(df, calendar="noleap")
+    row = clim.iloc[0]
+    assert row["extreme"] == "max" and row["extreme_month"] == 8
