@@ -710,8 +710,10 @@ def standardise(ds, det: Detected, role, levels_hpa, cfg):
     conv = U.conversion(det.units.get(role, ""), rule["kind"])
     if conv is None:
         raise InputError(f"{path}: variable '{name}' ({role}) has units '{det.units.get(role, '')}', which circtrack "
-                         f"does not know for {rule['kind'].replace('_', ' ')}; set its units attribute to "
-                         f"'{U.CANONICAL[rule['kind']]}' (e.g. ncatted -a units,{name},o,c,'{U.CANONICAL[rule['kind']]}')")
+                         f"does not know for {rule['kind'].replace('_', ' ')}; if the values are in "
+                         f"{U.CANONICAL[rule['kind']]}, set the attribute (ncatted -a units,{name},o,c,"
+                         f"'{U.CANONICAL[rule['kind']]}'), otherwise convert the values first, or name the right "
+                         f"variable with --var {role}=NAME")
     streams = det.streams
     stream_dim = streams["name"] if streams and streams["kind"] == "dim" and streams["name"] in da.dims else None
     sel = {}
