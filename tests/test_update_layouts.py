@@ -16,10 +16,9 @@ import os
 import cftime
 import numpy as np
 import xarray as xr
-from click.testing import CliRunner
 
 from circtrack import synthetic
-from circtrack.cli import main
+from tests.test_update import invoke, one_error_line, track_bytes
 from tests.conftest import make_dataset, write
 from tests.metrics.test_transport import _eddy_winds
 from tests.metrics.test_transport import _times as _eddy_times
@@ -29,22 +28,7 @@ from tests.test_layouts_styles import _reanalysis, _write_reanalysis
 METRICS = "hadley_edge_lat,hadley_strength,eddy_jet_lat,eddy_jet_speed,eddy_momentum_flux_lat"
 
 
-def invoke(*args):
-    return CliRunner().invoke(main, [str(a) for a in args])
-
-
-def track_bytes(tmp_path, files, *extra):
-    ref = tmp_path / "ref.csv"
-    r = invoke("track", *files, "-o", ref, "-q", *extra)
-    assert r.exit_code == 0, r.output
-    return ref.read_bytes()
-
-
-def error_line(r, code):
-    assert r.exit_code == code, r.output
-    lines = [ln for ln in r.output.splitlines() if ln.strip()]
-    assert len(lines) == 1 and lines[0].startswith("circtrack: error:"), r.output
-    return lines[0]
+error_line = one_error_line
 
 
 def drops_equal_track(tmp_path, drops, *extra):
