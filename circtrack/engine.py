@@ -628,19 +628,20 @@ class Progress:
 MEMBER_ATTRIBUTES = ("variant_label", "member_id", "realization", "ensemble_member")
 
 
-def _member_of(path):
-    """The ensemble member a file belongs to, from its global attributes (CMIP ``variant_label``...)."""
-    if not os.path.isfile(path):
-        return None
-    try:
-        import netCDF4
-        with netCDF4.Dataset(path) as nc:
-            for a in MEMBER_ATTRIBUTES:
-                if a in nc.ncattrs():
-                    return str(nc.getncattr(a)).strip() or None
-    except (OSError, RuntimeError, ValueError):
-        return None
-    return None
+def _member_groups(infos):
+    """Files per ensemble member when the inputs belong to several members (one member per file,
+    told apart by a global attribute such as ``variant_label``); empty otherwise."""
+    groups = collections.OrderedDict()
+    for inf in infos:
+        attrs = inf.detected.attrs
+        label = next((str(attrs[a]).strip() for a in MEMBER_ATTRIBUTES if str(attrs.get(a, "")).strip()), None)
+        if label is None:
+            return {}
+        files = [inf.path] + list((inf.detected.layout or {}).get("files", {}).values())
+        groups.setdefault(label, []).extend(files)
+    if len(groups) < 2:
+        return {}
+    return {m: list(dict.fromkeys(fs)) for m, fs in groups.items()}
 
 
 def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None,
@@ -654,17 +655,15 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
     """
     kw = dict(metric_ids=metric_ids, label=label, sectors=sectors, overrides=overrides, progress=progress,
               on_bad_file=on_bad_file, only_times=only_times, time_step_days=time_step_days)
-    files = expand(paths, stdin=stdin)
-    members = collections.OrderedDict()
-    for f in files:
-        members.setdefault(_member_of(f), []).append(f)
-    if len(members) < 2 or None in members:
-        return Run(files, cfg, **kw).execute()
-    labels = sorted(members)
-    return _merge_members(labels, [Run(members[m], cfg, **kw).execute() for m in labels])
+    run = Run(paths, cfg, stdin=stdin, **kw)          # plans: coordinates and attributes only
+    groups = _member_groups(run.infos)
+    if not groups:
+        return run.execute()
+    labels = sorted(groups)
+    return _merge_members(labels, [Run(groups[m], cfg, **kw).execute() for m in labels], run.skipped)
 
 
-def _merge_members(labels, outs):
+def _merge_members(labels, outs, skipped=()):
     """One Outcome from per-member Outcomes, with a ``member`` key column after ``time``."""
     first = outs[0]
     names = list(first.columns)
@@ -689,7 +688,7 @@ def _merge_members(labels, outs):
     _, rank = np.unique(np.asarray(cols["time"], dtype=str), return_inverse=True)
     prov = dict(first.provenance)
     prov["inputs"] = [i for o in outs for i in o.provenance["inputs"]]
-    prov["skipped_inputs"] = [i for o in outs for i in o.provenance["skipped_inputs"]]
+    prov["skipped_inputs"] = list(skipped)
     prov["members"] = {m: {"found_by": "global attribute " + "/".join(MEMBER_ATTRIBUTES),
                            "time_span": o.provenance["time_span"], "time_steps": o.provenance["time_steps"],
                            "inputs": [i["path"] for i in o.provenance["inputs"]]} for m, o in zip(labels, outs)}

@@ -452,7 +452,8 @@ def detect(ds, path, overrides=None) -> Detected:
     """
     overrides = overrides or {}
     det = Detected(path=path, attrs={k: str(v) for k, v in ds.attrs.items()
-                                     if k in ("source_id", "experiment_id", "variant_label", "title", "institution")})
+                                     if k in ("source_id", "experiment_id", "variant_label", "member_id", "realization",
+                                              "ensemble_member", "title", "institution")})
     taken = []
     for key in ("time", "lat", "lon", "plev"):
         forced = overrides.get(key)
