@@ -1,9 +1,9 @@
 """Opening one input: file path and config in, a lazily opened ``xarray.Dataset`` (or a plain
 ``netCDF4.Dataset`` for the fast read path) out.
 
-The one place to touch for a new kind of input: :func:`_engine_for` picks the engine from the
-path (netCDF through the configured engine, ``*.zarr`` through zarr, ``*.grib*`` through cfgrib
-with its index files in :func:`grib_index_dir`), and :func:`open_dataset` turns every way of
+The one place to touch for a new kind of input: :data:`SOURCES` picks the engine from the path
+(netCDF through the configured engine, ``*.zarr`` through zarr, ``*.grib*`` through cfgrib with
+its index files in :func:`grib_index_dir`), and :func:`open_dataset` turns every way of
 failing to open into one :class:`~circtrack.errors.InputError` line. Also here: the netCDF chunk
 cache, and the check that a netCDF classic file is as long as its header says. Time axes that
 xarray cannot decode are handed to :mod:`circtrack.inputs.times`.
@@ -21,6 +21,8 @@ import xarray as xr
 from circtrack.errors import InputError
 from circtrack.inputs import times as T
 
+NETCDF_SUFFIXES = (".nc", ".nc4", ".netcdf", ".cdf", ".h5", ".hdf5")
+ZARR_SUFFIXES = (".zarr",)
 GRIB_SUFFIXES = (".grib", ".grib2", ".grb", ".grb2")
 
 _CACHE_SET = False
@@ -28,8 +30,7 @@ _CACHE_SET = False
 
 def open_raw(path, cfg):
     """A plain ``netCDF4.Dataset`` for :meth:`~circtrack.inputs.readers.RoleReader.read_fast`, or None (other engines)."""
-    if cfg["run"]["netcdf_engine"] != "netcdf4" or not os.path.isfile(path) or \
-            path.lower().endswith(GRIB_SUFFIXES):
+    if cfg["run"]["netcdf_engine"] != "netcdf4" or not os.path.isfile(path) or _source_for(path) is not None:
         return None
     import netCDF4
     _set_chunk_cache(cfg["run"]["chunk_cache_bytes"])
@@ -63,24 +64,47 @@ def grib_index_dir():
     return d
 
 
-def _engine_for(path, cfg):
+def _zarr_source(path, cfg):
+    return "zarr", {}
+
+
+def _grib_source(path, cfg):
+    try:
+        import cfgrib  # noqa: F401
+    except (ImportError, RuntimeError) as e:
+        raise InputError(f"{path}: reading GRIB needs the optional grib extra ({type(e).__name__}: "
+                         f"{str(e).splitlines()[0] if str(e) else 'cfgrib missing'}); install it with "
+                         "pip install 'circtrack[grib]', or convert the file to netCDF")
+    # the file's identity and version: a re-downloaded file never meets a stale index
+    st = os.stat(path) if os.path.exists(path) else None
+    ident = f"{os.path.abspath(path)}|{st.st_size if st else ''}|{st.st_mtime_ns if st else ''}"
+    key = hashlib.sha1(ident.encode()).hexdigest()[:16]
+    index = os.path.join(grib_index_dir(), f"{os.path.basename(path)}.{key}.{{short_hash}}.idx")
+    return "cfgrib", {"backend_kwargs": {"indexpath": index}}
+
+
+# Input sources other than netCDF, by path suffix: (suffixes, function(path, cfg) -> (xarray engine,
+# keyword arguments of xarray.open_dataset)). Everything else is netCDF/HDF5 through
+# run.netcdf_engine. A new kind of input is one more entry here (files.py lists its suffixes from it).
+SOURCES = (
+    (ZARR_SUFFIXES, _zarr_source),
+    (GRIB_SUFFIXES, _grib_source),
+)
+DATA_SUFFIXES = NETCDF_SUFFIXES + tuple(sfx for suffixes, _ in SOURCES for sfx in suffixes)
+
+
+def _source_for(path):
+    """The opener of ``path`` from :data:`SOURCES`, or None for netCDF."""
     low = path.rstrip("/").lower()
-    if low.endswith(".zarr"):
-        return "zarr", {}
-    if low.endswith(GRIB_SUFFIXES):
-        try:
-            import cfgrib  # noqa: F401
-        except (ImportError, RuntimeError) as e:
-            raise InputError(f"{path}: reading GRIB needs the optional grib extra ({type(e).__name__}: "
-                             f"{str(e).splitlines()[0] if str(e) else 'cfgrib missing'}); install it with "
-                             "pip install 'circtrack[grib]', or convert the file to netCDF")
-        # the file's identity and version: a re-downloaded file never meets a stale index
-        st = os.stat(path) if os.path.exists(path) else None
-        ident = f"{os.path.abspath(path)}|{st.st_size if st else ''}|{st.st_mtime_ns if st else ''}"
-        key = hashlib.sha1(ident.encode()).hexdigest()[:16]
-        index = os.path.join(grib_index_dir(), f"{os.path.basename(path)}.{key}.{{short_hash}}.idx")
-        return "cfgrib", {"backend_kwargs": {"indexpath": index}}
-    return cfg["run"]["netcdf_engine"], {}
+    for suffixes, source in SOURCES:
+        if low.endswith(suffixes):
+            return source
+    return None
+
+
+def _engine_for(path, cfg):
+    source = _source_for(path)
+    return source(path, cfg) if source is not None else (cfg["run"]["netcdf_engine"], {})
 
 
 def open_dataset(path, cfg) -> xr.Dataset:
