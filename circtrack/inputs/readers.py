@@ -205,7 +205,10 @@ SURFACE_SUBSTITUTES = {"uas": "ua", "vas": "va"}
 
 def lowest_level_substitute(ds, det, role, cfg):
     """A reader for ``role`` (e.g. uas) made from the highest-pressure level of its 3-D counterpart
-    (ua), or None. ``det.variables``/``det.why`` record the substitution for the sidecar."""
+    (ua), or None. ``det.variables``/``det.why`` record the substitution for the sidecar.
+
+    On hybrid sigma-pressure levels that is the lowest model level (the highest reference pressure),
+    read as it is: it follows the ground in every column, where a fixed pressure may lie below it."""
     src = SURFACE_SUBSTITUTES.get(role)
     if src is None or src not in det.variables or det.plev_hpa is None or not np.isfinite(det.plev_hpa).any():
         return None
@@ -214,11 +217,13 @@ def lowest_level_substitute(ds, det, role, cfg):
     plev_dim = det.coords["plev"]
     k = int(np.flatnonzero(det.plev_hpa == p)[0])
     reader = dataclasses.replace(reader, role=role, dims=[d for d in reader.dims if d != plev_dim],
-                                 selection={**reader.selection, plev_dim: k}, plev=None)
+                                 selection={**reader.selection, plev_dim: k}, plev=None, hybrid=None)
     det.variables[role] = det.variables[src]
     det.units[role] = det.units.get(src, "")
-    det.why[role] = (f"no near-surface wind in the file: the lowest pressure level of {src} "
-                     f"('{det.variables[src]}' at {p:g} hPa) stands in for {role}")
+    where = (f"'{det.variables[src]}' at {p:g} hPa" if det.vertical != "hybrid" else
+             f"'{det.variables[src]}' on {plev_dim} index {k}, at {p:g} hPa for a surface at 1000 hPa")
+    det.why[role] = (f"no near-surface wind in the file: the lowest {'model' if det.vertical == 'hybrid' else 'pressure'} "
+                     f"level of {src} ({where}) stands in for {role}")
     return reader
 
 
