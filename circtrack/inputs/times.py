@@ -36,7 +36,7 @@ def reopen_undecoded(path, engine, extra, cfg, coder, msg):
     if "months since" in low:
         return _open_months_since(path, engine, extra, cfg, coder)
     if "time" in low or "zero" in low:
-        ds = _open_year_zero(path, engine, coder)
+        ds = _open_year_zero(path, engine, extra, coder)
         if ds is not None:
             return ds
     if "time" in low or "calendar" in low or "units" in low:
@@ -61,13 +61,13 @@ def year_zero_time(units, calendar):
     return bool(_YEAR_ZERO.search(str(units))) and str(calendar).strip().lower() in _MIXED_CALENDARS
 
 
-def _open_year_zero(path, engine, coder):
+def _open_year_zero(path, engine, extra, coder):
     """Reopen a file whose time axis counts from year 0 and decode it in the proleptic Gregorian
     calendar with astronomical year numbering (year 0 exists, as ISO 8601 has it); None when the
     failure had another cause. The decision is recorded by detection (:func:`year_zero_note`)."""
     try:
         ds = xr.open_dataset(path, engine=engine, chunks=None, cache=False, decode_times=False,
-                             decode_timedelta=False, create_default_indexes=False)
+                             decode_timedelta=False, create_default_indexes=False, **extra)
     except (ValueError, OSError, RuntimeError, KeyError, IndexError, TypeError):
         return None
     fixed = {}
