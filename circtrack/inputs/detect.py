@@ -1,4 +1,6 @@
-"""Detection: an opened dataset in, a :class:`Detected` record out (nothing read but coordinates).
+"""Detection: an opened dataset in, a :class:`Detected` record out.
+
+Only coordinates and the coefficients of hybrid levels are read.
 
 Coordinates (time, latitude, longitude, the vertical axis: pressure levels or hybrid
 sigma-pressure coefficients) and every variable role the rules know are found by the rules in

@@ -29,7 +29,8 @@ _CACHE_SET = False
 
 
 def open_raw(path, cfg):
-    """A plain ``netCDF4.Dataset`` for :meth:`~circtrack.inputs.readers.RoleReader.read_fast`, or None (other engines)."""
+    """A plain ``netCDF4.Dataset`` for :meth:`~circtrack.inputs.readers.RoleReader.read_fast`, or None
+    (other engines and sources)."""
     if cfg["run"]["netcdf_engine"] != "netcdf4" or not os.path.isfile(path) or _source_for(path) is not None:
         return None
     import netCDF4

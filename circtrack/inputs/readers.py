@@ -4,8 +4,8 @@ Every role is read through a :class:`RoleReader` as ``(time, *extra, [plev], lat
 ascending, pressure in hPa ascending (top first), values in canonical units, one time chunk at a
 time inside the worker that reduces it. :func:`standardise` decides what to read (levels, latitude
 order, repeated longitudes, squeezed dimensions, unit conversion) without reading anything;
-:func:`lowest_level_substitute` lets the lowest pressure level of a 3-D wind stand in for a missing
-near-surface wind.
+:func:`lowest_level_substitute` lets the lowest pressure (or model) level of a 3-D wind stand in for
+a missing near-surface wind.
 """
 
 from __future__ import annotations
@@ -21,43 +21,6 @@ from circtrack.inputs import streams as S
 from circtrack.inputs import units as U
 from circtrack.inputs.detect import Detected, attr_text
 from circtrack.inputs.rules import VARIABLES
-
-
-def model_level_targets(det, levels_hpa, cfg):
-    """Pressure levels (hPa, ascending) a hybrid-level role is interpolated to.
-
-    The levels the metrics ask for, else ``run.model_level_targets_hpa`` down from the model top (a
-    level above the top of the columns would be empty everywhere)."""
-    if levels_hpa is not None:
-        return np.array(sorted({float(x) for x in levels_hpa}))
-    top = float(np.min(det.plev_hpa))
-    want = np.array(sorted({float(x) for x in cfg["run"]["model_level_targets_hpa"]}))
-    return want[want >= top * (1 - 1e-9)]
-
-
-def _lat_lon_selection(det):
-    """Selections that make latitude ascending and drop repeated longitudes (checked first)."""
-    path, c = det.path, det.coords
-    lat = det.lat
-    if not np.all(np.isfinite(lat)) or np.any(np.abs(lat) > 90.0 + 1e-6):
-        raise InputError(f"{path}: latitude '{c['lat']}' has missing or out-of-range values (|lat| > 90); fix the coordinate")
-    if np.unique(lat).size != lat.size:
-        raise InputError(f"{path}: latitude '{c['lat']}' has duplicated values; fix the coordinate")
-    if not np.all(np.isfinite(det.lon)):
-        raise InputError(f"{path}: longitude '{c['lon']}' has missing values; fix the coordinate")
-    sel = {}
-    order = np.argsort(lat)
-    if np.array_equal(order, np.arange(lat.size)[::-1]):
-        sel[c["lat"]] = (None, None, -1)          # descending: a reversed slice reads fastest
-    elif not np.array_equal(order, np.arange(lat.size)):
-        sel[c["lat"]] = order
-    if det.lon_keep is not None:
-        sel[c["lon"]] = det.lon_keep
-    return sel
-
-
-def _plain(sel):
-    return {d: (v.tolist() if isinstance(v, np.ndarray) else v) for d, v in sel.items()}
 
 
 def standardise(ds, det: Detected, role, levels_hpa, cfg):
@@ -130,22 +93,25 @@ def _squeeze(da, core):
     return sel, da
 
 
-def _hybrid_levels(ds, det, role, levels_hpa, cfg):
-    """``(model level indices, target levels in hPa, reader's hybrid spec)`` for a role on hybrid levels:
-    only the model levels that bracket the targets in some column are read."""
-    path, name = det.path, det.variables[role]
-    if det.problems.get("vertical") or det.hybrid is None:
-        raise InputError(f"{path}: {role} '{name}': {det.problems.get('vertical', 'hybrid levels not understood')}")
-    h = det.hybrid
-    targets = model_level_targets(det, levels_hpa, cfg)
-    if targets.size == 0:
-        raise InputError(f"{path}: no pressure level of run.model_level_targets_hpa lies below the model top "
-                         f"({np.min(det.plev_hpa):g} hPa); add lower levels to run.model_level_targets_hpa")
-    ps_reader = _surface_reader(ds, det, h["ps"])
-    idx = ML.levels_needed(h["a"], h["b"], targets * 100.0, h["p0"])
-    hybrid = {"a": np.asarray(h["a"])[idx].tolist(), "b": np.asarray(h["b"])[idx].tolist(), "p0": h["p0"],
-              "ps": ps_reader, "targets_pa": (targets * 100.0).tolist()}
-    return idx, targets, hybrid
+def _lat_lon_selection(det):
+    """Selections that make latitude ascending and drop repeated longitudes (checked first)."""
+    path, c = det.path, det.coords
+    lat = det.lat
+    if not np.all(np.isfinite(lat)) or np.any(np.abs(lat) > 90.0 + 1e-6):
+        raise InputError(f"{path}: latitude '{c['lat']}' has missing or out-of-range values (|lat| > 90); fix the coordinate")
+    if np.unique(lat).size != lat.size:
+        raise InputError(f"{path}: latitude '{c['lat']}' has duplicated values; fix the coordinate")
+    if not np.all(np.isfinite(det.lon)):
+        raise InputError(f"{path}: longitude '{c['lon']}' has missing values; fix the coordinate")
+    sel = {}
+    order = np.argsort(lat)
+    if np.array_equal(order, np.arange(lat.size)[::-1]):
+        sel[c["lat"]] = (None, None, -1)          # descending: a reversed slice reads fastest
+    elif not np.array_equal(order, np.arange(lat.size)):
+        sel[c["lat"]] = order
+    if det.lon_keep is not None:
+        sel[c["lon"]] = det.lon_keep
+    return sel
 
 
 def _pressure_levels(det, role, levels_hpa, cfg):
@@ -179,6 +145,36 @@ def _pressure_levels(det, role, levels_hpa, cfg):
     return idx, p[idx]
 
 
+def _hybrid_levels(ds, det, role, levels_hpa, cfg):
+    """``(model level indices, target levels in hPa, reader's hybrid spec)`` for a role on hybrid levels:
+    only the model levels that bracket the targets in some column are read."""
+    path, name = det.path, det.variables[role]
+    if det.problems.get("vertical") or det.hybrid is None:
+        raise InputError(f"{path}: {role} '{name}': {det.problems.get('vertical', 'hybrid levels not understood')}")
+    h = det.hybrid
+    targets = model_level_targets(det, levels_hpa, cfg)
+    if targets.size == 0:
+        raise InputError(f"{path}: no pressure level of run.model_level_targets_hpa lies below the model top "
+                         f"({np.min(det.plev_hpa):g} hPa); add lower levels to run.model_level_targets_hpa")
+    ps_reader = _surface_reader(ds, det, h["ps"])
+    idx = ML.levels_needed(h["a"], h["b"], targets * 100.0, h["p0"])
+    hybrid = {"a": np.asarray(h["a"])[idx].tolist(), "b": np.asarray(h["b"])[idx].tolist(), "p0": h["p0"],
+              "ps": ps_reader, "targets_pa": (targets * 100.0).tolist()}
+    return idx, targets, hybrid
+
+
+def model_level_targets(det, levels_hpa, cfg):
+    """Pressure levels (hPa, ascending) a hybrid-level role is interpolated to.
+
+    The levels the metrics ask for, else ``run.model_level_targets_hpa`` down from the model top (a
+    level above the top of the columns would be empty everywhere)."""
+    if levels_hpa is not None:
+        return np.array(sorted({float(x) for x in levels_hpa}))
+    top = float(np.min(det.plev_hpa))
+    want = np.array(sorted({float(x) for x in cfg["run"]["model_level_targets_hpa"]}))
+    return want[want >= top * (1 - 1e-9)]
+
+
 def _surface_reader(ds, det, name):
     """A reader of the surface pressure that hybrid levels need (hPa, same grid order as the field)."""
     path, c = det.path, det.coords
@@ -197,6 +193,10 @@ def _surface_reader(ds, det, name):
     return RoleReader(path=path, role="ps", name=name, time_dim=c["time"], dims=dims, selection=_plain(sel),
                       factor=float(conv[0]), offset=float(conv[1]), ntime=int(ds.sizes[c["time"]]),
                       stream=S.stream_spec(det.streams, stream_dim))
+
+
+def _plain(sel):
+    return {d: (v.tolist() if isinstance(v, np.ndarray) else v) for d, v in sel.items()}
 
 
 # near-surface roles that may be taken from the lowest pressure level of a 3-D field
@@ -220,10 +220,11 @@ def lowest_level_substitute(ds, det, role, cfg):
                                  selection={**reader.selection, plev_dim: k}, plev=None, hybrid=None)
     det.variables[role] = det.variables[src]
     det.units[role] = det.units.get(src, "")
-    where = (f"'{det.variables[src]}' at {p:g} hPa" if det.vertical != "hybrid" else
-             f"'{det.variables[src]}' on {plev_dim} index {k}, at {p:g} hPa for a surface at 1000 hPa")
-    det.why[role] = (f"no near-surface wind in the file: the lowest {'model' if det.vertical == 'hybrid' else 'pressure'} "
-                     f"level of {src} ({where}) stands in for {role}")
+    if det.vertical == "hybrid":
+        kind, where = "model", f"'{det.variables[src]}' on {plev_dim} index {k}, at {p:g} hPa for a surface at 1000 hPa"
+    else:
+        kind, where = "pressure", f"'{det.variables[src]}' at {p:g} hPa"
+    det.why[role] = f"no near-surface wind in the file: the lowest {kind} level of {src} ({where}) stands in for {role}"
     return reader
 
 
