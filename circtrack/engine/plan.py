@@ -39,6 +39,8 @@ MEMBER_ATTRIBUTES = ("variant_label", "member_id", "realization", "ensemble_memb
 # --------------------------------------------------------------------------- metrics -> roles
 @dataclass
 class Plan:
+    """The chosen metrics -> their families, the roles with the levels they need, the reducers."""
+
     metric_ids: list
     families: list
     roles: dict            # role -> levels (None for all)
