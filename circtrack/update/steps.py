@@ -197,6 +197,7 @@ def read_new_files(u):
     A file lacking some variables (one variable per file) is joined by the engine run later with
     the files holding them for the same time steps."""
     from circtrack import engine
+    from circtrack.engine.locate import without_skip_hint
 
     u.ids = u.user_ids
     if u.ids is None:
@@ -214,7 +215,7 @@ def read_new_files(u):
             det, partial = e.info.detected, True
         except InputError as e:
             if u.policy == "skip":
-                print(f"circtrack: skipped {e}", file=sys.stderr, flush=True)
+                print(f"circtrack: skipped {without_skip_hint(e)}", file=sys.stderr, flush=True)
                 u.entries[a] = {**u.records[a], "skipped": str(e), "times": []}
                 continue
             raise
