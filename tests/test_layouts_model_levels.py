@@ -13,6 +13,7 @@ from circtrack.inputs import dataset as D
 from circtrack.inputs.model_levels import column_pressure, interpolate_log_p, parse_formula_terms
 from tests.conftest import CALENDAR
 from tests.layout_helpers import LAT, LON, PLEV, assert_rows_close, baseline, make_dataset, run_cfg, write
+from tests.metrics.test_surface_fallback import WIND, _with_surface_wind
 
 P0 = 100000.0
 
@@ -158,3 +159,22 @@ def test_hybrid_levels_without_surface_pressure_is_one_clear_error(tmp_path):
         run_cfg(tmp_path / "no_ps.nc", metric_ids=["eddy_jet_lat"])
     msg = str(e.value)
     assert "\n" not in msg and "no_ps.nc" in msg and "surface pressure 'ps'" in msg and "same file" in msg
+
+
+def test_lowest_model_level_stands_in_for_uas(tmp_path):
+    # a file on hybrid levels without uas: the lowest model level of ua (the one nearest the ground
+    # in every column, whatever the surface pressure) stands in for the near-surface wind, as the
+    # lowest pressure level does on pressure levels. The surface at 950 hPa lies above the 1000 hPa
+    # reference pressure of that level everywhere, so interpolating to 1000 hPa would leave nothing.
+    ds, _ = _with_surface_wind(make_dataset(2))
+    ps = np.full((2, LAT.size, LON.size), 95000.0)
+    path = _hybrid_file(tmp_path / "h.nc", ds["ua"].values, ds["va"].values, ps, PLEV * 100.0, "a*p0", False)
+    out = run_cfg(path, metric_ids=WIND)
+    plain = run_cfg(write(ds, tmp_path / "levels.nc"), metric_ids=WIND)
+    assert O.sorted_lines(out)[1:] == O.sorted_lines(plain)[1:]
+    c = out.columns
+    for metric, want in (("surface_wind_zero_lat", 30.0), ("polar_easterly_edge_lat", 60.0)):
+        got = c["value"][(c["metric"] == metric) & (c["hemisphere"] == "NH")]
+        assert got.size and np.allclose(got, want, atol=0.05), (metric, got)
+    why = out.provenance["inputs"][0]["found_by"]["uas"]
+    assert "lowest model level of ua" in why and "'ua'" in why
