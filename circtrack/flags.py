@@ -1,20 +1,50 @@
-"""Quality flags written in the CSV ``flag`` column. A value that is not ``ok`` is doubtful or NaN."""
+"""Quality flags written in the CSV ``flag`` column. A value that is not ``ok`` is doubtful or NaN.
+
+A flag may carry notes after ';' (``ok;interpolated_level``): the value is computed as defined
+and the note says something the user should know about it (NOTES below).
+"""
 
 FLAGS = {
     "ok": "value computed as defined",
-    "no_zero_crossing": "no sign change inside the search window; value is NaN",
+    "no_sign_change_in_window": "no sign change between the start point and the end of the search window; value is NaN "
+                                "(called no_zero_crossing before 0.1.0)",
+    "crossing_in_data_gap": "the search for a sign change met missing points before finding one, so the zero may lie "
+                            "in the gap; value is NaN",
+    "crossing_at_pole_row": "the sign change lies in the last segment before a pole row (90 deg), where a zonal mean "
+                            "of a wind component is not defined; value is NaN",
     "extremum_at_window_edge": "the extremum sits on the edge of its search window, so the true one may lie outside; value is NaN",
-    "weak_cell": "the overturning cell is weaker than cells.weak_cell_kg_s; its edge is NaN, its strength is kept",
+    "extremum_at_pole_row": "the extremum sits on a pole row (90 deg); value is NaN",
+    "extremum_next_to_missing_data": "a neighbour of the extremum is missing, so the true extremum may lie in the gap; value is NaN",
+    "weak_cell": "the overturning cell is weaker than cells.weak_cell_kg_s (Hadley) or cells.ferrel_weak_cell_kg_s "
+                 "(Ferrel); its edge is NaN, its strength is kept",
     "too_little_data": "too few valid points in the search window (see run.min_window_fraction); value is NaN",
     "level_missing": "a pressure level the metric needs lies outside the data's levels; value is NaN",
     "no_half_max": "the wind does not fall to half its maximum on one side of the jet; width is NaN",
+    "data_end_within_2km": "a lapse-rate tropopause candidate was found but the data's levels end less than "
+                           "tropopause.depth_m above it, so the WMO 2-km condition cannot be checked; value is NaN",
     "lowpass_window_incomplete": "the low-pass filter window reaches past the record's ends or across a gap in time; value is NaN",
     "weak_peak": "the poleward eddy momentum flux or energy transport peaks below its threshold (eddies.min_momentum_flux_m2_s2, energy.min_transport_pw): the latitude is NaN, the peak value is kept",
     "time_mean_input": "the input's time step exceeds eddies.max_time_step_days (e.g. monthly means): the eddy and energy fluxes contain only the time-mean flow (mean circulation and stationary eddies), the transient eddies are missing; value kept",
     "time_step_unknown": "a single time step, so it is unknown whether transient eddies are resolved; eddy and energy flux value kept",
     "cells_out_of_order": "the southern cell's minimum lies north of the northern cell's maximum; boundary is NaN",
-    "provisional_data": "appended after ';' (e.g. 'ok;provisional_data'): the time step comes from a provisional data stream (expver other than 1) because the final one has no data there",
 }
+
+# notes appended after ';' to a flag whose value is kept
+NOTES = {
+    "provisional_data": "the time step comes from a provisional data stream (expver other than 1) because the final "
+                        "one has no data there",
+    "unbalanced_column": "the column's net mass flux across a latitude circle (between the equator and "
+                         "cells.edge_search_limit) exceeds cells.max_imbalance_fraction of the Hadley cell's strength; "
+                         "with cells.balance = \"remove_net_flux\" it was removed, otherwise it is in the value; the "
+                         "metric column_net_mass_flux gives its size",
+    "interpolated_level": "a pressure level the metric needs is not in the data and was interpolated linearly in "
+                          "log-pressure between the two levels around it",
+    "humidity_filled_aloft": "specific humidity is missing above the ground at some levels (e.g. above 300 hPa) and was "
+                             "counted as 0 there",
+}
+
+# the old name of a flag, for readers of older outputs (CHANGELOG lists them)
+RENAMED = {"no_zero_crossing": "no_sign_change_in_window"}
 
 
 def usable(flags):
@@ -23,3 +53,20 @@ def usable(flags):
     if isinstance(flags, str):
         return flags.split(";", 1)[0] == "ok"
     return flags.astype(str).str.split(";", n=1).str[0] == "ok"
+
+
+def note_summary(times, hemispheres, metrics, flags):
+    """For the sidecar: each note found after ';' in ``flags`` with the metrics and time steps it
+    was attached to, ``{note: {"metrics": [...], "time_steps": [...], "rows": n}}`` (sorted)."""
+    out = {}
+    for t, h, m, f in zip(times, hemispheres, metrics, flags):
+        parts = str(f).split(";")
+        for note in parts[1:]:
+            if not note:
+                continue
+            e = out.setdefault(note, {"metrics": set(), "time_steps": set(), "rows": 0})
+            e["metrics"].add(f"{m} {h}")
+            e["time_steps"].add(str(t))
+            e["rows"] += 1
+    return {k: {"metrics": sorted(v["metrics"]), "time_steps": sorted(v["time_steps"]), "rows": v["rows"]}
+            for k, v in sorted(out.items())}

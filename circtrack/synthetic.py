@@ -1,7 +1,10 @@
 """Synthetic circulations with answers known in closed form, for tests, demos and benchmarks.
 
 The mass streamfunction is prescribed as ``psi(lat, p, t) = S(lat, t) P(p)`` with
-``S = A cos(lat)^2 exp(-(lat/30)^2) prod_i (lat - z_i)`` and ``P = sin(pi p / p_s)``, so the zeros of psi at any level
+``S = A cos(lat)^2 exp(-(lat/30)^2) prod_i (lat - z_i)`` and ``P = sin(pi (p - p_t) / (p_s - p_t))`` with ``p_t`` the
+top level of the data: the circulation lives between the top data level and the surface, so psi vanishes at
+both ends of the data's column (no flow above the data, no net mass flux: the column rules of
+kernels/vertical.py hold exactly, with the default cells.top and cells.balance). The zeros of psi at any level
 are exactly the chosen latitudes ``z_i`` (southern Ferrel edge, southern Hadley edge, cell
 boundary, northern Hadley edge, northern Ferrel edge). The northward wind follows from
 ``[v] = g / (2 pi a cos(lat)) dpsi/dp``; any vertical quadrature of ``[v]`` returns a multiple of
@@ -66,7 +69,8 @@ def fields(lat, lon, plev_hpa, ntime=1, **params):
     norm = np.where(nh, np.abs(s_full), 0).max(axis=1, keepdims=True)
     amp = np.broadcast_to(np.asarray(p["hadley_peak"], float), (ntime,))[:, None] / norm
     ps = p["surface_hpa"] * 100.0
-    dpdp = np.pi / ps * np.cos(np.pi * plev * 100.0 / ps)                 # dP/dp per Pa, (L,)
+    pt = plev.min() * 100.0                                              # the top data level, Pa
+    dpdp = np.pi / (ps - pt) * np.cos(np.pi * (plev * 100.0 - pt) / (ps - pt))   # dP/dp per Pa, (L,)
     v_zm = (GRAVITY / (2 * np.pi * EARTH_RADIUS)) * (amp * shape_c)[:, None, :] * dpdp[None, :, None]
 
     def hemi_param(name):

@@ -44,7 +44,8 @@ def test_default_field_all_known_answers(default_nc):
         _check(table, t, "SH", "eddy_jet_speed", D["edj_speed"][1], tol=0.05)
         _check(table, t, "NH", "eddy_jet_width", width)
         _check(table, t, "SH", "eddy_jet_width", width)
-        # the NH cell is normalised to hadley_peak at P = sin(pi/2) = 1 (500 hPa); quadrature error ~ 1 %
+        # the NH cell is normalised to hadley_peak at P = 1 (525 hPa for a 50 hPa top; P(500) = 0.9986);
+        # quadrature error ~ 1 %
         _check(table, t, "NH", "hadley_strength", D["hadley_peak"], tol=0.02 * D["hadley_peak"])
 
 
