@@ -30,6 +30,7 @@ import dask
 import numpy as np
 
 from circtrack import registry
+from circtrack.flags import note_summary
 from circtrack.errors import InputError, UsageError
 from circtrack.inputs import dataset as D
 from circtrack.inputs.files import expand, same_period_siblings
@@ -1041,6 +1042,8 @@ class Run:
             "extra_key_columns": extra_names,
             "time_step_notes": {code: [iso[k] for k in range(nt) if code in str(notes[k]).split(";")]
                                 for code in sorted({c for n in notes for c in str(n).split(";") if c})},
+            # notes the metrics added to their flags (e.g. unbalanced_column): where they occur
+            "flag_notes": note_summary(out["time"], out["hemisphere"], out["metric"], flat["flag"], out["value"]),
         }
         if self.lowpass:
             prov["lowpass"] = self.lowpass.describe()

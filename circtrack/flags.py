@@ -55,18 +55,54 @@ def usable(flags):
     return flags.astype(str).str.split(";", n=1).str[0] == "ok"
 
 
-def note_summary(times, hemispheres, metrics, flags):
-    """For the sidecar: each note found after ';' in ``flags`` with the metrics and time steps it
-    was attached to, ``{note: {"metrics": [...], "time_steps": [...], "rows": n}}`` (sorted)."""
+def note_summary(times, hemispheres, metrics, flags, values=None, max_listed=1000):
+    """For the sidecar: each note found after ';' in ``flags`` with the rows it was attached to,
+    ``{note: {"meaning", "rows", "metrics", "first_time", "last_time", "time_step_count",
+    "time_steps"}}`` (sorted); ``time_steps`` lists the time steps when there are at most
+    ``max_listed``. With ``values``, ``unbalanced_column`` also lists the size of the imbalance per
+    time step and hemisphere (``column_net_mass_flux`` in kg s-1 and its share of ``hadley_strength``)."""
     out = {}
     for t, h, m, f in zip(times, hemispheres, metrics, flags):
-        parts = str(f).split(";")
-        for note in parts[1:]:
+        for note in str(f).split(";")[1:]:
             if not note:
                 continue
-            e = out.setdefault(note, {"metrics": set(), "time_steps": set(), "rows": 0})
+            e = out.setdefault(note, {"metrics": set(), "time_steps": set(), "rows": 0, "where": set()})
             e["metrics"].add(f"{m} {h}")
             e["time_steps"].add(str(t))
+            e["where"].add((str(t), str(h)))
             e["rows"] += 1
-    return {k: {"metrics": sorted(v["metrics"]), "time_steps": sorted(v["time_steps"]), "rows": v["rows"]}
-            for k, v in sorted(out.items())}
+    summary = {}
+    for k, v in sorted(out.items()):
+        steps = sorted(v["time_steps"])
+        summary[k] = {"meaning": NOTES.get(k, ""), "rows": v["rows"], "metrics": sorted(v["metrics"]),
+                      "first_time": steps[0], "last_time": steps[-1], "time_step_count": len(steps)}
+        if len(steps) <= max_listed:
+            summary[k]["time_steps"] = steps
+    if values is not None and "unbalanced_column" in out:
+        where = out["unbalanced_column"]["where"]
+        got = {}
+        for t, h, m, val in zip(times, hemispheres, metrics, values):
+            if m in ("column_net_mass_flux", "hadley_strength") and (str(t), str(h)) in where:
+                got.setdefault((str(t), str(h)), {})[m] = float(val)
+        sizes = []
+        for (t, h), d in sorted(got.items())[:max_listed]:
+            net, strength = d.get("column_net_mass_flux"), d.get("hadley_strength")
+            share = net / strength if net is not None and strength not in (None, 0.0) else None
+            net = None if net is None or net != net else net
+            sizes.append({"time": t, "hemisphere": h, "column_net_mass_flux_kg_s": net,
+                          "share_of_hadley_strength": None if share is None or share != share else round(share, 4)})
+        summary["unbalanced_column"]["imbalance"] = sizes
+    return summary
+
+
+def note_summary_from_csv(text):
+    """:func:`note_summary` of a written tidy CSV (header ``...,time,...,hemisphere,...,metric,value,
+    units,flag``), e.g. for a sidecar written after an incremental update."""
+    lines = text.splitlines()
+    if not lines:
+        return {}
+    head = lines[0].split(",")
+    it, ih, im, iv, iflag = (head.index(c) for c in ("time", "hemisphere", "metric", "value", "flag"))
+    rows = [ln.split(",") for ln in lines[1:] if ln]
+    return note_summary([r[it] for r in rows], [r[ih] for r in rows], [r[im] for r in rows],
+                        [r[iflag] for r in rows], [float(r[iv]) for r in rows])

@@ -58,6 +58,12 @@ def find_crossing(y, x, start, *, stop=None, direction="down", pole=90.0):
     reason = np.full(lead, NO_SIGN_CHANGE, dtype=object)
     if n < 2:
         return Crossing(pos, reason)
+    if pole is not None and np.isclose(abs(x[-1]), pole):
+        # the zonal mean of a wind component on a pole row is zero up to rounding (the longitudes cancel,
+        # e.g. 4e-10 m/s in float64 from float32 data): a value that small counts as zero there
+        scale = np.nanmax(np.abs(y), axis=-1, initial=0.0)
+        y = y.copy()
+        y[..., -1] = np.where(np.abs(y[..., -1]) <= 1e-6 * scale, 0.0, y[..., -1])
     y0, y1 = y[..., :-1], y[..., 1:]
     with np.errstate(invalid="ignore"):
         if direction == "down":
