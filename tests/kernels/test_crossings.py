@@ -118,3 +118,13 @@ def test_reverse_searches_towards_smaller_x():
     assert -first_crossing(ry, rx, ridx) == pytest.approx(0.5)
     assert first_crossing(y, x, 3) == pytest.approx(5.5)
     assert reverse(y, x, -1)[2] == -1
+
+
+def test_pole_row_zero_within_rounding_counts_as_zero():
+    # the zonal mean of a wind component on a pole row is zero up to rounding (4e-10 m/s on a real
+    # monthly file, float32 values averaged in float64): the step onto it is a crossing at the pole row
+    lat = np.array([80.0, 85.0, 87.5, 90.0])
+    c = find_crossing(np.array([2.4, 1.5, 0.96, 4.1e-10]), lat, 0)
+    assert c.reason == "crossing_at_pole_row" and np.isnan(c.position)
+    # a clearly positive pole value is no sign change
+    assert find_crossing(np.array([2.4, 1.5, 0.96, 0.3]), lat, 0).reason == "no_sign_change_in_window"
