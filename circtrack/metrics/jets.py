@@ -110,7 +110,7 @@ BAROCLINIC_METRICS = [
            "degrees_north", "hemisphere",
            "maximum of |d[T]/dlat| at jets.baroclinic_level_hpa (850 hPa) in jets.baroclinic_window (20-70 deg "
            "poleward), centred differences, 3-point parabola (a polar-front proxy)" + _RULES,
-           "this project's proxy for the baroclinic zone (no paper defines this index); Peixoto & Oort (1992) Physics "
+           "this project's proxy for the baroclinic zone, not an index from the cited book; Peixoto & Oort (1992) Physics "
            "of Climate, ch. 7 (meridional temperature gradient and baroclinicity)"),
 ]
 

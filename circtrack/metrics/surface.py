@@ -16,7 +16,8 @@ from circtrack.registry import Metric, Result, register_family
 
 WIND_REF = ("Kang & Polvani (2011) J. Climate 24, 563-568 (the surface-wind zero between trades and westerlies); "
             "Waugh et al. (2018) J. Climate 31, 7565-7581")
-SPEED_REF = "this project's diagnostic (no paper defines it); windows as in " + WIND_REF
+SPEED_REF = ("this project's diagnostic, not defined in the cited papers (its windows are this project's); the belts "
+             "as in " + WIND_REF)
 SLP_REF = ("Davis & Rosenlof (2012) J. Climate 25, 1061-1078 (latitude of the subtropical sea-level-pressure maximum); "
            "Waugh et al. (2018) J. Climate 31, 7565-7581")
 # the rule every crossing and extremum follows (kernels/crossings.py, kernels/extrema.py), and coverage
@@ -84,7 +85,8 @@ def compute_highs(fields, cfg):
     return out
 
 
-PE_REF = "Waugh et al. (2018) J. Climate 31, 7565-7581; Davis & Rosenlof (2012) J. Climate 25, 1061-1078"
+PE_REF = ("Waugh et al. (2018) J. Climate 31, 7565-7581 and Davis & Rosenlof (2012) J. Climate 25, 1061-1078 (the "
+          "subtropical P - E zero as a tropical-width measure)")
 OLR_REF = "Hu & Fu (2007) Atmos. Chem. Phys. 7, 5229-5236"
 
 PE_METRICS = [

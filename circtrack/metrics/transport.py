@@ -28,8 +28,10 @@ from circtrack.metrics.common import HEMISPHERES, add_note, hemisphere_view, mis
 from circtrack.registry import Metric, Result, register_family
 
 MOMENTUM_REF = "Peixoto & Oort (1992) Physics of Climate, ch. 11 (eddy momentum flux [u'v'] = [uv] - [u][v])"
-ENERGY_REF = ("Trenberth (1991) J. Climate 4, 707-722 (mass correction); Trenberth & Caron (2001) J. Climate 14, "
-              "3433-3443; Peixoto & Oort (1992) Physics of Climate, ch. 13")
+ENERGY_REF = ("Trenberth (1991) J. Climate 4, 707-722 (the barotropic mass correction); Trenberth & Caron (2001) "
+              "J. Climate 14, 3433-3443 (the atmosphere's poleward transport, peaking near 5 PW); Peixoto & Oort (1992) "
+              "Physics of Climate, ch. 13 (moist static energy transport); its peak and latitude as indices are this "
+              "project's")
 
 MOMENTUM_METRICS = [
     Metric("eddy_momentum_flux_lat", "Latitude of the strongest poleward eddy momentum flux", "degrees_north",
