@@ -230,6 +230,8 @@ def lapse_rate_tropopause(t, p, *, threshold=2.0, depth=2000.0, p_bottom=550.0, 
     """
     t = np.asarray(t, dtype=float)
     p = np.asarray(p, dtype=float)
+    shape = t.shape[:-1]
+    t = t.reshape(-1, t.shape[-1])                                  # profiles as rows
     z = hypsometric_heights(t, p)
     T, Z, P = t[..., ::-1], z[..., ::-1], p[::-1]                  # bottom-up order
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -257,12 +259,14 @@ def lapse_rate_tropopause(t, p, *, threshold=2.0, depth=2000.0, p_bottom=550.0, 
         else:
             zc = zh[..., j]
         covered = z_top >= zc + depth
-        ok = cand & covered & _mean_lapse_within(gam, zh, zc, depth, threshold)
+        ok = cand & covered
+        if ok.any():                            # the 2-km check only where a covered candidate is
+            ok[ok] = _mean_lapse_within(gam[ok], zh[ok], zc[ok], depth, threshold)
         zt = np.where(ok, zc, zt)
         reason = np.where(ok, "ok", np.where(cand & ~covered, "data_end_within_2km", reason))
         todo &= ~ok & ~(cand & ~covered)       # the data end: no higher candidate can be checked either
     lnp = _interp_rows(zt, _fill_up(Z), np.broadcast_to(np.log(P), Z.shape))
-    return np.exp(lnp), zt, reason
+    return np.exp(lnp).reshape(shape), zt.reshape(shape), reason.reshape(shape)
 
 
 def _mean_lapse_within(gam, zh, zc, depth, threshold, samples=40):

@@ -195,3 +195,26 @@ def test_unknown_column_rule_is_one_line_and_exit_2(tmp_path):
     assert res.exit_code == 2
     lines = [ln for ln in res.output.splitlines() if ln.strip()]
     assert len(lines) == 1 and "cells.top" in lines[0] and "zero_at_top_level" in lines[0]
+
+
+def test_sidecar_lists_the_notes_and_the_imbalance(tmp_path):
+    import json
+
+    from circtrack.flags import note_summary_from_csv
+    from circtrack.output import sidecar_path
+
+    path = _cells_file(tmp_path, "drift.nc", v_offset=0.3)
+    out = tmp_path / "o.csv"
+    res = CliRunner().invoke(main, ["track", path, "-o", str(out), "--metrics", ",".join(CELLS), "-q"])
+    assert res.exit_code == 0, res.output
+    side = json.loads(open(sidecar_path(str(out))).read())
+    notes = side["flag_notes"]["unbalanced_column"]
+    assert notes["time_steps"] == ["2001-01-15"] and "hadley_edge_lat NH" in notes["metrics"]
+    sizes = {s["hemisphere"]: s for s in notes["imbalance"]}
+    rows = {ln.split(",")[2] + ln.split(",")[4]: ln.split(",") for ln in out.read_text().splitlines()[1:]}
+    assert sizes["NH"]["column_net_mass_flux_kg_s"] == pytest.approx(float(rows["NHcolumn_net_mass_flux"][5]), rel=1e-5)
+    share = float(rows["NHcolumn_net_mass_flux"][5]) / float(rows["NHhadley_strength"][5])
+    assert sizes["NH"]["share_of_hadley_strength"] == pytest.approx(share, abs=1e-3) and share > 0.25
+    # the same summary from the written CSV (for a sidecar written after an incremental update)
+    again = note_summary_from_csv(out.read_text())["unbalanced_column"]
+    assert {k: again[k] for k in ("rows", "metrics", "time_steps")} == {k: notes[k] for k in ("rows", "metrics", "time_steps")}
