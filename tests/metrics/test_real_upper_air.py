@@ -189,3 +189,20 @@ def test_eddy_flux_at_a_missing_level_is_interpolated_with_a_note(tmp_path, path
     cov = (uv["U"] * uv["V"]).mean(axis=-1) - uv["U"].mean(axis=-1) * uv["V"].mean(axis=-1)
     sel = (lat >= 15) & (lat <= 60)
     assert value == pytest.approx(cov[sel].max(), rel=0.02)          # grid maximum vs parabola vertex
+
+
+ECHAM = "/usr/share/ncarg/data/nug/rectilinear_grid_3D.nc"      # Debian libncarg-data, ECHAM5 model output
+
+
+@pytest.mark.skipif(not os.path.exists(ECHAM), reason="rectilinear_grid_3D.nc (Debian libncarg-data) not installed")
+def test_model_temperature_tropopause_as_it_ships():
+    # ECHAM5 temperature (one January time step, 17 levels 1000-10 hPa in Pa, T42 grid), read as it ships.
+    out = _rows(engine.track([ECHAM], config.load(), metric_ids=["tropical_tropopause_pressure", "tropopause_break_lat"]))
+    value, flag = out[("tropical_tropopause_pressure", "global")]
+    # Seidel et al. (2001) JGR 106, 7857 (from memory): the tropical lapse-rate tropopause near 100 hPa
+    assert flag == "ok" and value == pytest.approx(100.0, abs=10.0)
+    # Seidel & Randel (2007) JGR 112, D20113 (from memory): the tropopause height drops steeply around
+    # 30-40 degrees in each hemisphere (the subtropical break)
+    for hemi, s in (("NH", 1), ("SH", -1)):
+        lat, f = out[("tropopause_break_lat", hemi)]
+        assert f == "ok" and 25.0 <= s * lat <= 45.0
