@@ -24,7 +24,7 @@ from circtrack.kernels.crossings import find_crossing
 from circtrack.kernels.extrema import parabola_vertex, window_extremum
 from circtrack.kernels.vertical import (BALANCE_RULES, TOP_RULES, at_level, column_net_mass_flux, interpolated,
                                         mass_streamfunction)
-from circtrack.metrics.common import HEMISPHERES, add_note, crossing, hemisphere_view, is_ok, missing, peak, signed
+from circtrack.metrics.common import HEMISPHERES, add_note, crossing, hemisphere_view, missing, peak, signed
 from circtrack.registry import Metric, Result, register_family
 
 PSI_REF = ("Peixoto & Oort (1992) Physics of Climate, ch. 7 (streamfunction); Trenberth (1991) J. Climate 4, "
