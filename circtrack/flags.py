@@ -61,8 +61,13 @@ def note_summary(times, hemispheres, metrics, flags, values=None, max_listed=100
     "time_steps"}}`` (sorted); ``time_steps`` lists the time steps when there are at most
     ``max_listed``. With ``values``, ``unbalanced_column`` also lists the size of the imbalance per
     time step and hemisphere (``column_net_mass_flux`` in kg s-1 and its share of ``hadley_strength``)."""
+    import numpy as np
+
+    flags = np.asarray(flags, dtype=object)
+    noted = np.flatnonzero([";" in str(f) for f in flags]) if flags.size else np.array([], int)
+    times, hemispheres, metrics = (np.asarray(a, dtype=object) for a in (times, hemispheres, metrics))
     out = {}
-    for t, h, m, f in zip(times, hemispheres, metrics, flags):
+    for t, h, m, f in zip(times[noted], hemispheres[noted], metrics[noted], flags[noted]):
         for note in str(f).split(";")[1:]:
             if not note:
                 continue
@@ -81,8 +86,10 @@ def note_summary(times, hemispheres, metrics, flags, values=None, max_listed=100
     if values is not None and "unbalanced_column" in out:
         where = out["unbalanced_column"]["where"]
         got = {}
-        for t, h, m, val in zip(times, hemispheres, metrics, values):
-            if m in ("column_net_mass_flux", "hadley_strength") and (str(t), str(h)) in where:
+        values = np.asarray(values, dtype=float)
+        sel = np.flatnonzero(np.isin(metrics.astype(str), ["column_net_mass_flux", "hadley_strength"]))
+        for t, h, m, val in zip(times[sel], hemispheres[sel], metrics[sel], values[sel]):
+            if (str(t), str(h)) in where:
                 got.setdefault((str(t), str(h)), {})[m] = float(val)
         sizes = []
         for (t, h), d in sorted(got.items())[:max_listed]:
