@@ -4,6 +4,8 @@ A flag may carry notes after ';' (``ok;interpolated_level``): the value is compu
 and the note says something the user should know about it (NOTES below).
 """
 
+import numpy as np
+
 FLAGS = {
     "ok": "value computed as defined",
     "no_sign_change_in_window": "no sign change between the start point and the end of the search window; value is NaN "
@@ -61,8 +63,6 @@ def note_summary(times, hemispheres, metrics, flags, values=None, max_listed=100
     "time_steps"}}`` (sorted); ``time_steps`` lists the time steps when there are at most
     ``max_listed``. With ``values``, ``unbalanced_column`` also lists the size of the imbalance per
     time step and hemisphere (``column_net_mass_flux`` in kg s-1 and its share of ``hadley_strength``)."""
-    import numpy as np
-
     flags = np.asarray(flags, dtype=object)
     noted = np.flatnonzero([";" in str(f) for f in flags]) if flags.size else np.array([], int)
     times, hemispheres, metrics = (np.asarray(a, dtype=object) for a in (times, hemispheres, metrics))
