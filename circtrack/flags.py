@@ -9,7 +9,7 @@ import numpy as np
 FLAGS = {
     "ok": "value computed as defined",
     "no_sign_change_in_window": "no sign change between the start point and the end of the search window; value is NaN "
-                                "(called no_zero_crossing before 0.1.0)",
+                                "(named no_zero_crossing in earlier builds)",
     "crossing_in_data_gap": "the search for a sign change met missing points before finding one, so the zero may lie "
                             "in the gap; value is NaN",
     "crossing_at_pole_row": "the sign change lies in the last segment before a pole row (90 deg), where a zonal mean "
