@@ -119,8 +119,13 @@ def test_hybrid_levels_with_varying_surface_pressure(tmp_path, base):
     err = np.nanmax(np.abs(arr - exact), axis=(0, 2, 3))                 # per target level, m s-1
     assert err[0] < 0.02 and err[2] < 0.02                               # log-p interpolation of a smooth profile
     assert err[1] < 0.5      # 850 hPa: the invented subtropical jet's profile has a kink there (clip at 850 hPa)
-    out = run_cfg(path, metric_ids=metrics)
-    two = run_cfg(write(make_dataset(2), tmp_path / "two.nc"), metric_ids=metrics)   # same number of steps
+    # reading is checked here, not the column balance: 1000 hPa lies below the ground at 11 of 36
+    # longitudes, where the invented wave in v has no zero mean over the rest, and removing the
+    # column's net flux (cells.balance) carries that residual up to 500 hPa (the Ferrel zero moves
+    # 0.3 deg; tests/kernels/test_vertical.py checks the balance itself)
+    cfg["cells"]["balance"] = "none"
+    out = run_cfg(path, cfg=cfg, metric_ids=metrics)
+    two = run_cfg(write(make_dataset(2), tmp_path / "two.nc"), cfg=cfg, metric_ids=metrics)   # same number of steps
     # positions to 0.15 deg and amounts to 1 % (the 850 hPa kink moves the half-maximum points a little)
     assert_rows_close(O.sorted_lines(out)[1:], O.sorted_lines(two)[1:], atol_lat=0.15, rtol=0.01, atol=1e-3)
 
