@@ -45,6 +45,7 @@ class Plan:
     families: list
     roles: dict            # role -> levels (None for all)
     reducers: dict = field(default_factory=dict)   # name -> in-task reduction (registry.Family.reducers)
+    checked: set = field(default_factory=set)      # (role, variable, units, conversion) sampled for plausibility
 
     @classmethod
     def make(cls, metric_ids, cfg, sectors):

@@ -15,6 +15,7 @@ from dataclasses import dataclass, field
 from circtrack.engine.times import iso_time
 from circtrack.errors import InputError
 from circtrack.inputs import dataset as D
+from circtrack.inputs import plausible as PL
 from circtrack.inputs.files import same_period_siblings
 from circtrack.inputs.rules import VARIABLES
 from circtrack.metrics import families
@@ -38,7 +39,7 @@ def prepare_file(path, plan, cfg, overrides):
 
 
 def _prepare_open(ds, path, plan, cfg, overrides):
-    det = D.detect(ds, path, overrides)
+    det = D.detect(ds, path, overrides, cfg.get("units"))
     D.require_axes(det)
     info = FileInfo(path, det)
     missing = []
@@ -53,6 +54,7 @@ def _prepare_open(ds, path, plan, cfg, overrides):
         reader, plev = D.standardise(ds, det, role, levels, cfg)
         info.readers[role] = reader
         info.plev[role] = plev
+    check_plausible(ds, info, getattr(plan, "checked", None))
     if missing:
         role = missing[0]
         hint = det.problems.get(role) or "no variable matched"
@@ -60,6 +62,24 @@ def _prepare_open(ds, path, plan, cfg, overrides):
                            f"add --var {role}=NAME or '{role} = \"NAME\"' under [variables] in the config "
                            f"('circtrack scan {path}' lists the variables)", info, missing)
     return info
+
+
+def check_plausible(ds, info, checked=None):
+    """Values of each role after unit conversion inside their physical range (inputs/plausible.py),
+    on a cheap sample: the first time step, top and bottom level, once per (role, variable, units,
+    conversion) in a run (``checked`` remembers what was seen). One error line naming the fix."""
+    det = info.detected
+    for role, reader in info.readers.items():
+        key = (role, reader.name, det.units.get(role, ""), reader.factor, reader.offset)
+        if checked is not None and key in checked:
+            continue
+        if reader.path != info.path:
+            continue
+        lo, hi = PL.sample_range(reader, ds)
+        PL.check_values(info.path, role, reader.name, det.units.get(role, ""), VARIABLES[role]["kind"],
+                        lo, hi, reader.factor, reader.offset)
+        if checked is not None:
+            checked.add(key)
 
 
 class MissingRoles(InputError):
@@ -74,7 +94,7 @@ def detect_only(path, cfg, overrides):
     """What a file holds (coordinates, variables), opened and closed again."""
     ds = D.open_dataset(path, cfg)
     try:
-        return D.detect(ds, path, overrides)
+        return D.detect(ds, path, overrides, cfg.get("units"))
     finally:
         ds.close()
 

@@ -17,6 +17,7 @@ import numpy as np
 
 from circtrack.errors import InputError
 from circtrack.inputs import model_levels as ML
+from circtrack.inputs import plausible as P
 from circtrack.inputs import streams as S
 from circtrack.inputs import times as T
 from circtrack.inputs import units as U
@@ -91,30 +92,34 @@ def _find_coord(ds, key, taken=()):
     return None, ""
 
 
-def detect(ds, path, overrides=None) -> Detected:
+def detect(ds, path, overrides=None, units=None) -> Detected:
     """Find coordinates and every role the rules know; nothing is read except coordinates.
 
-    ``overrides`` maps roles (and the coordinates ``time``, ``lat``, ``lon``, ``plev``) to names.
+    ``overrides`` maps roles (and the coordinates ``time``, ``lat``, ``lon``, ``plev``) to names;
+    ``units`` maps roles and ``lat``/``plev`` to units that replace the file's (``--units``,
+    ``[units]``; ``time`` and ``calendar`` are applied when the file is opened).
     """
     overrides = overrides or {}
+    units = {k: str(v) for k, v in (units or {}).items()}
     det = Detected(path=path, attrs={k: str(v) for k, v in ds.attrs.items()
                                      if k in ("source_id", "experiment_id", "variant_label", "member_id", "realization",
                                               "ensemble_member", "title", "institution")})
     _detect_coords(ds, det, overrides)
     if "lat" in det.coords:
-        _read_lat(ds, det)
+        _read_lat(ds, det, units.get("lat"))
     if "lon" in det.coords:
         _read_lon(ds, det)
     if "time" in det.coords:
         _read_time(ds, det)
     if "plev" in det.coords:
-        _read_vertical(ds, det)
+        _read_vertical(ds, det, units.get("plev"))
     S.detect_streams(ds, det)
     core = {det.coords.get(k) for k in ("time", "lat", "lon", "plev")} - {None}
     if det.streams and det.streams["kind"] == "dim":
         core.add(det.streams["name"])
     for role, rule in VARIABLES.items():
         _detect_role(ds, det, role, rule, overrides.get(role))
+    _apply_units(det, units)
     _suggest(ds, det)
     extra = set()
     for role, name in det.variables.items():
@@ -146,13 +151,33 @@ def _detect_coords(ds, det, overrides):
             taken.append(name)
 
 
-def _read_lat(ds, det):
+def _apply_units(det, units):
+    """Units given with --units/[units] replace the file's for roles; each override is recorded."""
+    for role, u in units.items():
+        if role in VARIABLES and role in det.variables:
+            _note_override(det, role, det.units.get(role, ""), u)
+            det.units[role] = u
+            det.why[role] = det.why.get(role, "") + f"; units '{u}' given by --units/[units]"
+
+
+def _note_override(det, key, was, now):
+    det.layout.setdefault("units_overrides", {})[key] = {"in_file": was, "used": now}
+
+
+def _read_lat(ds, det, units=None):
     """Latitudes in degrees (radians converted); a dimension without values is a problem, not a latitude."""
     det.lat = np.asarray(ds[det.coords["lat"]].values, dtype=float) if det.coords["lat"] in ds.variables else None
     if det.lat is None:
         det.problems["lat"] = f"dimension '{det.coords['lat']}' has no coordinate values"
         del det.coords["lat"]
-    elif _in_radians(ds[det.coords["lat"]]):
+        return
+    if units is not None:
+        _note_override(det, "lat", attr_text(ds[det.coords["lat"]], "units"), units)
+        if units.strip().lower() in ("radian", "radians", "rad"):
+            det.lat = np.rad2deg(det.lat)
+            det.coord_why["lat"] = det.coord_why.get("lat", "") + " (radians by --units, converted to degrees)"
+        return
+    if _in_radians(ds[det.coords["lat"]]):
         det.lat = np.rad2deg(det.lat)
         det.coord_why["lat"] = det.coord_why.get("lat", "") + " (values in radians, converted to degrees)"
 
@@ -185,12 +210,31 @@ def _read_time(ds, det):
     note = T.year_zero_note(ds, det.coords["time"], attr_text(tv, "units") or tv.encoding.get("units", ""))
     if note:
         det.why["time"] = note
+    given = T.given_time_note(ds, det.coords["time"])
+    if given:
+        det.why["time"] = given
+        det.layout.setdefault("units_overrides", {})["time"] = given
     if det.times.size and not hasattr(det.times.flat[0], "calendar"):
         raise InputError(f"{path}: time variable '{det.coords['time']}' has no decodable units "
-                         f"('{attr_text(tv, 'units')}'); give it CF units such as 'days since 2000-01-01'")
+                         f"('{attr_text(tv, 'units')}'); pass its CF units, e.g. --units time=\"days since "
+                         f"2000-01-01\" (or time = \"...\" under [units] in a config file), with the reference "
+                         f"date the file means{_time_hint(tv)}")
 
 
-def _read_vertical(ds, det):
+def _time_hint(tv):
+    """A reading of the time variable's own words (long_name) that names its reference, if any."""
+    import re
+    text = " ".join(attr_text(tv, k) for k in ("long_name", "units", "description"))
+    m = re.search(r"(month|day|hour|year)s?\s+since\s+([A-Za-z]{3})[a-z]*\.?\s+(\d{4})", text, re.I)
+    months = "jan feb mar apr may jun jul aug sep oct nov dec".split()
+    if m and m.group(2).lower()[:3] in months:
+        unit, mon, year = m.group(1).lower(), months.index(m.group(2).lower()[:3]) + 1, m.group(3)
+        return (f"; its long_name reads '{attr_text(tv, 'long_name')}', which would be "
+                f"--units time=\"{unit}s since {year}-{mon:02d}-01\"")
+    return ""
+
+
+def _read_vertical(ds, det, units=None):
     """Pressure levels in hPa (units checked, or by magnitude when there are none), or hybrid coefficients."""
     pv = ds[det.coords["plev"]]
     if (attr_text(pv, "standard_name") in ML.HYBRID_STANDARD_NAMES
@@ -198,6 +242,9 @@ def _read_vertical(ds, det):
         _detect_hybrid(ds, det, det.coords["plev"])
         return
     det.plev_units = attr_text(pv, "units")
+    if units is not None:
+        _note_override(det, "plev", det.plev_units, units)
+        det.plev_units = units
     conv = U.conversion(det.plev_units, "pressure")
     if conv is None and det.plev_units.strip():
         # units that are not pressure (e.g. 'degC', or '1' for model levels): never guess
@@ -211,6 +258,10 @@ def _read_vertical(ds, det):
         det.plev_units = "Pa (by magnitude)" if conv[0] == 0.01 else "hPa (by magnitude)"
     if conv is not None:
         det.plev_hpa = np.round(np.asarray(pv.values, float) * conv[0], 6)
+        try:
+            P.check_coordinate(det.path, "plev", det.coords["plev"], det.plev_units, det.plev_hpa)
+        except InputError as e:
+            det.problems["plev"] = str(e).split(": ", 1)[1]
 
 
 def _detect_hybrid(ds, det, name):

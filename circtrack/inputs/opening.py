@@ -125,6 +125,8 @@ def open_dataset(path, cfg) -> xr.Dataset:
     if os.path.isfile(path):
         _check_classic_complete(path)
     coder = xr.coders.CFDatetimeCoder(use_cftime=True)
+    if {"time", "calendar"} & set(cfg.get("units", {})):
+        return T.open_with_time_units(path, engine, extra, cfg, coder)
     try:
         # no pandas indexes: circtrack only reads coordinate values, and building indexes
         # took two thirds of the time of opening a small file

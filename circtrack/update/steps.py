@@ -82,12 +82,12 @@ class Update:
 
 
 def run_update(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file,
-               quiet, rebuild=False, repeated_times=None, stdin=None, echo=None):
+               quiet, rebuild=False, repeated_times=None, stdin=None, echo=None, units=(), levels=()):
     """Bring OUT up to date with ``paths``; returns the new state (None when nothing was new)."""
     from circtrack import output as O
 
     u = options(output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-                repeated_times, echo or click.echo)
+                repeated_times, echo or click.echo, units, levels)
     O.check_output_path(u.output)
     lock_fd = acquire_lock(u.output)
     try:
@@ -111,17 +111,17 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
 
 
 def options(output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-            repeated_times, echo):
+            repeated_times, echo, units=(), levels=()):
     """The command's options checked and combined with the config, as ``circtrack track`` does."""
     from circtrack import config as C
-    from circtrack.cli_support import parse_vars
+    from circtrack.cli_support import apply_units, parse_vars
     from circtrack.engine.sectors import merge_sectors, parse_sector
 
     if output == "-":
         raise UsageError("update needs an output file (-o OUT.csv), not stdout; the state lives beside it")
     if workers and scheduler:
         raise UsageError("--workers and --scheduler exclude each other; give one")
-    cfg = C.load(config)
+    cfg = apply_units(C.load(config), units, levels)
     user_ids = [m.strip() for m in metrics.split(",") if m.strip()] if metrics else None
     secs = [parse_sector(s) for s in sectors]
     overrides_cli = parse_vars(variables)
