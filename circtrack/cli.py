@@ -19,7 +19,7 @@ def main(debug):
 
 
 def _run_track(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-               repeated_times=None, units=(), levels=()):
+               repeated_times=None, units=(), levels=(), fail_on_empty=False):
     from circtrack import config as C
     from circtrack import engine, output as O
     from circtrack.cluster import scheduler_context
@@ -40,6 +40,8 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
                                overrides=parse_vars(variables), progress=prog, on_bad_file=on_bad_file)
     O.write(outcome, output, cfg, argv=["circtrack", *sys.argv[1:]])
     prog.done(len(outcome.columns["metric"]))
+    from circtrack import summary
+    summary.report(summary.of_outcome(outcome), click.echo, fail_on_empty)   # also with --quiet
     return outcome
 
 

@@ -164,7 +164,10 @@ def track_options(fn):
         click.option("--repeated-times", type=click.Choice(["refuse", "keep-first", "keep-last"]), default=None,
                      help="A time step found in two files with different values: refuse (default) or keep the "
                           "one from the file given first/last."),
-        click.option("-q", "--quiet", is_flag=True, help="No progress output."),
+        click.option("-q", "--quiet", is_flag=True, help="No progress output (the end-of-run summary stays)."),
+        click.option("--fail-on-empty", "fail_on_empty", is_flag=True,
+                     help="Exit 1 (after writing the output) when a metric has no value in any row, e.g. for "
+                          "cron or make; the end-of-run summary names it and its most common flag."),
     ]
     for o in reversed(opts):
         fn = o(fn)

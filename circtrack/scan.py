@@ -56,7 +56,7 @@ def report(paths, cfg, overrides) -> str:
         try:
             ds = D.open_dataset(p, cfg)
             try:
-                det = D.detect(ds, p, overrides, cfg.get("units"))
+                det = D.detect(ds, p, overrides, cfg)
                 dets.append((det, sorted(map(str, ds.data_vars))))
                 det_dims[p] = [str(d) for d in ds.dims]
                 implausible[p] = _implausible(ds, det, cfg)
@@ -108,8 +108,8 @@ def report(paths, cfg, overrides) -> str:
             if U.conversion(det.units.get(role, ""), rule["kind"]) is None:
                 canon = U.CANONICAL[rule["kind"]]
                 lines.append(f"  {'':8s}   units '{det.units.get(role, '')}' are not understood for {rule['kind'].replace('_', ' ')}: "
-                             f"if the values are in {canon}, add --units {role}='{canon}' (or set the attribute: "
-                             f"ncatted -a units,{det.variables[role]},o,c,'{canon}' {det.path})")
+                             f"set them, e.g. ncatted -a units,{det.variables[role]},o,c,'{canon}' {det.path}, or "
+                             f"if the values are in {canon} add --units {role}='{canon}'")
             elif role in implausible.get(det.path, {}):
                 lines.append(f"  {'':8s}   IMPLAUSIBLE: {implausible[det.path][role]}")
             if det.others.get(role):

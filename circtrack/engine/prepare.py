@@ -15,7 +15,6 @@ from dataclasses import dataclass, field
 from circtrack.engine.times import iso_time
 from circtrack.errors import InputError
 from circtrack.inputs import dataset as D
-from circtrack.inputs import plausible as PL
 from circtrack.inputs.files import same_period_siblings
 from circtrack.inputs.rules import VARIABLES
 from circtrack.metrics import families
@@ -39,7 +38,7 @@ def prepare_file(path, plan, cfg, overrides):
 
 
 def _prepare_open(ds, path, plan, cfg, overrides):
-    det = D.detect(ds, path, overrides, cfg.get("units"))
+    det = D.detect(ds, path, overrides, cfg)
     D.require_axes(det)
     info = FileInfo(path, det)
     missing = []
@@ -54,7 +53,6 @@ def _prepare_open(ds, path, plan, cfg, overrides):
         reader, plev = D.standardise(ds, det, role, levels, cfg)
         info.readers[role] = reader
         info.plev[role] = plev
-    check_plausible(ds, info, getattr(plan, "checked", None))
     if missing:
         role = missing[0]
         hint = det.problems.get(role) or "no variable matched"
@@ -62,24 +60,6 @@ def _prepare_open(ds, path, plan, cfg, overrides):
                            f"add --var {role}=NAME or '{role} = \"NAME\"' under [variables] in the config "
                            f"('circtrack scan {path}' lists the variables)", info, missing)
     return info
-
-
-def check_plausible(ds, info, checked=None):
-    """Values of each role after unit conversion inside their physical range (inputs/plausible.py),
-    on a cheap sample: the first time step, top and bottom level, once per (role, variable, units,
-    conversion) in a run (``checked`` remembers what was seen). One error line naming the fix."""
-    det = info.detected
-    for role, reader in info.readers.items():
-        key = (role, reader.name, det.units.get(role, ""), reader.factor, reader.offset)
-        if checked is not None and key in checked:
-            continue
-        if reader.path != info.path:
-            continue
-        lo, hi = PL.sample_range(reader, ds)
-        PL.check_values(info.path, role, reader.name, det.units.get(role, ""), VARIABLES[role]["kind"],
-                        lo, hi, reader.factor, reader.offset)
-        if checked is not None:
-            checked.add(key)
 
 
 class MissingRoles(InputError):
@@ -94,13 +74,16 @@ def detect_only(path, cfg, overrides):
     """What a file holds (coordinates, variables), opened and closed again."""
     ds = D.open_dataset(path, cfg)
     try:
-        return D.detect(ds, path, overrides, cfg.get("units"))
+        return D.detect(ds, path, overrides, cfg)
     finally:
         ds.close()
 
 
-def available_metrics(files, cfg, overrides, policy):
-    """Without --metrics: every metric whose inputs the first readable file holds."""
+def available_metrics(files, cfg, overrides, policy, left_out=None):
+    """Without --metrics: every metric whose inputs the first readable file holds.
+
+    ``left_out`` (a list) receives ``(family, metric ids, missing roles)`` for each family left out,
+    for the end-of-run summary and the sidecar."""
     for p in files:
         try:
             det = detect_only(p, cfg, overrides)
@@ -126,6 +109,9 @@ def available_metrics(files, cfg, overrides, policy):
                 raise InputError(f"{p}: variable '{name}' given for {role} (--var {role}={name} or [variables]) is not "
                                  f"in the file; 'circtrack scan {p}' lists its variables")
         ids = [m.id for f in families().values() if set(f.inputs) <= found for m in f.metrics]
+        if left_out is not None:
+            left_out += [(name, [m.id for m in f.metrics], [r for r in f.inputs if r not in found])
+                         for name, f in families().items() if not set(f.inputs) <= found]
         if not ids:
             roles = sorted({r for f in families().values() for r in f.inputs})
             raise InputError(f"{p}: none of the variables the metrics need ({', '.join(roles)}) was found; "

@@ -11,6 +11,7 @@ axis is read as decoded by :mod:`circtrack.inputs.times`.
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -49,6 +50,8 @@ class Detected:
     streams: dict | None = None                        # expver-like data streams (final / provisional)
     lon_keep: np.ndarray | None = None                 # longitude indices kept (repeated longitudes dropped)
     layout: dict = field(default_factory=dict)         # notes on the layout, for scan and the sidecar
+    stated_levels: dict = field(default_factory=dict)  # variable without a level axis -> (hPa, how it is known)
+    near_surface_hpa: float = 900.0                    # run.near_surface_min_hpa
 
 
 def attr_text(obj, name):
@@ -92,15 +95,18 @@ def _find_coord(ds, key, taken=()):
     return None, ""
 
 
-def detect(ds, path, overrides=None, units=None) -> Detected:
+def detect(ds, path, overrides=None, cfg=None) -> Detected:
     """Find coordinates and every role the rules know; nothing is read except coordinates.
 
-    ``overrides`` maps roles (and the coordinates ``time``, ``lat``, ``lon``, ``plev``) to names;
-    ``units`` maps roles and ``lat``/``plev`` to units that replace the file's (``--units``,
-    ``[units]``; ``time`` and ``calendar`` are applied when the file is opened).
+    ``overrides`` maps roles (and the coordinates ``time``, ``lat``, ``lon``, ``plev``) to names.
+    From ``cfg``: ``[units]`` maps roles and ``lat``/``plev`` to units that replace the file's
+    (``--units``; ``time`` and ``calendar`` are applied when the file is opened); ``[levels]`` gives
+    the pressure level of variables without a level axis (``--level``), and
+    ``run.near_surface_min_hpa`` says which data may stand for a near-surface role.
     """
     overrides = overrides or {}
-    units = {k: str(v) for k, v in (units or {}).items()}
+    cfg = cfg or {}
+    units = {k: str(v) for k, v in cfg.get("units", {}).items()}
     det = Detected(path=path, attrs={k: str(v) for k, v in ds.attrs.items()
                                      if k in ("source_id", "experiment_id", "variant_label", "member_id", "realization",
                                               "ensemble_member", "title", "institution")})
@@ -117,6 +123,8 @@ def detect(ds, path, overrides=None, units=None) -> Detected:
     core = {det.coords.get(k) for k in ("time", "lat", "lon", "plev")} - {None}
     if det.streams and det.streams["kind"] == "dim":
         core.add(det.streams["name"])
+    det.near_surface_hpa = float(cfg.get("run", {}).get("near_surface_min_hpa", 900.0))
+    det.stated_levels = stated_levels(ds, det, cfg.get("levels", {}))
     for role, rule in VARIABLES.items():
         _detect_role(ds, det, role, rule, overrides.get(role))
     _apply_units(det, units)
@@ -334,6 +342,12 @@ def _detect_role(ds, det, role, rule, override):
             det.problems[role] = (f"variable '{override}' given for {role} is not in the file; "
                                   f"variables there: {', '.join(map(str, ds.data_vars))}")
             return
+        aloft = above_surface(det, override) if role in NEAR_SURFACE_ROLES else None
+        if aloft:
+            raise InputError(f"{det.path}: variable '{override}' given for {role} (--var/[variables]) lies at {aloft}, "
+                             f"above run.near_surface_min_hpa ({det.near_surface_hpa:g} hPa), so it is not a "
+                             f"near-surface {VARIABLES[role]['long'].replace('near-surface ', '')}; give a variable "
+                             "near the surface, or leave the metrics that need it out (--metrics)")
         det.variables[role], det.why[role] = override, "set by --var/config"
         det.units[role] = attr_text(ds[override], "units")
         return
@@ -343,6 +357,8 @@ def _detect_role(ds, det, role, rule, override):
         if lat not in dims or lon not in dims:
             return False
         has_lev = plev is not None and plev in dims and ds.sizes[plev] > 1
+        if not rule["levels"] and role in NEAR_SURFACE_ROLES and above_surface(det, name):
+            return False
         return has_lev if rule["levels"] else not has_lev
 
     found, wrong_shape = [], []
@@ -362,6 +378,11 @@ def _detect_role(ds, det, role, rule, override):
         if wrong_shape and role not in det.problems:
             names = ", ".join(f"'{c[2]}' {tuple(map(str, ds[c[2]].dims))}" for c in wrong_shape)
             need = "pressure levels" if rule["levels"] else "no level axis"
+            aloft = [f"'{c[2]}' lies at {above_surface(det, c[2])}" for c in wrong_shape
+                     if role in NEAR_SURFACE_ROLES and above_surface(det, c[2])]
+            if aloft:
+                need = (f"data near the surface, at or below run.near_surface_min_hpa = {det.near_surface_hpa:g} hPa; "
+                        + ", ".join(aloft))
             if lat is None or lon is None:
                 need = "latitude and longitude axes"
             det.problems[role] = f"{names} matched by name but not by shape ({role} needs {need})"
@@ -384,6 +405,47 @@ def _detect_role(ds, det, role, rule, override):
     det.units[role] = attr_text(ds[best[2]], "units")
 
 
+NEAR_SURFACE_ROLES = ("uas", "vas")
+_LEVEL_WORDS = re.compile(r"(\d+(?:\.\d+)?)\s*(hpa|mb|mbar|millibars?)\b", re.I)
+
+
+def stated_levels(ds, det, given):
+    """``{variable: (hPa, how it is known)}`` for variables without a level axis whose pressure level is
+    known: ``--level``/``[levels]``, a one-value level axis or scalar pressure coordinate, or the words
+    of its long_name ("300 hPa"), which only ever keep it away from near-surface roles."""
+    out = {}
+    plev = det.coords.get("plev")
+    for name in ds.data_vars:
+        v = ds[name]
+        if name in given:
+            out[str(name)] = (float(given[name]), f"--level {name}={float(given[name]):g}")
+            continue
+        if plev is not None and plev in v.dims and ds.sizes[plev] == 1 and det.plev_hpa is not None:
+            out[str(name)] = (float(det.plev_hpa[0]), f"its one-value level axis '{plev}'")
+            continue
+        for c in v.coords:
+            cv = ds[c]
+            if cv.ndim == 0 and c != det.coords.get("time"):
+                conv = U.conversion(attr_text(cv, "units"), "pressure")
+                if conv is not None and (attr_text(cv, "standard_name") == "air_pressure" or c in COORDS["plev"]["names"]):
+                    out[str(name)] = (float(cv.values) * conv[0], f"its scalar coordinate '{c}'")
+                    break
+        else:
+            m = _LEVEL_WORDS.search(attr_text(v, "long_name") + " " + attr_text(v, "level") + " " + str(name))
+            if m:
+                out[str(name)] = (float(m.group(1)), f"its long_name '{attr_text(v, 'long_name')}'")
+    return out
+
+
+def above_surface(det, name):
+    """"300 hPa (its long_name ...)" when variable ``name`` is known to lie above
+    run.near_surface_min_hpa, else None."""
+    got = det.stated_levels.get(str(name))
+    if got is None or got[0] >= det.near_surface_hpa:
+        return None
+    return f"{got[0]:g} hPa ({got[1]})"
+
+
 def _suggest(ds, det):
     """For roles not found: unassigned variables whose units and shape fit, as the exact line to add."""
     lat, lon, plev = det.coords.get("lat"), det.coords.get("lon"), det.coords.get("plev")
@@ -401,6 +463,8 @@ def _suggest(ds, det):
             has_lev = plev is not None and plev in v.dims and ds.sizes[plev] > 1
             if has_lev != rule["levels"] or U.conversion(attr_text(v, "units"), rule["kind"]) is None:
                 continue
+            if role in NEAR_SURFACE_ROLES and above_surface(det, name):
+                continue                       # a wind aloft never stands for a near-surface wind
             if not attr_text(v, "units"):          # no units: "fits" any dimensionless kind, too weak a hint
                 continue
             if rule["kind"] != "speed" and U.conversion(attr_text(v, "units"), "speed") is not None:

@@ -12,10 +12,11 @@ values plausible (when one of the known spellings does), e.g.::
     pass --units ta=K (or ta = "K" under [units] in a config file); circtrack never guesses units
 
 The bounds are deliberately wide physical limits (sources beside each entry); they catch factors
-and offsets (x100, x9.8, +273.15), not small biases. Data are sampled cheaply at planning: the first
-time step of each role, on its top and bottom selected levels, in the first file of every
-(variable, units) combination of a run (engine/prepare.py). Coordinates are checked on their
-values, which detection reads anyway.
+and offsets (x100, x9.8, +273.15), not small biases. Planning reads no data, so the values are
+checked where they are read anyway: in the task holding each file's first time chunk
+(engine/reduce.py), on the first time step of every role as converted (plain min/max, a few
+per cent of that task's work). ``scan`` samples the first time step itself. Coordinates are checked
+on their values, which detection reads anyway.
 """
 
 from __future__ import annotations
@@ -99,7 +100,8 @@ def check_coordinate(path, key, name, stated, values):
     unit = "degrees_north" if key == "lat" else "hPa"
     if key == "plev":
         fits = fitting_units(lo / _plev_factor(stated), hi / _plev_factor(stated), "pressure", (lo_b, hi_b))
-        fix = (f"if the values are in {' or '.join(fits)}, pass " + " or ".join(f"--units plev={_quote(u)}" for u in fits)
+        fix = (f"the values look like {' or '.join(fits)}: pass " + " or ".join(f"--units plev={_quote(u)}" for u in fits)
+               + f" or set its units attribute (e.g. ncatted -a units,{name},o,c,{fits[0]})"
                if fits else "fix the coordinate")
     else:
         fix = ("if the values are in radians, pass --units lat=radians" if hi - lo <= np.pi + 1e-6
@@ -117,19 +119,40 @@ def _quote(u):
     return f'"{u}"' if any(ch in u for ch in " *()") else u
 
 
+def slab_range(arr):
+    """``(min, max)`` of the first time step of a chunk already read (NaN, NaN when all missing);
+    plain min/max first (fast), NaN-skipping only when a NaN is there."""
+    first = np.asarray(arr[:1])
+    if first.size == 0:
+        return np.nan, np.nan
+    lo, hi = float(first.min()), float(first.max())
+    if np.isnan(lo) or np.isnan(hi):
+        if not np.isfinite(first).any():
+            return np.nan, np.nan
+        lo, hi = float(np.nanmin(first)), float(np.nanmax(first))
+    return lo, hi
+
+
+def check_slabs(readers, slabs, units):
+    """Every role of a chunk (canonical units) inside its range; the message states the raw values."""
+    from circtrack.inputs.rules import VARIABLES
+    for role, arr in slabs.items():
+        rd = readers[role]
+        lo, hi = slab_range(arr)
+        f, o = (rd.factor or 1.0), rd.offset
+        check_values(rd.path, role, rd.name, units.get(role, ""), VARIABLES[role]["kind"],
+                     (lo - o) / f, (hi - o) / f, f, o)
+
+
 def sample_range(reader, ds):
     """``(min, max)`` of the raw (unconverted) values of the first time step of ``reader``'s variable,
-    on the top and bottom of its selected levels; NaN, NaN when everything is missing."""
+    on the top and bottom of its selected levels (for ``scan``); NaN, NaN when everything is missing."""
     import dataclasses
     sel = dict(reader.selection)
-    lev = [d for d, v in sel.items() if isinstance(v, list) and d in reader.dims and reader.hybrid is None]
-    for d in lev:                          # only the two extreme levels: top and bottom
-        sel[d] = sorted({sel[d][0], sel[d][-1]})
-    r = dataclasses.replace(reader, selection=sel, factor=1.0, offset=0.0,
-                            hybrid=None if reader.hybrid is None else reader.hybrid)
-    if reader.hybrid is not None:
-        # model levels: the raw values on the model levels themselves (no interpolation needed)
-        r = dataclasses.replace(r, hybrid=None)
+    for d in [d for d, v in sel.items() if isinstance(v, list) and d in reader.dims]:
+        sel[d] = sorted({sel[d][0], sel[d][-1]})          # only the two extreme levels: top and bottom
+    # model levels: the raw values on the model levels themselves (no interpolation needed)
+    r = dataclasses.replace(reader, selection=sel, factor=1.0, offset=0.0, hybrid=None, ground=None)
     arr = np.asarray(r.read_noted(ds, 0, 1)[0], dtype=np.float64)
     if not np.isfinite(arr).any():
         return np.nan, np.nan

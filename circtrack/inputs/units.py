@@ -45,7 +45,8 @@ def preferred(kind, factor_offset):
         return CANONICAL[kind]
     for keys, v in _TABLE[kind].items():
         if v == tuple(factor_offset):
-            return {"degc": "degC", "gkg-1": "g kg-1", "kpa": "kPa", "cms-1": "cm s-1"}.get(keys[0], keys[0])
+            return {"degc": "degC", "gkg-1": "g kg-1", "kpa": "kPa", "cms-1": "cm s-1", "pa": "Pa", "mm/day": "mm day-1",
+                    "m2s-2": "m2 s-2", "km/h": "km h-1"}.get(keys[0], keys[0])
     return None
 
 

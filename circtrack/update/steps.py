@@ -75,6 +75,7 @@ class Update:
     notes: dict = field(default_factory=dict)
     base_prov: dict = field(default_factory=dict)
     processed: list = field(default_factory=list)
+    left_out: list = field(default_factory=list)   # default metrics left out for want of a variable
 
     @property
     def old_files(self):
@@ -82,7 +83,8 @@ class Update:
 
 
 def run_update(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file,
-               quiet, rebuild=False, repeated_times=None, stdin=None, echo=None, units=(), levels=()):
+               quiet, rebuild=False, repeated_times=None, stdin=None, echo=None, units=(), levels=(),
+               fail_on_empty=False):
     """Bring OUT up to date with ``paths``; returns the new state (None when nothing was new)."""
     from circtrack import output as O
 
@@ -105,6 +107,8 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
             u.echo(f"circtrack: updated {u.output}: {len(u.processed)} file(s) processed, "
                    f"{len(u.ab) - len(u.processed)} kept, {len(u.removed)} removed, {len(u.blocks)} time steps",
                    err=True)
+        from circtrack import summary
+        summary.report(summary.of_csv(text, u.left_out), u.echo, fail_on_empty)   # also with --quiet
         return new_state
     finally:
         os.close(lock_fd)
@@ -201,7 +205,8 @@ def read_new_files(u):
 
     u.ids = u.user_ids
     if u.ids is None:
-        u.ids = u.state["metrics"] if u.state else engine.available_metrics(u.files, u.cfg, u.overrides, u.policy)
+        u.ids = u.state["metrics"] if u.state else engine.available_metrics(u.files, u.cfg, u.overrides, u.policy,
+                                                                             u.left_out)
     plan = engine.Plan.make(u.ids, u.cfg, u.all_secs)
     u.roles = plan.roles
     old_files = u.old_files
