@@ -97,7 +97,7 @@ def prepare_inputs(files, plan, cfg, overrides, policy):
     for e in unmatched:
         path = e.info.path
         ref = next((i for i in infos + [x.info for x in partial] if i.path != path), None)
-        mixed = mixed_datasets(ref.detected, e.info.detected) if ref is not None else None
+        mixed = mixed_datasets(e.info.detected, ref.detected) if ref is not None else None
         err = e if not mixed else InputError(
             f"{path}: belongs to another dataset than {ref.path} ({mixed}) and lacks {', '.join(e.missing)}; "
             "run each dataset on its own (one circtrack track per dataset)")
