@@ -297,7 +297,7 @@ def test_a_csv_file_is_said_to_be_no_data_file(tmp_path):
     line = one_error(run("track", p, "-o", tmp_path / "o.csv"))
     assert line == (f"circtrack: error: {p}: not netCDF, HDF5, Zarr or GRIB at all (it begins like text: "
                     "'time,lat,u'); give circtrack the data files themselves (unpack archives first), or leave this "
-                    "file out")
+                    "file out (--on-bad-file skip)")
     z = tmp_path / "packed.nc"
     z.write_bytes(b"\x1f\x8b\x08\x00" + bytes(100))
     assert "(it is a gzip file)" in one_error(run("track", z, "-o", tmp_path / "o.csv"))
