@@ -46,16 +46,14 @@ def guarded(fn):
 
 
 def parse_vars(pairs):
-    from circtrack.inputs.rules import VARIABLES
+    from circtrack.config import check_role
 
     out = {}
     for p in pairs:
         if "=" not in p:
             raise UsageError(f"--var '{p}': expected ROLE=NAME, e.g. --var ua=U")
         role, name = (x.strip() for x in p.split("=", 1))
-        if role not in VARIABLES and role not in ("time", "lat", "lon", "plev"):
-            raise UsageError(f"--var '{p}': unknown role '{role}'; roles are {' '.join(VARIABLES)} "
-                             "(and the coordinates time lat lon plev)")
+        check_role(role, f"--var '{p}'")
         out[role] = name
     return out
 
