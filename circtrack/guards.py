@@ -111,7 +111,7 @@ def refuse_outputs_among_inputs(outputs, inputs):
             raise UsageError(f"{how}: {p} is the input {hit}; writing it would destroy that input; "
                              "give the output its own name, e.g. -o indices.csv")
         for key in (real, ino):
-            if key is not None and key in seen and seen[key][1] != p:
+            if key is not None and key in seen:
                 raise UsageError(f"{how}: {p} is the same file as {seen[key][0]}; give each output its own name")
         seen.setdefault(real, (how, p))
         if ino is not None:
