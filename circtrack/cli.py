@@ -68,10 +68,12 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
     files = expand(list(paths))             # before anything is read: OUT must not be an input
     outputs = [("-o", output)] + ([("the sidecar of -o", O.sidecar_path(target.path))] if target.kind == "file" else [])
     G.refuse_outputs_among_inputs(outputs, files)
+    stamps = G.input_stamps(files)
     prog = engine.Progress(quiet=quiet)
     with scheduler_context(workers, scheduler, cfg):
         outcome = engine.track(files, cfg, metric_ids=ids, label=label, sectors=secs,
                                overrides=parse_vars(variables), progress=prog, on_bad_file=on_bad_file)
+    G.refuse_changed_inputs(stamps)
     O.write(outcome, output, cfg, argv=["circtrack", *sys.argv[1:]])
     prog.done(len(outcome.columns["metric"]))
     return outcome

@@ -137,3 +137,41 @@ def refuse_data_file_as_output(out_path):
     if looks:
         raise UsageError(f"-o {out_path}: names a data file, not a CSV (was the output name forgotten before a "
                          "glob of inputs?); give the output its own name, e.g. -o indices.csv")
+
+
+# --------------------------------------------------------------------------- inputs that change during a run
+def input_stamps(paths):
+    """Size, modification time and inode of every input (for a directory such as a Zarr store: of
+    the directory and of the files in it), taken before anything is read."""
+    out = {}
+    for p in paths:
+        out[p] = _stamp(p)
+    return out
+
+
+def _stamp(path):
+    try:
+        st = os.stat(path)
+    except OSError:
+        return None
+    own = (st.st_size, st.st_mtime_ns, st.st_ino)
+    if not os.path.isdir(path):
+        return own
+    parts = [own]
+    for root, _, names in os.walk(path):
+        for n in sorted(names):
+            try:
+                s2 = os.stat(os.path.join(root, n))
+            except OSError:
+                continue
+            parts.append((n, s2.st_size, s2.st_mtime_ns))
+    return tuple(parts)
+
+
+def refuse_changed_inputs(stamps):
+    """After reading, before writing: an input whose size, modification time or inode changed was
+    replaced or still being written while it was read; its rows cannot be trusted (InputError)."""
+    for p, before in stamps.items():
+        if _stamp(p) != before:
+            raise InputError(f"{p}: changed while it was being read (size, modification time or inode differ); "
+                             "rerun once the file is complete (nothing was written)")

@@ -368,3 +368,23 @@ def test_library_warnings_are_one_line_notes_and_silent_with_quiet():
     notes = r.stderr.splitlines()
     assert len(notes) == 2 and all(n.startswith("circtrack: note: ") for n in notes), r.stderr
     assert "cftime says something over two lines (UserWarning" in notes[0]
+
+
+# --------------------------------------------------------------------------- inputs that change during a run
+def test_an_input_replaced_during_the_run_is_refused(tmp_path, monkeypatch, indices):
+    from circtrack import engine
+
+    d = tmp_path / "in"
+    b = write(make_dataset(2), d / "b.nc")
+    before = snapshot(tmp_path)
+    real = engine.track
+
+    def replaced_while_reading(paths, *a, **k):
+        out = real(paths, *a, **k)
+        write(make_dataset(2).isel(time=[1, 0]), b)          # rewritten after it was read
+        return out
+
+    monkeypatch.setattr(engine, "track", replaced_while_reading)
+    line = one_error(invoke("track", d, "--metrics", IDS, "-o", indices, "-q"), 1)
+    assert b in line and "changed while it was being read" in line
+    assert snapshot(tmp_path) == before                          # OUT and sidecar untouched
