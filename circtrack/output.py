@@ -196,11 +196,13 @@ def commit(files, before_replace=None, between=None):
     ``between`` (a dict index -> callable) runs before the rename of ``files[index]`` (test hooks to
     kill the process at exactly that moment).
     """
-    files = [(os.path.abspath(p), data) for p, data in files]
+    files = [(os.path.realpath(p), data) for p, data in files]        # symbolic links are written through
     for p, _ in files:
         d = os.path.dirname(p)
         if not os.path.isdir(d):
             raise UsageError(f"{p}: the output directory {d} does not exist; create it first (mkdir -p {d})")
+        if os.path.lexists(p) and not os.path.isfile(p):     # never replace a device, FIFO or directory
+            raise UsageError(f"{p}: is not a regular file (a device, pipe or directory); choose another output name")
     temps = []
     try:
         try:

@@ -388,3 +388,13 @@ def test_an_input_replaced_during_the_run_is_refused(tmp_path, monkeypatch, indi
     line = one_error(invoke("track", d, "--metrics", IDS, "-o", indices, "-q"), 1)
     assert b in line and "changed while it was being read" in line
     assert snapshot(tmp_path) == before                          # OUT and sidecar untouched
+
+
+def test_commit_never_replaces_a_device_and_writes_through_links(tmp_path):
+    with pytest.raises(UsageError, match="not a regular file"):
+        O.commit([(str(tmp_path / "ok.txt"), "a"), ("/dev/null", "b")])
+    assert stat.S_ISCHR(os.stat("/dev/null").st_mode) and not (tmp_path / "ok.txt").exists()
+    (tmp_path / "t.txt").write_text("old")
+    (tmp_path / "l.txt").symlink_to(tmp_path / "t.txt")
+    O.commit([(str(tmp_path / "l.txt"), "new")])
+    assert (tmp_path / "l.txt").is_symlink() and (tmp_path / "t.txt").read_text() == "new"
