@@ -34,10 +34,7 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
         cfg["run"]["on_bad_file"] = on_bad_file          # so the sidecar records the policy used
     ids = [m.strip() for m in metrics.split(",") if m.strip()] if metrics else None
     secs = [engine.parse_sector(s) for s in sectors]
-    for raw, (name, _, _) in zip(sectors, secs):
-        G.check_label(name, f"--sector '{raw}'", "rename the sector, e.g. with letters and '_' only")
-    if label is not None:
-        G.check_label(label, f"--label '{label}'", f"use e.g. --label '{G.clean_label(label)}'")
+    G.check_cli_labels(label, sectors, secs)
     target = O.check_output_path(output)
     G.refuse_data_file_as_output(output)
     files = expand(list(paths))             # before anything is read: OUT must not be an input

@@ -70,6 +70,14 @@ def check_label(value, where, fix, error=UsageError):
     return value
 
 
+def check_cli_labels(label, sector_args, secs):
+    """``--label`` and the names of ``--sector`` (already parsed into ``secs``), for track and update."""
+    for raw, (name, _, _) in zip(sector_args, secs):
+        check_label(name, f"--sector '{raw}'", "rename the sector, e.g. with letters and '_' only")
+    if label is not None:
+        check_label(label, f"--label '{label}'", f"use e.g. --label '{clean_label(label)}'")
+
+
 def check_text_columns(cols, names):
     """The last line of defence before writing: every text field of the columns ``names``."""
     for name in names:
