@@ -398,3 +398,124 @@ def test_commit_never_replaces_a_device_and_writes_through_links(tmp_path):
     (tmp_path / "l.txt").symlink_to(tmp_path / "t.txt")
     O.commit([(str(tmp_path / "l.txt"), "new")])
     assert (tmp_path / "l.txt").is_symlink() and (tmp_path / "t.txt").read_text() == "new"
+
+
+# --------------------------------------------------------------------------- update: outputs, lock, state
+def test_update_refuses_an_output_that_is_an_input(tmp_path):
+    d = tmp_path / "d"
+    d.mkdir()
+    a = write(make_dataset(1), d / "a.nc")
+    before = snapshot(d)
+    line = one_error(invoke("update", d, "-o", a, "-q"), 2)          # 'update dir -o dir/a.nc'
+    assert a in line
+    assert snapshot(d) == before                      # no lock, sidecar or state either
+
+
+def test_update_refuses_when_its_state_would_overwrite_an_input(tmp_path):
+    d = tmp_path / "d"
+    d.mkdir()
+    data = write(make_dataset(1), d / "o.state.json")
+    line = one_error(invoke("update", data, "-o", d / "o.csv", "-q"), 2)
+    assert "the state of -o" in line and "o.state.json" in line
+
+
+def test_update_refuses_a_device_as_output(nc):
+    line = one_error(invoke("update", nc, "-o", "/dev/null", "-q"), 2)
+    assert "not a regular file" in line
+    assert stat.S_ISCHR(os.stat("/dev/null").st_mode)
+
+
+def test_update_through_a_symlink_keeps_its_files_beside_the_target(tmp_path, nc):
+    (tmp_path / "store").mkdir()
+    link = tmp_path / "link.csv"
+    link.symlink_to(tmp_path / "store" / "real.csv")
+    assert invoke("update", nc, "--metrics", IDS, "-o", link, "-q", "--label", "L").exit_code == 0
+    assert link.is_symlink()
+    assert sorted(os.listdir(tmp_path / "store")) == ["real.csv", "real.lock", "real.provenance.json",
+                                                     "real.state.json"]
+    r = invoke("update", nc, "--metrics", IDS, "-o", link, "--label", "L")
+    assert r.exit_code == 0 and "nothing new" in r.output
+
+
+def test_a_directory_where_the_lock_goes_is_one_line(tmp_path, nc):
+    (tmp_path / "o.lock").mkdir()
+    line = one_error(invoke("update", nc, "-o", tmp_path / "o.csv", "-q"), 2)
+    assert "o.lock" in line and "directory" in line
+
+
+def test_a_lock_file_left_by_a_dead_run_does_not_block(tmp_path, nc):
+    (tmp_path / "o.lock").write_text("")                 # the file stays; only a living owner holds the lock
+    r = invoke("update", nc, "--metrics", IDS, "-o", tmp_path / "o.csv", "-q", "--label", "L")
+    assert r.exit_code == 0, r.output
+
+
+@pytest.mark.parametrize("damage", [
+    lambda st: {**st, "files": [1, 2]},
+    lambda st: {**st, "files": {k: {**v, "times": "2000-01-15"} for k, v in st["files"].items()}},
+    lambda st: {**st, "files": {k: {**v, "times": ["January"]} for k, v in st["files"].items()}},
+    lambda st: {k: v for k, v in st.items() if k != "params_hash"},
+    lambda st: [st],
+])
+def test_a_state_file_of_the_wrong_shape_is_rebuilt_with_a_line(tmp_path, nc, damage):
+    import json
+
+    out = tmp_path / "o.csv"
+    args = ["update", nc, "--metrics", IDS, "-o", out, "--label", "L"]
+    assert invoke(*args, "-q").exit_code == 0
+    good = out.read_bytes()
+    sp = tmp_path / "o.state.json"
+    sp.write_text(json.dumps(damage(json.loads(sp.read_text()))))
+    r = invoke(*args)
+    assert r.exit_code == 0, r.output
+    assert "o.state.json is unreadable or from an older circtrack; rebuilding" in r.stderr
+    assert out.read_bytes() == good
+    r = invoke(*args)
+    assert r.exit_code == 0 and "nothing new" in r.output
+
+
+def test_update_refuses_an_input_replaced_during_the_run(tmp_path, monkeypatch):
+    from circtrack import engine
+
+    d = tmp_path / "in"
+    d.mkdir()
+    a = write(make_dataset(2), d / "a.nc")
+    out = tmp_path / "o.csv"
+    real = engine.track
+
+    def replaced_while_reading(paths, *args, **kw):
+        result = real(paths, *args, **kw)
+        write(make_dataset(2).isel(time=[1, 0]), a)
+        return result
+
+    monkeypatch.setattr(engine, "track", replaced_while_reading)
+    line = one_error(invoke("update", d, "--metrics", IDS, "-o", out, "-q", "--label", "L"), 1)
+    assert a in line and "changed while it was being read" in line
+    assert not out.exists() and not (tmp_path / "o.state.json").exists()
+
+
+# --------------------------------------------------------------------------- labels from files
+def test_source_id_with_a_line_break_names_the_attribute(tmp_path):
+    ds = make_dataset(1)
+    ds.attrs["source_id"] = "MODEL\nINJECTED,row,,,,,"
+    p = write(ds, tmp_path / "m.nc")
+    for cmd in ("track", "update"):
+        line = one_error(invoke(cmd, p, "--metrics", IDS, "-o", tmp_path / "o.csv", "-q"), 1)
+        assert p in line and "global attribute source_id" in line and "--label" in line
+    assert not (tmp_path / "o.csv").exists()
+    assert invoke("track", p, "--metrics", IDS, "-o", tmp_path / "o.csv", "-q", "--label", "ok").exit_code == 0
+
+
+def test_update_names_the_file_whose_name_breaks_the_csv(tmp_path):
+    p = write(make_dataset(1), tmp_path / "evil,name_2000.nc")
+    line = one_error(invoke("update", p, "--metrics", IDS, "-o", tmp_path / "o.csv", "-q"), 1)
+    assert p in line and "taken from the file name" in line and "comma" in line
+
+
+# --------------------------------------------------------------------------- bounds
+def test_processes_are_capped_at_the_core_count():
+    from circtrack import config as C
+    from circtrack.engine.pool import Runner
+
+    cfg = C.load(None)
+    cfg["run"]["processes"] = 100000
+    assert Runner(cfg, 10).nproc == (os.cpu_count() or 1)
