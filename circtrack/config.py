@@ -117,6 +117,12 @@ def _validate(cfg, user):
         if not isinstance(v, int) or v < low:
             raise UsageError(f"run.{key} = {v!r} in the config: give a whole number of at least {low} "
                              f"(default {defaults()['run'][key]})")
+    choices = {"netcdf_engine": ("netcdf4", "h5netcdf"), "on_bad_file": ("stop", "skip"),
+               "repeated_times": ("refuse", "keep-first", "keep-last"),
+               "scheduler": ("processes", "threads", "sync")}
+    for key, allowed in choices.items():
+        if run.get(key) not in allowed:
+            raise UsageError(f"run.{key} = {run.get(key)!r} in the config: use one of {', '.join(allowed)}")
     for key in ("level_tolerance_hpa", "min_coverage", "min_window_fraction"):
         if run.get(key, 0) < 0:
             raise UsageError(f"run.{key} = {run[key]!r} in the config: give a number of at least 0")

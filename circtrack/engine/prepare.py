@@ -12,6 +12,9 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
+import numpy as np
+from pandas.errors import OutOfBoundsDatetime as OutOfBoundsError
+
 from circtrack.engine.times import iso_time
 from circtrack.errors import InputError
 from circtrack.inputs import dataset as D
@@ -37,9 +40,43 @@ def prepare_file(path, plan, cfg, overrides):
         ds.close()
 
 
+def _detect(ds, path, overrides):
+    """Detection, with time values that cannot be decoded (a fill value such as 9.97e36 in the
+    time coordinate overflows the date arithmetic) as one line naming the file."""
+    try:
+        return D.detect(ds, path, overrides)
+    except (OverflowError, OutOfBoundsError) as e:
+        raise InputError(f"{path}: the time values cannot be decoded ({' '.join(str(e).split())}); a time value "
+                         "may be missing or a fill value (e.g. 9.97e36): fix the time coordinate, or pass "
+                         "--on-bad-file skip")
+
+
+def check_grid(ds, det, path):
+    """Axes the metrics cannot work on, refused like duplicated latitudes (inputs/dataset.py):
+    fewer than 3 latitudes, a longitude or a pressure level given twice (a repeated longitude
+    that is the same meridian 360 degrees on, the cyclic column, is fine and read once)."""
+    if det.lat is not None and "lat" in det.coords and 0 < det.lat.size < 3:
+        raise InputError(f"{path}: latitude '{det.coords['lat']}' has only {det.lat.size} value(s); the metrics need "
+                         "a grid that resolves latitude (at least 3 latitudes): give files with the full grid")
+    name = det.coords.get("lon")
+    if name is not None and name in ds.variables:
+        lon = np.asarray(ds[name].values, dtype=float).ravel()
+        vals, counts = np.unique(lon[np.isfinite(lon)], return_counts=True)
+        if (counts > 1).any():
+            raise InputError(f"{path}: longitude '{name}' has duplicated values ({vals[counts > 1][0]:g} twice); "
+                             "fix the coordinate")
+    if det.plev_hpa is not None and det.vertical != "hybrid":
+        p = np.asarray(det.plev_hpa, dtype=float).ravel()
+        vals, counts = np.unique(p[np.isfinite(p)], return_counts=True)
+        if (counts > 1).any():
+            raise InputError(f"{path}: pressure level '{det.coords.get('plev')}' has duplicated values "
+                             f"({vals[counts > 1][0]:g} hPa twice); fix the coordinate")
+
+
 def _prepare_open(ds, path, plan, cfg, overrides):
-    det = D.detect(ds, path, overrides)
+    det = _detect(ds, path, overrides)
     D.require_axes(det)
+    check_grid(ds, det, path)
     info = FileInfo(path, det)
     missing = []
     for role, levels in plan.roles.items():
@@ -74,7 +111,7 @@ def detect_only(path, cfg, overrides):
     """What a file holds (coordinates, variables), opened and closed again."""
     ds = D.open_dataset(path, cfg)
     try:
-        return D.detect(ds, path, overrides)
+        return _detect(ds, path, overrides)
     finally:
         ds.close()
 
