@@ -234,6 +234,13 @@ def duplicated_pressure_levels(tmp_path):
 
 
 @case
+def one_pressure_level(tmp_path):
+    # was blamed on damage ("one of these files is damaged") after reading failed
+    p = nc(tmp_path, "one_level.nc", plev=np.array([500.0]))
+    return Case([p], p, "single pressure level")
+
+
+@case
 def one_latitude(tmp_path):
     p = nc(tmp_path, "one_lat.nc", lat=np.array([10.0]))
     return Case([p], p, "at least 3 latitudes")

@@ -67,6 +67,13 @@ def check_grid(ds, det, path):
                              "fix the coordinate")
     if det.plev_hpa is not None and det.vertical != "hybrid":
         p = np.asarray(det.plev_hpa, dtype=float).ravel()
+        dim = det.coords.get("plev")
+        on_level = [n for n in det.variables.values() if n in ds.variables and dim in ds[n].dims]
+        if p.size == 1 and on_level:
+            raise InputError(f"{path}: variable '{on_level[0]}' has a single pressure level ({p[0]:g} hPa on "
+                             f"'{dim}'); circtrack reads variables on pressure levels with at least two levels "
+                             "(the metrics need e.g. 850 and 200 hPa, the streamfunction all of them): give files "
+                             "with the levels the metrics need")
         vals, counts = np.unique(p[np.isfinite(p)], return_counts=True)
         if (counts > 1).any():
             raise InputError(f"{path}: pressure level '{det.coords.get('plev')}' has duplicated values "
