@@ -519,3 +519,15 @@ def test_processes_are_capped_at_the_core_count():
     cfg = C.load(None)
     cfg["run"]["processes"] = 100000
     assert Runner(cfg, 10).nproc == (os.cpu_count() or 1)
+
+
+def test_a_real_scheduler_passes_the_probe(tmp_path, nc, indices):
+    distributed = pytest.importorskip("distributed")
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=False, dashboard_address=None,
+                                  protocol="tcp", silence_logs=40) as cluster:
+        cfg = tmp_path / "fast.toml"
+        cfg.write_text("[cluster]\nconnect_timeout_s = 10.0\n")
+        r = invoke("track", nc, "--metrics", IDS, "--scheduler", cluster.scheduler_address, "-c", cfg,
+                   "-o", tmp_path / "viaclient.csv", "-q")
+    assert r.exit_code == 0, r.output
+    assert (tmp_path / "viaclient.csv").read_bytes() == indices.read_bytes()
