@@ -74,7 +74,9 @@ def _calendar(path, df, given):
 
     if given:
         return given
-    side = sidecar_path(path)
+    side = sidecar_path(os.path.realpath(path))        # beside the target when CSV is a symbolic link
+    if not os.path.exists(side):
+        side = sidecar_path(path)
     if os.path.exists(side):
         try:
             with open(side) as f:
