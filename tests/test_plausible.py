@@ -296,8 +296,8 @@ def test_a_csv_file_is_said_to_be_no_data_file(tmp_path):
     p.write_text("time,lat,u\n2000-01-01,10,3.5\n")
     line = one_error(run("track", p, "-o", tmp_path / "o.csv"))
     assert line == (f"circtrack: error: {p}: not netCDF, HDF5, Zarr or GRIB at all (it begins like text: "
-                    "'time,lat,u'); give circtrack the data files themselves (unpack archives first), or leave this "
-                    "file out (--on-bad-file skip)")
+                    "'time,lat,u'); give circtrack the data files themselves (unpack archives first) or leave this "
+                    "file out, or pass --on-bad-file skip")
     z = tmp_path / "packed.nc"
     z.write_bytes(b"\x1f\x8b\x08\x00" + bytes(100))
     assert "(it is a gzip file)" in one_error(run("track", z, "-o", tmp_path / "o.csv"))

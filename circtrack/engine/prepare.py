@@ -88,7 +88,10 @@ def detect_only(path, cfg, overrides):
     """What a file holds (coordinates, variables), opened and closed again."""
     ds = D.open_dataset(path, cfg)
     try:
-        return _detect(ds, path, overrides, cfg)
+        det = _detect(ds, path, overrides, cfg)
+        if "lat" in det.coords:
+            D.check_grid(ds, det)          # e.g. one pressure level: said before "no variable found"
+        return det
     finally:
         ds.close()
 

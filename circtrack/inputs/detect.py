@@ -475,5 +475,9 @@ def _suggest(ds, det):
             lines = " or ".join(f"--var {role}={n}" for n in fits)
             hint = (f"{', '.join(repr(n) for n in fits)} {'fits' if len(fits) == 1 else 'fit'} by units and "
                     f"shape ({where}): {lines}")
+            if role in NEAR_SURFACE_ROLES:
+                hint += (f" if {'it is' if len(fits) == 1 else 'they are'} near the surface (nothing in the file "
+                         f"says at which height; a wind aloft is no {role}: say its level with --level "
+                         f"{fits[0]}=HPA)")
             det.problems[role] = (f"{det.problems[role]}; {hint}" if role in det.problems
                                   else f"no name or standard_name matched; {hint}")

@@ -192,7 +192,7 @@ def _check_format(path):
                  b"\xfd7zXZ": "an xz file", b"%PDF": "a PDF document", b"\x89PNG": "a PNG image"}
         looks = next((f"it is {k}" for m, k in kinds.items() if head.startswith(m)), "its first bytes match none of them")
     raise InputError(f"{path}: not netCDF, HDF5, Zarr or GRIB at all ({looks}); give circtrack the data files "
-                     "themselves (unpack archives first), or leave this file out (--on-bad-file skip)")
+                     "themselves (unpack archives first) or leave this file out, or pass --on-bad-file skip")
 
 
 def _check_classic_complete(path):

@@ -112,7 +112,10 @@ def check_grid(ds, det):
     if det.plev_hpa is not None and det.vertical != "hybrid":
         p = np.asarray(det.plev_hpa, dtype=float).ravel()
         dim = det.coords.get("plev")
-        on_level = [n for n in det.variables.values() if n in ds.variables and dim in ds[n].dims]
+        # detected variables first; a wind on one level aloft is no longer taken for a near-surface role,
+        # so the other variables on the axis count too
+        on_level = [n for n in [*det.variables.values(), *map(str, ds.data_vars)] if n in ds.variables
+                    and dim in ds[n].dims]
         if p.size == 1 and on_level:
             raise InputError(f"{path}: variable '{on_level[0]}' has a single pressure level ({p[0]:g} hPa on "
                              f"'{dim}'); circtrack reads variables on pressure levels with at least two levels "
