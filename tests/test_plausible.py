@@ -328,3 +328,11 @@ def test_real_file_with_celsius_label_and_month_time(tmp_path):
     # about 100.5 hPa with kelvin (the value); 116.6 hPa came out of the wrong +273.15
     tp = got[("global", "tropical_tropopause_pressure")]
     assert tp["flag"] == "ok" and abs(float(tp["value"]) - 100.5) < 0.1
+
+
+def test_scan_names_the_time_units_line(tmp_path):
+    path = month_file(tmp_path)
+    r = run("scan", path)
+    assert r.exit_code == 0 and '--units time="months since 1988-01-01"' in r.output, r.output
+    r = run("scan", path, "--units", "time=months since 1988-01-01")
+    assert r.exit_code == 0 and "1988-01-01 .. 1988-03-01" in r.output, r.output
