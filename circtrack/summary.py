@@ -43,9 +43,10 @@ def lines(metrics, values, flags, left_out=()):
             out.append(f"circtrack: warning: {m} has no value in any of its {rows} rows; most common flag: {common}")
     if left_out:
         parts = []
-        for fam, ids, roles in left_out:
+        for fam, ids, roles, *hint in left_out:
             adds = " and ".join(f"--var {r}=NAME" for r in roles)
-            parts.append(f"{', '.join(ids)} (need {', '.join(roles)}: add {adds})")
+            more = f", {hint[0]}" if hint and hint[0] else ""
+            parts.append(f"{', '.join(ids)} (need {', '.join(roles)}: add {adds}{more})")
         out.append("circtrack: default metrics left out for want of a variable: " + "; ".join(parts))
     return out, empty
 

@@ -336,3 +336,13 @@ def test_scan_names_the_time_units_line(tmp_path):
     assert r.exit_code == 0 and '--units time="months since 1988-01-01"' in r.output, r.output
     r = run("scan", path, "--units", "time=months since 1988-01-01")
     assert r.exit_code == 0 and "1988-01-01 .. 1988-03-01" in r.output, r.output
+
+
+def test_latitudes_out_of_range_name_units_and_values(tmp_path):
+    ds = make_dataset(1)
+    ds = ds.assign_coords(lat=("lat", ds["lat"].values * 2.0, {"units": "degrees_north"}))
+    path = write(ds, tmp_path / "lat2.nc")
+    line = one_error(run("track", path, "-o", tmp_path / "o.csv"))
+    assert line == (f"circtrack: error: {path}: coordinate 'lat' (lat) says units 'degrees_north' but its values are "
+                    "-180 to 180 degrees_north, outside the plausible -90 to 90 degrees_north for latitude (|lat| > 90); "
+                    "fix the coordinate")

@@ -127,8 +127,13 @@ def available_metrics(files, cfg, overrides, policy, left_out=None):
                                  f"in the file; 'circtrack scan {p}' lists its variables")
         ids = [m.id for f in families().values() if set(f.inputs) <= found for m in f.metrics]
         if left_out is not None:
-            left_out += [(name, [m.id for m in f.metrics], [r for r in f.inputs if r not in found])
-                         for name, f in families().items() if not set(f.inputs) <= found]
+            for name, f in families().items():
+                lacking = [r for r in f.inputs if r not in found]
+                if lacking:
+                    subs = [D.SURFACE_SUBSTITUTES.get(r) for r in lacking]
+                    hint = (f"or --metrics {','.join(m.id for m in f.metrics)} to take "
+                            f"{' and '.join(subs)} on the lowest pressure level" if all(x in found for x in subs) else "")
+                    left_out.append((name, [m.id for m in f.metrics], lacking, hint))
         if not ids:
             roles = sorted({r for f in families().values() for r in f.inputs})
             raise InputError(f"{p}: none of the variables the metrics need ({', '.join(roles)}) was found; "

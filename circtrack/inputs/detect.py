@@ -52,6 +52,7 @@ class Detected:
     layout: dict = field(default_factory=dict)         # notes on the layout, for scan and the sidecar
     stated_levels: dict = field(default_factory=dict)  # variable without a level axis -> (hPa, how it is known)
     near_surface_hpa: float = 900.0                    # run.near_surface_min_hpa
+    lat_units: str = ""                                # latitude's units as stated (or given by --units)
 
 
 def attr_text(obj, name):
@@ -179,6 +180,7 @@ def _read_lat(ds, det, units=None):
         det.problems["lat"] = f"dimension '{det.coords['lat']}' has no coordinate values"
         del det.coords["lat"]
         return
+    det.lat_units = units if units is not None else attr_text(ds[det.coords["lat"]], "units")
     if units is not None:
         _note_override(det, "lat", attr_text(ds[det.coords["lat"]], "units"), units)
         if units.strip().lower() in ("radian", "radians", "rad"):

@@ -106,6 +106,7 @@ def check_coordinate(path, key, name, stated, values):
     else:
         fix = ("if the values are in radians, pass --units lat=radians" if hi - lo <= np.pi + 1e-6
                else "fix the coordinate")
+    what = "latitude (|lat| > 90)" if key == "lat" else what
     raise InputError(f"{path}: coordinate '{name}' ({key}) says units '{stated}' but its values are {lo:.5g} to "
                      f"{hi:.5g} {unit}, outside the plausible {lo_b:g} to {hi_b:g} {unit} for {what}; {fix}")
 

@@ -17,6 +17,7 @@ import numpy as np
 
 from circtrack.errors import InputError
 from circtrack.inputs import model_levels as ML
+from circtrack.inputs import plausible as PL
 from circtrack.inputs import streams as S
 from circtrack.inputs import units as U
 from circtrack.inputs.detect import Detected, attr_text
@@ -131,6 +132,8 @@ def _lat_lon_selection(det):
     """Selections that make latitude ascending and drop repeated longitudes (checked first)."""
     path, c = det.path, det.coords
     lat = det.lat
+    if np.all(np.isfinite(lat)):
+        PL.check_coordinate(path, "lat", c["lat"], det.lat_units, lat)
     if not np.all(np.isfinite(lat)) or np.any(np.abs(lat) > 90.0 + 1e-6):
         raise InputError(f"{path}: latitude '{c['lat']}' has missing or out-of-range values (|lat| > 90); fix the coordinate")
     if np.unique(lat).size != lat.size:
