@@ -134,7 +134,8 @@ def report(paths, cfg, overrides) -> str:
         lacking = [r for r in fam.inputs if r not in joined]
         for m in fam.metrics:
             subs = {r: D.SURFACE_SUBSTITUTES.get(r) for r in lacking}
-            if lacking and all(src in joined for src in subs.values()) and det.plev_hpa is not None:
+            low_enough = det.plev_hpa is not None and np.nanmax(det.plev_hpa) >= det.near_surface_hpa
+            if lacking and all(src in joined for src in subs.values()) and low_enough:
                 lines.append(f"  {m.id:30s} can run when asked for (--metrics {m.id}): "
                              + ", ".join(f"{r} from {src} on the lowest pressure level" for r, src in subs.items()))
             elif lacking:

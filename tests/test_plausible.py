@@ -9,15 +9,11 @@ pressure level below the ground. The real file is Debian's libncarg-data nc4uvt.
 from __future__ import annotations
 
 import csv
-import io
 import json
 import os
 
-import cftime
-import netCDF4
 import numpy as np
 import pytest
-import xarray as xr
 from click.testing import CliRunner
 
 from circtrack import synthetic
@@ -346,3 +342,10 @@ def test_latitudes_out_of_range_name_units_and_values(tmp_path):
     assert line == (f"circtrack: error: {path}: coordinate 'lat' (lat) says units 'degrees_north' but its values are "
                     "-180 to 180 degrees_north, outside the plausible -90 to 90 degrees_north for latitude (|lat| > 90); "
                     "fix the coordinate")
+
+
+def test_scan_offers_the_lowest_level_only_near_the_surface(tmp_path):
+    low = run("scan", surface_file(tmp_path, PLEV)).output
+    assert "surface_westerly_speed" in low and "uas from ua on the lowest pressure level" in low
+    high = run("scan", surface_file(tmp_path, [850.0, 700.0, 500.0, 300.0, 200.0])).output
+    assert "uas from ua on the lowest pressure level" not in high and "cannot run: needs uas" in high

@@ -25,6 +25,7 @@ import numpy as np
 
 from circtrack.errors import InputError
 from circtrack.inputs import units as U
+from circtrack.inputs.rules import VARIABLES
 
 # kind -> (low, high) in the canonical unit of inputs/units.py, and what it is called in messages
 RANGES = {
@@ -136,7 +137,6 @@ def slab_range(arr):
 
 def check_slabs(readers, slabs, units):
     """Every role of a chunk (canonical units) inside its range; the message states the raw values."""
-    from circtrack.inputs.rules import VARIABLES
     for role, arr in slabs.items():
         rd = readers[role]
         lo, hi = slab_range(arr)
