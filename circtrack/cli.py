@@ -7,7 +7,7 @@ import sys
 import click
 
 from circtrack import __version__
-from circtrack.cli_support import OneLineGroup, _fail, guarded, parse_vars, track_options  # noqa: F401
+from circtrack.cli_support import OneLineGroup, _fail, apply_units, guarded, parse_vars, track_options  # noqa: F401
 from circtrack.errors import UsageError
 
 
@@ -19,7 +19,7 @@ def main(debug):
 
 
 def _run_track(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-               repeated_times=None):
+               repeated_times=None, units=(), levels=(), fail_on_empty=False):
     from circtrack import config as C
     from circtrack import engine, guards as G, output as O
     from circtrack.cluster import scheduler_context
@@ -27,7 +27,7 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
 
     if workers and scheduler:
         raise UsageError("--workers and --scheduler exclude each other; give one")
-    cfg = C.load(config)
+    cfg = apply_units(C.load(config), units, levels)
     if repeated_times:
         cfg["run"]["repeated_times"] = repeated_times
     if on_bad_file:
@@ -48,6 +48,8 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
     G.refuse_changed_inputs(stamps)
     O.write(outcome, output, cfg, argv=["circtrack", *sys.argv[1:]])
     prog.done(len(outcome.columns["metric"]))
+    from circtrack import summary
+    summary.report(summary.of_outcome(outcome), click.echo, fail_on_empty)   # also with --quiet
     return outcome
 
 
@@ -63,13 +65,15 @@ def track(**kw):
 @click.argument("paths", nargs=-1, required=True)
 @click.option("-c", "--config", "config", default=None, help="TOML config (for [variables] overrides).")
 @click.option("--var", "variables", multiple=True, metavar="ROLE=NAME")
+@click.option("--units", "units", multiple=True, metavar="ROLE=UNITS", help="As for track.")
+@click.option("--level", "levels", multiple=True, metavar="NAME=HPA", help="As for track.")
 @guarded
-def scan(paths, config, variables):
+def scan(paths, config, variables, units, levels):
     """Show what was found in PATH..., which metrics can run, and what to add for the rest."""
     from circtrack import config as C
     from circtrack.scan import report
 
-    cfg = C.load(config)
+    cfg = apply_units(C.load(config), units, levels)
     click.echo(report(list(paths), cfg, {**cfg.get("variables", {}), **parse_vars(variables)}))
 
 

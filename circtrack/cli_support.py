@@ -91,6 +91,64 @@ def parse_vars(pairs):
     return out
 
 
+UNIT_KEYS_COORDS = ("lat", "plev", "time", "calendar")
+
+
+def apply_units(cfg, pairs=(), levels=()):
+    """``--units ROLE=UNITS`` and ``--level NAME=HPA`` into ``cfg["units"]``/``cfg["levels"]`` (the
+    command line wins over the config); both tables are checked here, one line per mistake."""
+    from circtrack.inputs.rules import VARIABLES
+
+    units = dict(cfg.get("units", {}))
+    for p in pairs:
+        if "=" not in p:
+            raise UsageError(f"--units '{p}': expected ROLE=UNITS, e.g. --units ta=K or "
+                             "--units time=\"months since 1988-01-01\"")
+        key, val = (x.strip() for x in p.split("=", 1))
+        units[key] = val.strip('"').strip("'")
+    for key, val in units.items():
+        if key not in VARIABLES and key not in UNIT_KEYS_COORDS:
+            raise UsageError(f"units for '{key}' (--units or [units]): unknown role; give one of "
+                             f"{' '.join(VARIABLES)} {' '.join(UNIT_KEYS_COORDS)}")
+        if not isinstance(val, str) or (not val.strip() and key != "hus"):
+            raise UsageError(f"units for '{key}' (--units or [units]): expected text, e.g. {key} = \"K\"")
+        _check_known_units(key, val)
+    lev = dict(cfg.get("levels", {}))
+    for p in levels:
+        name, _, val = p.partition("=")
+        try:
+            lev[name.strip()] = float(val)
+        except ValueError:
+            raise UsageError(f"--level '{p}': expected NAME=HPA, the variable's name in the file and its pressure "
+                             "level in hPa, e.g. --level U=300") from None
+    for name, val in lev.items():
+        if isinstance(val, bool) or not isinstance(val, (int, float)) or not 0 < float(val) <= 1100:
+            raise UsageError(f"level of '{name}' (--level or [levels]) = {val!r}: expected a pressure in hPa "
+                             "between 0 and 1100, e.g. U = 300.0")
+    cfg["units"], cfg["levels"] = units, {k: float(v) for k, v in lev.items()}
+    return cfg
+
+
+def _check_known_units(key, val):
+    """Units circtrack cannot read are refused at once (not after opening the files)."""
+    from circtrack.inputs import units as U
+    from circtrack.inputs.rules import VARIABLES
+
+    if key in VARIABLES:
+        kind = VARIABLES[key]["kind"]
+        if U.conversion(val, kind) is None:
+            known = sorted({U.preferred(kind, v) or k[0] for k, v in U.TABLE[kind].items()})
+            raise UsageError(f"--units {key}={val}: not a unit circtrack knows for {kind.replace('_', ' ')}; "
+                             f"known: {', '.join(known)}")
+    elif key == "plev" and U.conversion(val, "pressure") is None:
+        raise UsageError(f"--units plev={val}: expected pressure units (Pa, hPa, kPa)")
+    elif key == "lat" and val.strip().lower() not in ("radians", "radian", "rad", "degrees_north", "degrees",
+                                                       "degree_north"):
+        raise UsageError(f"--units lat={val}: expected degrees_north or radians")
+    elif key == "time" and " since " not in f" {val.lower()} ":
+        raise UsageError(f"--units time={val}: expected a CF time unit, e.g. --units time=\"days since 1979-01-01\"")
+
+
 class OneLineGroup(click.Group):
     """A click group whose usage errors (unknown option, bad choice, missing argument) are one
     ``circtrack: error:`` line with exit status 2, like every other error, not click's usage block."""
@@ -117,6 +175,14 @@ def track_options(fn):
         click.option("-c", "--config", "config", default=None, help="TOML file overriding configs/default.toml."),
         click.option("--var", "variables", multiple=True, metavar="ROLE=NAME",
                      help="Use variable NAME for ROLE (ua va ta zg hus ps uas vas psl pr evspsbl rlut)."),
+        click.option("--units", "units", multiple=True, metavar="ROLE=UNITS",
+                     help="Units replacing what the file says for a role or coordinate (lat, plev; time as a full "
+                          "CF unit, e.g. --units time=\"months since 1988-01-01\"; calendar, e.g. --units "
+                          "calendar=360_day); circtrack never guesses them. Also [units] in the config."),
+        click.option("--level", "levels", multiple=True, metavar="NAME=HPA",
+                     help="Pressure level (hPa) of variable NAME, which has no level axis (e.g. --level U=300); "
+                          "a variable above run.near_surface_min_hpa never stands for a near-surface role. "
+                          "Also [levels] in the config."),
         click.option("--metrics", "metrics", default=None, metavar="ID,...", help="Comma-separated metric ids (default: all)."),
         click.option("--label", default=None, help="Value of the 'source' column (default: derived from the inputs)."),
         click.option("--sector", "sectors", multiple=True, metavar="NAME=LON0:LON1",
@@ -128,7 +194,10 @@ def track_options(fn):
         click.option("--repeated-times", type=click.Choice(["refuse", "keep-first", "keep-last"]), default=None,
                      help="A time step found in two files with different values: refuse (default) or keep the "
                           "one from the file given first/last."),
-        click.option("-q", "--quiet", is_flag=True, help="No progress output."),
+        click.option("-q", "--quiet", is_flag=True, help="No progress output (the end-of-run summary stays)."),
+        click.option("--fail-on-empty", "fail_on_empty", is_flag=True,
+                     help="Exit 1 (after writing the output) when a metric has no value in any row, e.g. for "
+                          "cron or make; the end-of-run summary names it and its most common flag."),
     ]
     for o in reversed(opts):
         fn = o(fn)

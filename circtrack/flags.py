@@ -28,6 +28,9 @@ FLAGS = {
     "weak_peak": "the poleward eddy momentum flux or energy transport peaks below its threshold (eddies.min_momentum_flux_m2_s2, energy.min_transport_pw): the latitude is NaN, the peak value is kept",
     "time_mean_input": "the input's time step exceeds eddies.max_time_step_days (e.g. monthly means): the eddy and energy fluxes contain only the time-mean flow (mean circulation and stationary eddies), the transient eddies are missing; value kept",
     "time_step_unknown": "a single time step, so it is unknown whether transient eddies are resolved; eddy and energy flux value kept",
+    "surface_level_below_ground": "a near-surface wind taken from a pressure level (no uas in the file) is missing "
+                                  "at more than half the latitudes of the search window, mostly because the level "
+                                  "lies below the ground there (surface pressure ps below the level); value is NaN",
     "cells_out_of_order": "the southern cell's minimum lies north of the northern cell's maximum; boundary is NaN",
 }
 
@@ -41,12 +44,21 @@ NOTES = {
                          "metric column_net_mass_flux gives its size",
     "interpolated_level": "a pressure level the metric needs is not in the data and was interpolated linearly in "
                           "log-pressure between the two levels around it",
+    "wind_from_PhPa": "the file has no near-surface wind: ua (va) on the pressure level P hPa, its lowest, stands in "
+                      "for uas (vas); columns where that level is below ground (from ps, when the file has it) are "
+                      "left out",
     "humidity_filled_aloft": "specific humidity is missing above the ground at some levels (e.g. above 300 hPa) and was "
                              "counted as 0 there",
 }
 
 # the old name of a flag, for readers of older outputs (CHANGELOG lists them)
 RENAMED = {"no_zero_crossing": "no_sign_change_in_window"}
+
+
+def note_meaning(note):
+    """What a note means; notes that carry a number (wind_from_1000hPa) share one entry (wind_from_PhPa)."""
+    import re
+    return NOTES.get(note) or NOTES.get(re.sub(r"_\d+(\.\d+)?hPa$", "_PhPa", note), "")
 
 
 def usable(flags):
@@ -79,7 +91,7 @@ def note_summary(times, hemispheres, metrics, flags, values=None, max_listed=100
     summary = {}
     for k, v in sorted(out.items()):
         steps = sorted(v["time_steps"])
-        summary[k] = {"meaning": NOTES.get(k, ""), "rows": v["rows"], "metrics": sorted(v["metrics"]),
+        summary[k] = {"meaning": note_meaning(k), "rows": v["rows"], "metrics": sorted(v["metrics"]),
                       "first_time": steps[0], "last_time": steps[-1], "time_step_count": len(steps)}
         if len(steps) <= max_listed:
             summary[k]["time_steps"] = steps

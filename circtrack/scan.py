@@ -31,17 +31,37 @@ def _grid(det):
     return "; ".join(parts) or "no grid found"
 
 
+def _implausible(ds, det, cfg):
+    """Roles whose sampled values are implausible after unit conversion: role -> the advice line."""
+    from circtrack.inputs import plausible as PL
+    out = {}
+    for role in det.variables:
+        try:
+            reader, _ = D.standardise(ds, det, role, None, cfg)
+            lo, hi = PL.sample_range(reader, ds)
+            PL.check_values(det.path, role, reader.name, det.units.get(role, ""), VARIABLES[role]["kind"],
+                            lo, hi, reader.factor, reader.offset)
+        except InputError as e:
+            if "plausible" in str(e):
+                out[role] = str(e).split(": ", 1)[1]
+    return out
+
+
 def report(paths, cfg, overrides) -> str:
     files = expand(paths)
     lines = []
     dets, bad = [], []
-    det_dims = {}
+    det_dims, implausible = {}, {}
     for p in files:
         try:
             ds = D.open_dataset(p, cfg)
-            dets.append((D.detect(ds, p, overrides), sorted(map(str, ds.data_vars))))
-            det_dims[p] = [str(d) for d in ds.dims]
-            ds.close()
+            try:
+                det = D.detect(ds, p, overrides, cfg)
+                dets.append((det, sorted(map(str, ds.data_vars))))
+                det_dims[p] = [str(d) for d in ds.dims]
+                implausible[p] = _implausible(ds, det, cfg)
+            finally:
+                ds.close()
         except InputError as e:
             bad.append(str(e))
     lines.append(f"{len(files)} input(s), {len(dets)} readable")
@@ -88,7 +108,10 @@ def report(paths, cfg, overrides) -> str:
             if U.conversion(det.units.get(role, ""), rule["kind"]) is None:
                 canon = U.CANONICAL[rule["kind"]]
                 lines.append(f"  {'':8s}   units '{det.units.get(role, '')}' are not understood for {rule['kind'].replace('_', ' ')}: "
-                             f"set them, e.g. ncatted -a units,{det.variables[role]},o,c,'{canon}' {det.path}")
+                             f"set them, e.g. ncatted -a units,{det.variables[role]},o,c,'{canon}' {det.path}, or "
+                             f"if the values are in {canon} add --units {role}='{canon}'")
+            elif role in implausible.get(det.path, {}):
+                lines.append(f"  {'':8s}   IMPLAUSIBLE: {implausible[det.path][role]}")
             if det.others.get(role):
                 lines.append(f"  {'':8s}   to use another, add --var {role}={det.others[role][0]}  or in a config file:  "
                              f"[variables] {role} = \"{det.others[role][0]}\"")
@@ -111,7 +134,8 @@ def report(paths, cfg, overrides) -> str:
         lacking = [r for r in fam.inputs if r not in joined]
         for m in fam.metrics:
             subs = {r: D.SURFACE_SUBSTITUTES.get(r) for r in lacking}
-            if lacking and all(src in joined for src in subs.values()) and det.plev_hpa is not None:
+            low_enough = det.plev_hpa is not None and np.nanmax(det.plev_hpa) >= det.near_surface_hpa
+            if lacking and all(src in joined for src in subs.values()) and low_enough:
                 lines.append(f"  {m.id:30s} can run when asked for (--metrics {m.id}): "
                              + ", ".join(f"{r} from {src} on the lowest pressure level" for r, src in subs.items()))
             elif lacking:

@@ -293,7 +293,7 @@ def undecodable_time_units(tmp_path):
 @case
 def time_without_units(tmp_path):
     p = set_attrs(nc(tmp_path, "bare_time.nc"), "time", units=None, calendar=None)
-    return Case([p], p, "'days since 2000-01-01'")
+    return Case([p], p, '--units time="days since 2000-01-01"')
 
 
 @case

@@ -30,6 +30,9 @@ class Detector:
         self.sector_names = ["zonal"] + [s[0] for s in rp.sectors]
         self.lat = np.sort(info0.detected.lat)
         self.plev = {r: info0.plev[r] for r in rp.plan.roles}
+        # near-surface roles read from a pressure level (inputs/readers.py lowest_level_substitute)
+        self.from_level = {r: rd.from_level_hpa for r, rd in info0.readers.items()
+                           if getattr(rd, "from_level_hpa", None) is not None}
         self.wanted = set(rp.plan.metric_ids)
         self.cols = {k: [] for k in COLUMNS}
 
@@ -45,7 +48,8 @@ class Detector:
         ext = {n: per_sample(a[..., s]) for n, a in reduced["extras"].items()}
         low = {r: per_sample(a[..., s]) for r, a in lowpassed.items()}
         return Fields(lat=self.lat, plev=self.plev, mean=mean, coverage=cov, sector=self.sector_names[s],
-                      extras=ext, info={"time_step_days": self.rp.step_days, "lowpass": low})
+                      extras=ext, info={"time_step_days": self.rp.step_days, "lowpass": low,
+                            "from_level_hpa": self.from_level})
 
     def batch(self, reduced, lowpassed, t0, t1):
         """Every family on every sector of the batch of time steps ``t0:t1``."""

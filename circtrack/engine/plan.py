@@ -95,7 +95,13 @@ def prepare_inputs(files, plan, cfg, overrides, policy):
     joined, unmatched = join_split_variables(partial, plan)
     infos += joined
     for e in unmatched:
-        skip_or_raise(e, e.info.path, policy, skipped)
+        path = e.info.path
+        ref = next((i for i in infos + [x.info for x in partial] if i.path != path), None)
+        mixed = mixed_datasets(e.info.detected, ref.detected) if ref is not None else None
+        err = e if not mixed else InputError(
+            f"{path}: belongs to another dataset than {ref.path} ({mixed}) and lacks {', '.join(e.missing)}; "
+            "run each dataset on its own (one circtrack track per dataset)")
+        skip_or_raise(err, path, policy, skipped)
     if not infos:
         raise InputError(f"{files[0]}: no usable input among {len(files)} file(s); see the messages above")
     check_consistent(infos)
@@ -144,6 +150,20 @@ def join_split_variables(partial, plan):
                                         if p != first.path]}
         infos.append(FileInfo(first.path, det, readers, plevs))
     return infos, errors
+
+
+def mixed_datasets(a, b):
+    """What tells two detections apart as different datasets (grid, calendar, source), or None."""
+    diffs = []
+    if a.lat is not None and b.lat is not None and (a.lat.size != b.lat.size or a.lon.size != b.lon.size):
+        diffs.append(f"grid {a.lat.size}x{a.lon.size} vs {b.lat.size}x{b.lon.size} latitudes x longitudes")
+    if calendar_name(a.calendar) != calendar_name(b.calendar):
+        diffs.append(f"calendar '{a.calendar}' vs '{b.calendar}'")
+    for k in ("source_id", "title", "institution"):
+        if a.attrs.get(k) and b.attrs.get(k) and a.attrs[k] != b.attrs[k]:
+            diffs.append(f"{k} '{a.attrs[k]}' vs '{b.attrs[k]}'")
+            break
+    return "; ".join(diffs) or None
 
 
 def check_consistent(infos):
@@ -280,7 +300,8 @@ class RunPlan:
         inf = self.infos[k]
         return {"path": inf.path, "cfg": self.cfg, "readers": inf.readers, "t0": a, "t1": b,
                 "masks": self.masks_of[k], "lon": np.asarray(inf.detected.lon, float),
-                "lat": np.sort(np.asarray(inf.detected.lat, float)), "reducers": self.plan.reducers}
+                "lat": np.sort(np.asarray(inf.detected.lat, float)), "reducers": self.plan.reducers,
+                "check": a == 0, "units": inf.detected.units}   # plausibility: on each file's first chunk
 
     def tasks(self):
         """The dask.delayed reduce calls of every chunk; building them reads nothing."""

@@ -39,11 +39,11 @@ def prepare_file(path, plan, cfg, overrides):
         ds.close()
 
 
-def _detect(ds, path, overrides):
+def _detect(ds, path, overrides, cfg=None):
     """Detection, with time values that cannot be decoded (a fill value such as 9.97e36 in the
     time coordinate overflows the date arithmetic) as one line naming the file."""
     try:
-        return D.detect(ds, path, overrides)
+        return D.detect(ds, path, overrides, cfg)
     except (OverflowError, OutOfBoundsError) as e:
         raise InputError(f"{path}: the time values cannot be decoded ({' '.join(str(e).split())}); a time value "
                          "may be missing or a fill value (e.g. 9.97e36): fix the time coordinate, or pass "
@@ -51,7 +51,7 @@ def _detect(ds, path, overrides):
 
 
 def _prepare_open(ds, path, plan, cfg, overrides):
-    det = _detect(ds, path, overrides)
+    det = _detect(ds, path, overrides, cfg)
     D.require_axes(det)
     D.check_grid(ds, det)
     info = FileInfo(path, det)
@@ -88,13 +88,19 @@ def detect_only(path, cfg, overrides):
     """What a file holds (coordinates, variables), opened and closed again."""
     ds = D.open_dataset(path, cfg)
     try:
-        return _detect(ds, path, overrides)
+        det = _detect(ds, path, overrides, cfg)
+        if "lat" in det.coords:
+            D.check_grid(ds, det)          # e.g. one pressure level: said before "no variable found"
+        return det
     finally:
         ds.close()
 
 
-def available_metrics(files, cfg, overrides, policy):
-    """Without --metrics: every metric whose inputs the first readable file holds."""
+def available_metrics(files, cfg, overrides, policy, left_out=None):
+    """Without --metrics: every metric whose inputs the first readable file holds.
+
+    ``left_out`` (a list) receives ``(family, metric ids, missing roles)`` for each family left out,
+    for the end-of-run summary and the sidecar."""
     for p in files:
         try:
             det = detect_only(p, cfg, overrides)
@@ -120,6 +126,14 @@ def available_metrics(files, cfg, overrides, policy):
                 raise InputError(f"{p}: variable '{name}' given for {role} (--var {role}={name} or [variables]) is not "
                                  f"in the file; 'circtrack scan {p}' lists its variables")
         ids = [m.id for f in families().values() if set(f.inputs) <= found for m in f.metrics]
+        if left_out is not None:
+            for name, f in families().items():
+                lacking = [r for r in f.inputs if r not in found]
+                if lacking:
+                    subs = [D.SURFACE_SUBSTITUTES.get(r) for r in lacking]
+                    hint = (f"or --metrics {','.join(m.id for m in f.metrics)} to take "
+                            f"{' and '.join(subs)} on the lowest pressure level" if all(x in found for x in subs) else "")
+                    left_out.append((name, [m.id for m in f.metrics], lacking, hint))
         if not ids:
             roles = sorted({r for f in families().values() for r in f.inputs})
             raise InputError(f"{p}: none of the variables the metrics need ({', '.join(roles)}) was found; "

@@ -21,6 +21,7 @@ import time as _time
 import numpy as np
 
 from circtrack.inputs import dataset as D
+from circtrack.inputs.plausible import check_slabs
 
 def _zonal_block(block, masks):
     """Zonal statistics of one chunk ``(..., lon)`` -> ``(..., S, 2)``: mean of valid, valid share.
@@ -141,6 +142,8 @@ def reduce_chunk(job):
             for p in paths:
                 _forget(p)
             raise
+    if job.get("check"):           # values in their physical range (inputs/plausible.py): first time step only
+        check_slabs(job["readers"], slabs, job.get("units", {}))
     stats = {role: _zonal_block(a, job["masks"]) for role, a in slabs.items()}
     extras = {}
     if job["reducers"]:

@@ -40,9 +40,13 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
     run = Run(paths, cfg, stdin=stdin, **kw)          # plans: coordinates and attributes only
     groups = P.member_groups(run.infos)
     if not groups:
-        return run.execute()
-    labels = sorted(groups)
-    return merge_members(labels, [Run(groups[m], cfg, **kw).execute() for m in labels], run.skipped)
+        out = run.execute()
+    else:
+        labels = sorted(groups)
+        out = merge_members(labels, [Run(groups[m], cfg, **kw).execute() for m in labels], run.skipped)
+    if run.left_out:
+        out.provenance["metrics_left_out"] = run.left_out
+    return out
 
 
 def check_label(label):
@@ -81,8 +85,9 @@ class Run:
         sectors = merge_sectors(sectors, cfg)
         files = locate(paths, stdin=stdin)
         policy = on_bad_file or cfg["run"]["on_bad_file"]
+        self.left_out = []                 # default metrics left out: (family, ids, missing roles)
         if metric_ids is None:
-            metric_ids = available_metrics(files, cfg, overrides, policy)
+            metric_ids = available_metrics(files, cfg, overrides, policy, self.left_out)
         plan = P.Plan.make(metric_ids, cfg, sectors)
         for role in all_levels:            # e.g. the cross-section: [u] on every level, not just 200/850 hPa
             plan.roles[role] = None

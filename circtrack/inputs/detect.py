@@ -11,12 +11,14 @@ axis is read as decoded by :mod:`circtrack.inputs.times`.
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from circtrack.errors import InputError
 from circtrack.inputs import model_levels as ML
+from circtrack.inputs import plausible as P
 from circtrack.inputs import streams as S
 from circtrack.inputs import times as T
 from circtrack.inputs import units as U
@@ -48,6 +50,9 @@ class Detected:
     streams: dict | None = None                        # expver-like data streams (final / provisional)
     lon_keep: np.ndarray | None = None                 # longitude indices kept (repeated longitudes dropped)
     layout: dict = field(default_factory=dict)         # notes on the layout, for scan and the sidecar
+    stated_levels: dict = field(default_factory=dict)  # variable without a level axis -> (hPa, how it is known)
+    near_surface_hpa: float = 900.0                    # run.near_surface_min_hpa
+    lat_units: str = ""                                # latitude's units as stated (or given by --units)
 
 
 def attr_text(obj, name):
@@ -91,30 +96,39 @@ def _find_coord(ds, key, taken=()):
     return None, ""
 
 
-def detect(ds, path, overrides=None) -> Detected:
+def detect(ds, path, overrides=None, cfg=None) -> Detected:
     """Find coordinates and every role the rules know; nothing is read except coordinates.
 
     ``overrides`` maps roles (and the coordinates ``time``, ``lat``, ``lon``, ``plev``) to names.
+    From ``cfg``: ``[units]`` maps roles and ``lat``/``plev`` to units that replace the file's
+    (``--units``; ``time`` and ``calendar`` are applied when the file is opened); ``[levels]`` gives
+    the pressure level of variables without a level axis (``--level``), and
+    ``run.near_surface_min_hpa`` says which data may stand for a near-surface role.
     """
     overrides = overrides or {}
+    cfg = cfg or {}
+    units = {k: str(v) for k, v in cfg.get("units", {}).items()}
     det = Detected(path=path, attrs={k: str(v) for k, v in ds.attrs.items()
                                      if k in ("source_id", "experiment_id", "variant_label", "member_id", "realization",
                                               "ensemble_member", "title", "institution")})
     _detect_coords(ds, det, overrides)
     if "lat" in det.coords:
-        _read_lat(ds, det)
+        _read_lat(ds, det, units.get("lat"))
     if "lon" in det.coords:
         _read_lon(ds, det)
     if "time" in det.coords:
         _read_time(ds, det)
     if "plev" in det.coords:
-        _read_vertical(ds, det)
+        _read_vertical(ds, det, units.get("plev"))
     S.detect_streams(ds, det)
     core = {det.coords.get(k) for k in ("time", "lat", "lon", "plev")} - {None}
     if det.streams and det.streams["kind"] == "dim":
         core.add(det.streams["name"])
+    det.near_surface_hpa = float(cfg.get("run", {}).get("near_surface_min_hpa", 900.0))
+    det.stated_levels = stated_levels(ds, det, cfg.get("levels", {}))
     for role, rule in VARIABLES.items():
         _detect_role(ds, det, role, rule, overrides.get(role))
+    _apply_units(det, units)
     _suggest(ds, det)
     extra = set()
     for role, name in det.variables.items():
@@ -146,13 +160,34 @@ def _detect_coords(ds, det, overrides):
             taken.append(name)
 
 
-def _read_lat(ds, det):
+def _apply_units(det, units):
+    """Units given with --units/[units] replace the file's for roles; each override is recorded."""
+    for role, u in units.items():
+        if role in VARIABLES and role in det.variables:
+            _note_override(det, role, det.units.get(role, ""), u)
+            det.units[role] = u
+            det.why[role] = det.why.get(role, "") + f"; units '{u}' given by --units/[units]"
+
+
+def _note_override(det, key, was, now):
+    det.layout.setdefault("units_overrides", {})[key] = {"in_file": was, "used": now}
+
+
+def _read_lat(ds, det, units=None):
     """Latitudes in degrees (radians converted); a dimension without values is a problem, not a latitude."""
     det.lat = np.asarray(ds[det.coords["lat"]].values, dtype=float) if det.coords["lat"] in ds.variables else None
     if det.lat is None:
         det.problems["lat"] = f"dimension '{det.coords['lat']}' has no coordinate values"
         del det.coords["lat"]
-    elif _in_radians(ds[det.coords["lat"]]):
+        return
+    det.lat_units = units if units is not None else attr_text(ds[det.coords["lat"]], "units")
+    if units is not None:
+        _note_override(det, "lat", attr_text(ds[det.coords["lat"]], "units"), units)
+        if units.strip().lower() in ("radian", "radians", "rad"):
+            det.lat = np.rad2deg(det.lat)
+            det.coord_why["lat"] = det.coord_why.get("lat", "") + " (radians by --units, converted to degrees)"
+        return
+    if _in_radians(ds[det.coords["lat"]]):
         det.lat = np.rad2deg(det.lat)
         det.coord_why["lat"] = det.coord_why.get("lat", "") + " (values in radians, converted to degrees)"
 
@@ -185,12 +220,31 @@ def _read_time(ds, det):
     note = T.year_zero_note(ds, det.coords["time"], attr_text(tv, "units") or tv.encoding.get("units", ""))
     if note:
         det.why["time"] = note
+    given = T.given_time_note(ds, det.coords["time"])
+    if given:
+        det.why["time"] = given
+        det.layout.setdefault("units_overrides", {})["time"] = given
     if det.times.size and not hasattr(det.times.flat[0], "calendar"):
         raise InputError(f"{path}: time variable '{det.coords['time']}' has no decodable units "
-                         f"('{attr_text(tv, 'units')}'); give it CF units such as 'days since 2000-01-01'")
+                         f"('{attr_text(tv, 'units')}'); pass its CF units, e.g. --units time=\"days since "
+                         f"2000-01-01\" (or time = \"...\" under [units] in a config file), with the reference "
+                         f"date the file means{_time_hint(tv)}")
 
 
-def _read_vertical(ds, det):
+def _time_hint(tv):
+    """A reading of the time variable's own words (long_name) that names its reference, if any."""
+    import re
+    text = " ".join(attr_text(tv, k) for k in ("long_name", "units", "description"))
+    m = re.search(r"(month|day|hour|year)s?\s+since\s+([A-Za-z]{3})[a-z]*\.?\s+(\d{4})", text, re.I)
+    months = "jan feb mar apr may jun jul aug sep oct nov dec".split()
+    if m and m.group(2).lower()[:3] in months:
+        unit, mon, year = m.group(1).lower(), months.index(m.group(2).lower()[:3]) + 1, m.group(3)
+        return (f"; its long_name reads '{attr_text(tv, 'long_name')}', which would be "
+                f"--units time=\"{unit}s since {year}-{mon:02d}-01\"")
+    return ""
+
+
+def _read_vertical(ds, det, units=None):
     """Pressure levels in hPa (units checked, or by magnitude when there are none), or hybrid coefficients."""
     pv = ds[det.coords["plev"]]
     if (attr_text(pv, "standard_name") in ML.HYBRID_STANDARD_NAMES
@@ -198,6 +252,9 @@ def _read_vertical(ds, det):
         _detect_hybrid(ds, det, det.coords["plev"])
         return
     det.plev_units = attr_text(pv, "units")
+    if units is not None:
+        _note_override(det, "plev", det.plev_units, units)
+        det.plev_units = units
     conv = U.conversion(det.plev_units, "pressure")
     if conv is None and det.plev_units.strip():
         # units that are not pressure (e.g. 'degC', or '1' for model levels): never guess
@@ -211,6 +268,10 @@ def _read_vertical(ds, det):
         det.plev_units = "Pa (by magnitude)" if conv[0] == 0.01 else "hPa (by magnitude)"
     if conv is not None:
         det.plev_hpa = np.round(np.asarray(pv.values, float) * conv[0], 6)
+        try:
+            P.check_coordinate(det.path, "plev", det.coords["plev"], det.plev_units, det.plev_hpa)
+        except InputError as e:
+            det.problems["plev"] = str(e).split(": ", 1)[1]
 
 
 def _detect_hybrid(ds, det, name):
@@ -283,6 +344,12 @@ def _detect_role(ds, det, role, rule, override):
             det.problems[role] = (f"variable '{override}' given for {role} is not in the file; "
                                   f"variables there: {', '.join(map(str, ds.data_vars))}")
             return
+        aloft = above_surface(det, override) if role in NEAR_SURFACE_ROLES else None
+        if aloft:
+            raise InputError(f"{det.path}: variable '{override}' given for {role} (--var/[variables]) lies at {aloft}, "
+                             f"above run.near_surface_min_hpa ({det.near_surface_hpa:g} hPa), so it is not a "
+                             f"near-surface {VARIABLES[role]['long'].replace('near-surface ', '')}; give a variable "
+                             "near the surface, or leave the metrics that need it out (--metrics)")
         det.variables[role], det.why[role] = override, "set by --var/config"
         det.units[role] = attr_text(ds[override], "units")
         return
@@ -292,6 +359,8 @@ def _detect_role(ds, det, role, rule, override):
         if lat not in dims or lon not in dims:
             return False
         has_lev = plev is not None and plev in dims and ds.sizes[plev] > 1
+        if not rule["levels"] and role in NEAR_SURFACE_ROLES and above_surface(det, name):
+            return False
         return has_lev if rule["levels"] else not has_lev
 
     found, wrong_shape = [], []
@@ -311,6 +380,11 @@ def _detect_role(ds, det, role, rule, override):
         if wrong_shape and role not in det.problems:
             names = ", ".join(f"'{c[2]}' {tuple(map(str, ds[c[2]].dims))}" for c in wrong_shape)
             need = "pressure levels" if rule["levels"] else "no level axis"
+            aloft = [f"'{c[2]}' lies at {above_surface(det, c[2])}" for c in wrong_shape
+                     if role in NEAR_SURFACE_ROLES and above_surface(det, c[2])]
+            if aloft:
+                need = (f"data near the surface, at or below run.near_surface_min_hpa = {det.near_surface_hpa:g} hPa; "
+                        + ", ".join(aloft))
             if lat is None or lon is None:
                 need = "latitude and longitude axes"
             det.problems[role] = f"{names} matched by name but not by shape ({role} needs {need})"
@@ -333,6 +407,47 @@ def _detect_role(ds, det, role, rule, override):
     det.units[role] = attr_text(ds[best[2]], "units")
 
 
+NEAR_SURFACE_ROLES = ("uas", "vas")
+_LEVEL_WORDS = re.compile(r"(\d+(?:\.\d+)?)\s*(hpa|mb|mbar|millibars?)\b", re.I)
+
+
+def stated_levels(ds, det, given):
+    """``{variable: (hPa, how it is known)}`` for variables without a level axis whose pressure level is
+    known: ``--level``/``[levels]``, a one-value level axis or scalar pressure coordinate, or the words
+    of its long_name ("300 hPa"), which only ever keep it away from near-surface roles."""
+    out = {}
+    plev = det.coords.get("plev")
+    for name in ds.data_vars:
+        v = ds[name]
+        if name in given:
+            out[str(name)] = (float(given[name]), f"--level {name}={float(given[name]):g}")
+            continue
+        if plev is not None and plev in v.dims and ds.sizes[plev] == 1 and det.plev_hpa is not None:
+            out[str(name)] = (float(det.plev_hpa[0]), f"its one-value level axis '{plev}'")
+            continue
+        for c in v.coords:
+            cv = ds[c]
+            if cv.ndim == 0 and c != det.coords.get("time"):
+                conv = U.conversion(attr_text(cv, "units"), "pressure")
+                if conv is not None and (attr_text(cv, "standard_name") == "air_pressure" or c in COORDS["plev"]["names"]):
+                    out[str(name)] = (float(cv.values) * conv[0], f"its scalar coordinate '{c}'")
+                    break
+        else:
+            m = _LEVEL_WORDS.search(attr_text(v, "long_name") + " " + attr_text(v, "level") + " " + str(name))
+            if m:
+                out[str(name)] = (float(m.group(1)), f"its long_name '{attr_text(v, 'long_name')}'")
+    return out
+
+
+def above_surface(det, name):
+    """"300 hPa (its long_name ...)" when variable ``name`` is known to lie above
+    run.near_surface_min_hpa, else None."""
+    got = det.stated_levels.get(str(name))
+    if got is None or got[0] >= det.near_surface_hpa:
+        return None
+    return f"{got[0]:g} hPa ({got[1]})"
+
+
 def _suggest(ds, det):
     """For roles not found: unassigned variables whose units and shape fit, as the exact line to add."""
     lat, lon, plev = det.coords.get("lat"), det.coords.get("lon"), det.coords.get("plev")
@@ -350,6 +465,8 @@ def _suggest(ds, det):
             has_lev = plev is not None and plev in v.dims and ds.sizes[plev] > 1
             if has_lev != rule["levels"] or U.conversion(attr_text(v, "units"), rule["kind"]) is None:
                 continue
+            if role in NEAR_SURFACE_ROLES and above_surface(det, name):
+                continue                       # a wind aloft never stands for a near-surface wind
             if not attr_text(v, "units"):          # no units: "fits" any dimensionless kind, too weak a hint
                 continue
             if rule["kind"] != "speed" and U.conversion(attr_text(v, "units"), "speed") is not None:
@@ -360,5 +477,9 @@ def _suggest(ds, det):
             lines = " or ".join(f"--var {role}={n}" for n in fits)
             hint = (f"{', '.join(repr(n) for n in fits)} {'fits' if len(fits) == 1 else 'fit'} by units and "
                     f"shape ({where}): {lines}")
+            if role in NEAR_SURFACE_ROLES:
+                hint += (f" if {'it is' if len(fits) == 1 else 'they are'} near the surface (nothing in the file "
+                         f"says at which height; a wind aloft is no {role}: say its level with --level "
+                         f"{fits[0]}=HPA)")
             det.problems[role] = (f"{det.problems[role]}; {hint}" if role in det.problems
                                   else f"no name or standard_name matched; {hint}")

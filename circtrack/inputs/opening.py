@@ -123,8 +123,11 @@ def open_dataset(path, cfg) -> xr.Dataset:
     if os.path.isfile(path) and os.path.getsize(path) == 0:
         raise InputError(f"{path}: the file is empty; re-copy or re-download it, or pass --on-bad-file skip")
     if os.path.isfile(path):
+        _check_format(path)
         _check_classic_complete(path)
     coder = xr.coders.CFDatetimeCoder(use_cftime=True)
+    if {"time", "calendar"} & set(cfg.get("units", {})):
+        return T.open_with_time_units(path, engine, extra, cfg, coder)
     try:
         # no pandas indexes: circtrack only reads coordinate values, and building indexes
         # took two thirds of the time of opening a small file
@@ -155,6 +158,41 @@ def open_dataset(path, cfg) -> xr.Dataset:
 
 
 _CLASSIC_MAGIC = (b"CDF\x01", b"CDF\x02")
+_HDF5_MAGIC = b"\x89HDF\r\n\x1a\n"
+
+
+def _check_format(path):
+    """A file that is neither netCDF (classic or HDF5-based) nor HDF5 nor GRIB: say so, with what it looks like.
+
+    The signatures: netCDF classic 'CDF' + version byte; HDF5 (netCDF-4) its 8-byte signature at
+    offset 0, 512, 1024, ...; GRIB 'GRIB' near the start (some archives put a header before it)."""
+    try:
+        f = open(path, "rb")
+    except OSError:
+        return                               # unreadable: the opening below names it
+    with f:
+        head = f.read(4096)
+        if head[:3] == b"CDF" or b"GRIB" in head[:1024] or head[:4] == b"\x89HDF":
+            return
+        off = 512
+        size = os.path.getsize(path)
+        while off < min(size, 1 << 20):
+            f.seek(off)
+            if f.read(8) == _HDF5_MAGIC:
+                return
+            off *= 2
+    text = head[:200]
+    try:
+        shown = text.decode("utf-8").strip().splitlines()[0][:40] if text.strip() else ""
+        looks = f"it begins like text: '{shown}'" if shown and shown.isprintable() else ""
+    except (UnicodeDecodeError, IndexError):
+        looks = ""
+    if not looks:
+        kinds = {b"PK\x03\x04": "a ZIP archive", b"\x1f\x8b": "a gzip file", b"BZh": "a bzip2 file",
+                 b"\xfd7zXZ": "an xz file", b"%PDF": "a PDF document", b"\x89PNG": "a PNG image"}
+        looks = next((f"it is {k}" for m, k in kinds.items() if head.startswith(m)), "its first bytes match none of them")
+    raise InputError(f"{path}: not netCDF, HDF5, Zarr or GRIB at all ({looks}); give circtrack the data files "
+                     "themselves (unpack archives first) or leave this file out, or pass --on-bad-file skip")
 
 
 def _check_classic_complete(path):

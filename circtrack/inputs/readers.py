@@ -17,6 +17,7 @@ import numpy as np
 
 from circtrack.errors import InputError
 from circtrack.inputs import model_levels as ML
+from circtrack.inputs import plausible as PL
 from circtrack.inputs import streams as S
 from circtrack.inputs import units as U
 from circtrack.inputs.detect import Detected, attr_text
@@ -112,7 +113,10 @@ def check_grid(ds, det):
     if det.plev_hpa is not None and det.vertical != "hybrid":
         p = np.asarray(det.plev_hpa, dtype=float).ravel()
         dim = det.coords.get("plev")
-        on_level = [n for n in det.variables.values() if n in ds.variables and dim in ds[n].dims]
+        # detected variables first; a wind on one level aloft is no longer taken for a near-surface role,
+        # so the other variables on the axis count too
+        on_level = [n for n in [*det.variables.values(), *map(str, ds.data_vars)] if n in ds.variables
+                    and dim in ds[n].dims]
         if p.size == 1 and on_level:
             raise InputError(f"{path}: variable '{on_level[0]}' has a single pressure level ({p[0]:g} hPa on "
                              f"'{dim}'); circtrack reads variables on pressure levels with at least two levels "
@@ -128,6 +132,8 @@ def _lat_lon_selection(det):
     """Selections that make latitude ascending and drop repeated longitudes (checked first)."""
     path, c = det.path, det.coords
     lat = det.lat
+    if np.all(np.isfinite(lat)):
+        PL.check_coordinate(path, "lat", c["lat"], det.lat_units, lat)
     if not np.all(np.isfinite(lat)) or np.any(np.abs(lat) > 90.0 + 1e-6):
         raise InputError(f"{path}: latitude '{c['lat']}' has missing or out-of-range values (|lat| > 90); fix the coordinate")
     if np.unique(lat).size != lat.size:
@@ -211,7 +217,8 @@ def _surface_reader(ds, det, name):
     path, c = det.path, det.coords
     if name not in ds.variables or c["lat"] not in ds[name].dims or c["lon"] not in ds[name].dims \
             or c["time"] not in ds[name].dims:
-        raise InputError(f"{path}: surface pressure '{name}' (formula_terms of '{det.hybrid['name']}') needs time, "
+        why = f"formula_terms of '{det.hybrid['name']}'" if det.hybrid else "to tell ground from air"
+        raise InputError(f"{path}: surface pressure '{name}' ({why}) needs time, "
                          "latitude and longitude axes; put a ps(time, lat, lon) field into the file")
     conv = U.conversion(attr_text(ds[name], "units") or "Pa", "pressure")
     if conv is None:
@@ -238,24 +245,40 @@ def lowest_level_substitute(ds, det, role, cfg):
     """A reader for ``role`` (e.g. uas) made from the highest-pressure level of its 3-D counterpart
     (ua), or None. ``det.variables``/``det.why`` record the substitution for the sidecar.
 
+    Only a level at or below ``run.near_surface_min_hpa`` stands in (common practice: the lowest
+    level, usually 1000 or 925 hPa, for the surface). Where the file holds the surface pressure ps,
+    columns whose ground lies above that level (ps < level: the level is below ground) are missing
+    in the read, so they never count as surface; ``from_level_hpa`` tells the families the level.
     On hybrid sigma-pressure levels that is the lowest model level (the highest reference pressure),
     read as it is: it follows the ground in every column, where a fixed pressure may lie below it."""
     src = SURFACE_SUBSTITUTES.get(role)
     if src is None or src not in det.variables or det.plev_hpa is None or not np.isfinite(det.plev_hpa).any():
         return None
     p = float(np.nanmax(det.plev_hpa))
+    limit = float(cfg["run"].get("near_surface_min_hpa", 900.0))
+    if p < limit:
+        det.problems[role] = (f"the lowest level of {src} ('{det.variables[src]}', {p:g} hPa) lies above "
+                              f"run.near_surface_min_hpa ({limit:g} hPa), so it cannot stand for {role}")
+        return None
     reader, _ = standardise(ds, det, src, [p], cfg)
     plev_dim = det.coords["plev"]
     k = int(np.flatnonzero(det.plev_hpa == p)[0])
+    ground = None
+    if det.vertical != "hybrid" and "ps" in det.variables and det.coords["plev"] not in ds[det.variables["ps"]].dims:
+        ground = _surface_reader(ds, det, det.variables["ps"])
     reader = dataclasses.replace(reader, role=role, dims=[d for d in reader.dims if d != plev_dim],
-                                 selection={**reader.selection, plev_dim: k}, plev=None, hybrid=None)
+                                 selection={**reader.selection, plev_dim: k}, plev=None, hybrid=None,
+                                 from_level_hpa=p, ground=ground)
     det.variables[role] = det.variables[src]
     det.units[role] = det.units.get(src, "")
     if det.vertical == "hybrid":
         kind, where = "model", f"'{det.variables[src]}' on {plev_dim} index {k}, at {p:g} hPa for a surface at 1000 hPa"
     else:
         kind, where = "pressure", f"'{det.variables[src]}' at {p:g} hPa"
-    det.why[role] = f"no near-surface wind in the file: the lowest {kind} level of {src} ({where}) stands in for {role}"
+    masked = (f"; columns where the surface pressure '{det.variables['ps']}' is below {p:g} hPa (the level is "
+              "below ground) are left out") if ground is not None else ""
+    det.why[role] = (f"no near-surface wind in the file: the lowest {kind} level of {src} ({where}) stands in for "
+                     f"{role}{masked}")
     return reader
 
 
@@ -287,6 +310,8 @@ class RoleReader:
     ntime: int = 0
     stream: dict | None = None      # {"kind": "dim", "order", "final"} | {"kind": "coord"|"scalar", "name"}
     hybrid: dict | None = None      # {"a", "b", "p0", "ps": RoleReader, "targets_pa"}
+    from_level_hpa: float | None = None   # a near-surface role read from this pressure level
+    ground: "RoleReader | None" = None    # surface pressure: points where the level is below ground -> NaN
 
     def read(self, ds, t0, t1):
         return self.read_noted(ds, t0, t1)[0]
@@ -300,7 +325,8 @@ class RoleReader:
         one by one (each level is a whole HDF5 chunk in usual layouts, so nothing is decoded twice).
         Fill and missing values become NaN in place, as CF decoding would do.
         """
-        if self.stream is not None or self.hybrid is not None or self.name not in nc.variables:
+        if self.stream is not None or self.hybrid is not None or self.ground is not None \
+                or self.name not in nc.variables:
             return None
         var = nc.variables[self.name]
         if var.dtype.kind != "f" or any(a in var.ncattrs() for a in ("scale_factor", "add_offset")):
@@ -364,6 +390,11 @@ class RoleReader:
             p = ML.column_pressure(h["a"], h["b"], ps_pa, h["p0"])
             arr = ML.interpolate_log_p(arr, p, h["targets_pa"], axis=-3)
             notes = S.merge_notes([notes, ps_notes])
+        if self.ground is not None:
+            ps = np.asarray(self.ground.read_noted(ds, t0, t1)[0], dtype=np.float64)
+            if ps.ndim < arr.ndim:
+                ps = ps.reshape(ps.shape[:1] + (1,) * (arr.ndim - ps.ndim) + ps.shape[1:])
+            arr = np.where(ps < self.from_level_hpa, np.nan, arr)
         return arr, notes
 
 

@@ -45,6 +45,68 @@ def reopen_undecoded(path, engine, extra, cfg, coder, msg):
     return None
 
 
+def open_with_time_units(path, engine, extra, cfg, coder):
+    """Open with the time axis's units and/or calendar replaced by ``--units time=...`` /
+    ``--units calendar=...`` (``[units]`` in a config), then decode as usual ("months since" too).
+
+    The time variable is the one named by ``--var time=NAME``, else the first of the usual names
+    present. Its units and calendar as given in the file are kept in ``time_units_in_file``."""
+    from circtrack.inputs.rules import COORDS
+    given = cfg.get("units", {})
+    try:
+        ds = xr.open_dataset(path, engine=engine, chunks=None, cache=False, decode_times=False,
+                             decode_timedelta=False, create_default_indexes=False, **extra)
+    except (ValueError, OSError, RuntimeError, KeyError, IndexError, TypeError) as e:
+        raise InputError(f"{path}: cannot be opened with the {engine} engine ({str(e).splitlines()[0]}); check "
+                         "that it is a complete netCDF/Zarr file, or pass --on-bad-file skip")
+    named = cfg.get("variables", {}).get("time")
+    candidates = [named] if named else COORDS["time"]["names"]
+    name = next((n for n in candidates if n in ds.variables), None)
+    if name is None:
+        ds.close()
+        raise InputError(f"{path}: --units time/calendar given but no time variable found (looked for "
+                         f"{', '.join(candidates)}); name it with --var time=NAME")
+    var = ds[name]
+    was = {"units": str(var.attrs.get("units", "")), "calendar": str(var.attrs.get("calendar", ""))}
+    attrs = dict(var.attrs)
+    if "time" in given:
+        attrs["units"] = str(given["time"])
+    if "calendar" in given:
+        attrs["calendar"] = str(given["calendar"])
+    ds[name] = xr.Variable(var.dims, var.values, attrs)
+    ds.attrs[_GIVEN_MARK] = f"{name}|{was['units']}|{was['calendar']}"
+    if " since " not in attrs.get("units", "").lower():
+        ds.close()
+        raise InputError(f"{path}: --units time='{attrs.get('units', '')}' is not a CF time unit; give e.g. "
+                         "--units time=\"days since 1979-01-01\" or --units time=\"months since 1988-01-01\"")
+    try:
+        return _decode_times_ourselves(ds, path, cfg, coder)
+    except InputError:
+        ds.close()
+        raise
+    except (ValueError, OverflowError) as e:
+        ds.close()
+        raise InputError(f"{path}: the time axis cannot be decoded with --units time='{attrs.get('units', '')}' "
+                         f"calendar '{attrs.get('calendar', 'standard')}' ({str(e).splitlines()[0]}); check the "
+                         "--units time and --units calendar values")
+
+
+_GIVEN_MARK = "_circtrack_time_units_given"
+
+
+def given_time_note(ds, name):
+    """For ``scan`` and the sidecar: the time axis's units/calendar replaced by --units, or None."""
+    mark = str(ds.attrs.get(_GIVEN_MARK, ""))
+    if not mark or mark.split("|")[0] != name:
+        return None
+    _, units, calendar = mark.split("|", 2)
+    var = ds[name]
+    now_u = var.encoding.get("units", var.attrs.get("units", ""))
+    now_c = var.encoding.get("calendar", var.attrs.get("calendar", "standard"))
+    return (f"time units '{now_u}' calendar '{now_c}' given by --units/[units] (the file says units '{units}'"
+            f"{f', calendar {calendar!r}' if calendar else ''})")
+
+
 def year_zero_note(ds, name, units):
     """How time variable ``name`` was decoded when it counts from year 0, for ``scan`` and the
     sidecar (``why['time']``); None for every other time axis."""

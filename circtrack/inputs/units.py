@@ -36,6 +36,20 @@ _TABLE = {
 }
 
 
+TABLE = _TABLE          # read by inputs/plausible.py (which spellings would make a range plausible)
+
+
+def preferred(kind, factor_offset):
+    """The spelling shown in advice for a conversion: the canonical unit, or the table's first spelling."""
+    if tuple(factor_offset) == (1.0, 0.0):
+        return CANONICAL[kind]
+    for keys, v in _TABLE[kind].items():
+        if v == tuple(factor_offset):
+            return {"degc": "degC", "gkg-1": "g kg-1", "kpa": "kPa", "cms-1": "cm s-1", "pa": "Pa", "mm/day": "mm day-1",
+                    "m2s-2": "m2 s-2", "km/h": "km h-1"}.get(keys[0], keys[0])
+    return None
+
+
 def _norm(s: str) -> str:
     return "".join(ch for ch in str(s).strip().lower() if ch not in " .*^_") if s is not None else ""
 

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from circtrack.metrics.common import HEMISPHERES, crossing, hemisphere_view, peak, signed
+from circtrack.metrics.common import HEMISPHERES, add_note, crossing, hemisphere_view, peak, signed
 from circtrack.registry import Metric, Result, register_family
 
 WIND_REF = ("Kang & Polvani (2011) J. Climate 24, 563-568 (the surface-wind zero between trades and westerlies); "
@@ -27,8 +27,10 @@ _RULES = ("; points with fewer than run.min_coverage of the longitudes valid are
 
 # uas, or without it (and only when these metrics are asked for with --metrics) ua on the lowest
 # pressure level; the sidecar's found_by says which (inputs/dataset.py lowest_level_substitute)
-_UAS = ("; [uas] is the zonal-mean near-surface wind, or ua on the lowest pressure level when the file has no uas "
-        "and the metric is asked for (the sidecar says which)")
+_UAS = ("; [uas] is the zonal-mean near-surface wind, or ua on the lowest pressure level (at or below "
+        "run.near_surface_min_hpa) when the file has no uas and the metric is asked for: then each row's flag notes "
+        "the level (ok;wind_from_1000hPa), columns where ps says the level is below ground are left out, and a "
+        "window mostly below ground gives NaN flagged surface_level_below_ground")
 WIND_METRICS = [
     Metric("surface_wind_zero_lat", "Edge between the trade winds and the surface westerlies", "degrees_north",
            "hemisphere", "first zero of [uas] poleward of the tropical easterly minimum (searched in "
@@ -60,6 +62,7 @@ def compute_winds(fields, cfg):
     n = fields.n
     out = {m.id: Result.empty(n, 2) for m in WIND_METRICS}
     u = fields.masked("uas", cfg)
+    level = fields.info.get("from_level_hpa", {}).get("uas")
     for h, hemi in enumerate(HEMISPHERES):
         idx, x = hemisphere_view(fields.lat, hemi)
         y = u[:, idx]
@@ -68,7 +71,27 @@ def compute_winds(fields, cfg):
         crossing(out["surface_wind_zero_lat"], h, hemi, y, x, trade, direction="up")
         west = peak(y, x, s["westerlies_window"], cfg, None, out["surface_westerly_speed"], h)
         crossing(out["polar_easterly_edge_lat"], h, hemi, y, x, west, direction="down")
+        if level is not None:
+            cov = fields.coverage["uas"][:, idx]
+            for window, ids in ((s["trades_window"], ("trade_wind_speed", "surface_wind_zero_lat")),
+                                (s["westerlies_window"], ("surface_westerly_speed", "polar_easterly_edge_lat"))):
+                below = below_ground(cov, x, window, cfg)
+                for mid in ids:
+                    out[mid].value[below, h] = np.nan
+                    out[mid].flag[below, h] = "surface_level_below_ground"
+    if level is not None:
+        add_note(out.values(), f"wind_from_{level:g}hPa")
     return out
+
+
+def below_ground(cov, x, window, cfg):
+    """``(N,)``: the pressure level standing in for the surface is missing (below ground, or no data)
+    at more than half the latitudes of the search window (common practice: a level counts as surface
+    only where it lies above the ground; the rule is the project's)."""
+    inside = (x >= window[0]) & (x <= window[1])
+    if not inside.any():
+        return np.zeros(cov.shape[0], bool)
+    return np.mean(cov[:, inside] < cfg["run"]["min_coverage"], axis=1) > 0.5
 
 
 @register_family("subtropical_highs", inputs=("psl",), levels=lambda cfg: {"psl": None}, sectors=True,

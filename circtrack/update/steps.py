@@ -75,6 +75,7 @@ class Update:
     notes: dict = field(default_factory=dict)
     base_prov: dict = field(default_factory=dict)
     processed: list = field(default_factory=list)
+    left_out: list = field(default_factory=list)   # default metrics left out for want of a variable
 
     @property
     def old_files(self):
@@ -82,7 +83,8 @@ class Update:
 
 
 def run_update(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file,
-               quiet, rebuild=False, repeated_times=None, stdin=None, echo=None):
+               quiet, rebuild=False, repeated_times=None, stdin=None, echo=None, units=(), levels=(),
+               fail_on_empty=False):
     """Bring OUT up to date with ``paths``; returns the new state (None when nothing was new)."""
     from circtrack import output as O
 
@@ -90,7 +92,7 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
     from circtrack.engine.locate import locate
 
     u = options(output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-                repeated_times, echo or click.echo)
+                repeated_times, echo or click.echo, units, levels)
     target = O.check_output_path(u.output, beside_names=("provenance.json", "state.json", "lock"), stream_ok=False)
     G.refuse_data_file_as_output(u.output)
     if os.path.islink(u.output):
@@ -118,16 +120,18 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
             u.echo(f"circtrack: updated {u.output}: {len(u.processed)} file(s) processed, "
                    f"{len(u.ab) - len(u.processed)} kept, {len(u.removed)} removed, {len(u.blocks)} time steps",
                    err=True)
+        from circtrack import summary
+        summary.report(summary.of_csv(text, u.left_out), u.echo, fail_on_empty)   # also with --quiet
         return new_state
     finally:
         os.close(lock_fd)
 
 
 def options(output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-            repeated_times, echo):
+            repeated_times, echo, units=(), levels=()):
     """The command's options checked and combined with the config, as ``circtrack track`` does."""
     from circtrack import config as C
-    from circtrack.cli_support import parse_vars
+    from circtrack.cli_support import apply_units, parse_vars
     from circtrack.engine.sectors import merge_sectors, parse_sector
     from circtrack.guards import check_cli_labels
 
@@ -135,7 +139,7 @@ def options(output, config, variables, metrics, label, sectors, workers, schedul
         raise UsageError("update needs an output file (-o OUT.csv), not stdout; the state lives beside it")
     if workers and scheduler:
         raise UsageError("--workers and --scheduler exclude each other; give one")
-    cfg = C.load(config)
+    cfg = apply_units(C.load(config), units, levels)
     user_ids = [m.strip() for m in metrics.split(",") if m.strip()] if metrics else None
     secs = [parse_sector(s) for s in sectors]
     check_cli_labels(label, sectors, secs)
@@ -214,7 +218,8 @@ def read_new_files(u):
 
     u.ids = u.user_ids
     if u.ids is None:
-        u.ids = u.state["metrics"] if u.state else engine.available_metrics(u.files, u.cfg, u.overrides, u.policy)
+        u.ids = u.state["metrics"] if u.state else engine.available_metrics(u.files, u.cfg, u.overrides, u.policy,
+                                                                             u.left_out)
     plan = engine.Plan.make(u.ids, u.cfg, u.all_secs)
     u.roles = plan.roles
     old_files = u.old_files

@@ -40,7 +40,9 @@ def test_hadley_rossby_number_through_the_engine(tmp_path):
     lon = np.arange(0, 360, 30.0)
     plev = [1000, 850, 700, 500, 300, 250, 200, 150, 100]
     ds = synthetic.dataset(lat, lon, plev, synthetic.monthly_times(2001, 1)[:1], wave_amplitude=0.0)
-    um = np.where(np.abs(lat) <= 40, angular_momentum_wind(lat), 0.0)
+    # inside 40 deg only (250.6 m/s at 40 deg would be refused as implausible, inputs/plausible.py; the
+    # metric sees the latitudes inside the Hadley edge, ~30 deg, only)
+    um = np.where(np.abs(lat) < 40, angular_momentum_wind(lat), 0.0)
     upper = np.isin(plev, [300, 250, 200, 150])
     ds["ua"][:, upper, :, :] = um[None, None, :, None]
     path = tmp_path / "am.nc"
@@ -61,7 +63,11 @@ def test_hadley_rossby_number_changes_smoothly_as_the_edge_crosses_a_grid_latitu
         ds = synthetic.dataset(lat, lon, plev, synthetic.monthly_times(2001, 1)[:1], wave_amplitude=0.0,
                                cell_zeros=(-60.0, -30.0, 5.0, nh_edge, 62.0))
         # a wind whose Rossby number grows poleward, so the band at 28 deg matters
-        ds["ua"][:, 4:8, :, :] = (0.5 * angular_momentum_wind(lat) * (1 + np.abs(lat) / 30.0))[None, None, :, None]
+        # (poleward of 36 deg held at 0: the growing wind there, 272 m/s at 39 deg and 1e19 m/s at the pole
+        # rows, would be refused as implausible, inputs/plausible.py; the metric sees the latitudes inside
+        # the Hadley edge only)
+        u = 0.5 * angular_momentum_wind(lat) * (1 + np.abs(lat) / 30.0)
+        ds["ua"][:, 4:8, :, :] = np.where(np.abs(lat) < 36, u, 0.0)[None, None, :, None]
         path = tmp_path / f"e{nh_edge}.nc"
         ds.to_netcdf(path, encoding=synthetic.time_encoding())
         out = engine.track([str(path)], config.load(), metric_ids=["hadley_edge_lat", "hadley_rossby_number"])

@@ -30,7 +30,10 @@ def test_lowest_level_stands_in_for_uas(tmp_path):
     cfg = config.load()
     a = engine.track([levels_only], cfg, metric_ids=WIND, label="L")
     b = engine.track([with_uas], cfg, metric_ids=WIND, label="L")
-    assert csv_rows(a) == csv_rows(b)
+    # the same values and flags; the rows from the lowest level also say so (issue 13: ';wind_from_1000hPa')
+    assert [r.replace(";wind_from_1000hPa", "") for r in csv_rows(a)] == csv_rows(b)
+    assert all(r.endswith(";wind_from_1000hPa") for r in csv_rows(a) if ",NaN," not in r)
+    assert not any("wind_from" in r for r in csv_rows(b))
     # the closed form: u = 0 where sin(6 |lat|) = 0, i.e. at 30 deg (trades to westerlies) and
     # 60 deg (westerlies to polar easterlies), in both hemispheres
     c = a.columns
