@@ -1,0 +1,253 @@
+"""Inputs in object storage (circtrack/inputs/remote.py) against a local S3-compatible server.
+
+The server is moto's server mode on 127.0.0.1 (tests/object_store.py); ``auth`` checks
+signatures, so wrong credentials are refused as by a real service. Every test that reads also
+checks that nothing was written into the bucket.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+
+import numpy as np
+import pytest
+import xarray as xr
+
+pytest.importorskip("s3fs")
+pytest.importorskip("moto")
+
+from circtrack import config as C  # noqa: E402
+from circtrack import synthetic  # noqa: E402
+from circtrack.errors import InputError  # noqa: E402
+from circtrack.inputs import remote as R  # noqa: E402
+
+from .conftest import CALENDAR, LAT, LON, PLEV  # noqa: E402
+from .object_store import LocalS3  # noqa: E402
+
+BUCKET = "circ-test-data"
+
+
+def month_file(path, k, nt=2):
+    """File k holds months k*nt .. k*nt+nt-1 counted from January 2000 (noleap)."""
+    times = synthetic.monthly_times(2000, 10, CALENDAR)[k * nt:(k + 1) * nt]
+    ds = synthetic.dataset(LAT, LON, PLEV, times, edge_nh=30.0 + k)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    ds.to_netcdf(str(path), encoding={**synthetic.time_encoding(CALENDAR),
+                                      **{v: {"zlib": True, "complevel": 1, "chunksizes": (1, 1, LAT.size, LON.size)} for v in ("ua", "va")}})
+    return path
+
+
+@pytest.fixture(scope="session")
+def local_data(tmp_path_factory):
+    """Three netCDF4 files, a netCDF classic file and a Zarr store on disk."""
+    d = tmp_path_factory.mktemp("objects")
+    files = [month_file(d / "era" / f"uv_{k:02d}.nc", k) for k in range(3)]
+    classic = d / "classic.nc"
+    synthetic.dataset(LAT, LON, PLEV, synthetic.monthly_times(2000, 1, CALENDAR)[:1]).to_netcdf(
+        str(classic), format="NETCDF3_64BIT", encoding=synthetic.time_encoding(CALENDAR))
+    store = d / "store.zarr"
+    synthetic.dataset(LAT, LON, PLEV, synthetic.monthly_times(2000, 1, CALENDAR)[:2]).to_zarr(
+        str(store), encoding=synthetic.time_encoding(CALENDAR), mode="w", zarr_format=2)
+    return {"files": files, "classic": classic, "store": store}
+
+
+def _fill(server, data):
+    server.make_bucket(BUCKET)
+    for f in data["files"]:
+        server.put(BUCKET, f"reanalysis/daily/{f.name}", f)
+    server.put(BUCKET, "reanalysis/daily/README.txt", data["files"][0].parent.parent / "classic.nc")
+    server.put(BUCKET, "other/classic.nc", data["classic"])
+    server.put_tree(BUCKET, "stores/uv.zarr", data["store"])
+    return server
+
+
+@pytest.fixture(scope="session")
+def s3(local_data):
+    """A signing server (wrong credentials refused) holding the test bucket."""
+    server = LocalS3(auth=True)
+    try:
+        yield _fill(server, local_data)
+    finally:
+        server.stop()
+
+
+@pytest.fixture(scope="session")
+def open_s3(local_data):
+    """A server that serves unsigned requests too (public bucket, plain HTTP GETs)."""
+    server = LocalS3(auth=False)
+    try:
+        yield _fill(server, local_data)
+    finally:
+        server.stop()
+
+
+@pytest.fixture
+def aws(s3, monkeypatch):
+    for k in [k for k in os.environ if k.startswith("AWS_")]:
+        monkeypatch.delenv(k)
+    for k, v in s3.env().items():
+        monkeypatch.setenv(k, v)
+    before = s3.listing(BUCKET)
+    yield s3
+    assert s3.listing(BUCKET) == before          # nothing written into the bucket
+
+
+def cfg(**storage):
+    c = C.load(None)
+    c["storage"] = {**c.get("storage", {}), **storage}
+    return c
+
+
+# --------------------------------------------------------------------------- locating
+def test_prefix_is_searched_like_a_directory(aws):
+    got = R.expand_url(f"s3://{BUCKET}/", cfg())
+    assert got == [f"s3://{BUCKET}/other/classic.nc", f"s3://{BUCKET}/reanalysis/daily/uv_00.nc",
+                   f"s3://{BUCKET}/reanalysis/daily/uv_01.nc", f"s3://{BUCKET}/reanalysis/daily/uv_02.nc",
+                   f"s3://{BUCKET}/stores/uv.zarr"]
+    # without the trailing slash a prefix that is no object is a directory too; README.txt is no data
+    assert R.expand_url(f"s3://{BUCKET}/reanalysis", cfg()) == got[1:4]
+
+
+def test_glob_single_object_and_store(aws):
+    assert R.expand_url(f"s3://{BUCKET}/reanalysis/daily/uv_0[12].nc", cfg()) == \
+        [f"s3://{BUCKET}/reanalysis/daily/uv_01.nc", f"s3://{BUCKET}/reanalysis/daily/uv_02.nc"]
+    assert R.expand_url(f"s3://{BUCKET}/*/*/*.nc", cfg()) == [f"s3://{BUCKET}/reanalysis/daily/uv_0{k}.nc"
+                                                               for k in range(3)]
+    one = f"s3://{BUCKET}/reanalysis/daily/uv_01.nc"
+    assert R.expand_url(one, cfg()) == [one]
+    assert R.expand_url(f"s3://{BUCKET}/stores/uv.zarr/", cfg()) == [f"s3://{BUCKET}/stores/uv.zarr"]
+
+
+@pytest.mark.parametrize("url, words", [
+    ("s3://no-such-bucket-here/data/", ["bucket 'no-such-bucket-here' does not exist", "127.0.0.1"]),
+    ("s3://no-such-bucket-here/data/x.nc", ["bucket 'no-such-bucket-here' does not exist"]),
+    (f"s3://{BUCKET}/reanalysis/monthly/", ["no such object or prefix", BUCKET]),
+    (f"s3://{BUCKET}/reanalysis/daily/uv_99.nc", ["no such object or prefix"]),
+    (f"s3://{BUCKET}/reanalysis/daily/*.grib", ["matches no netCDF file or Zarr store"]),
+    (f"s3://{BUCKET}/stores/missing.zarr", ["no such Zarr store"]),
+])
+def test_missing_bucket_key_and_pattern(aws, url, words):
+    with pytest.raises(InputError) as e:
+        R.expand_url(url, cfg())
+    msg = str(e.value)
+    assert "\n" not in msg and msg.startswith(url)
+    for w in words:
+        assert w in msg
+
+
+def test_wrong_credentials_one_line(aws, monkeypatch):
+    import fsspec
+
+    monkeypatch.setenv("AWS_SECRET_ACCESS_KEY", "not-the-secret")
+    fsspec.filesystem("s3").clear_instance_cache()       # a new filesystem picks up the environment
+    try:
+        with pytest.raises(InputError) as e:
+            R.expand_url(f"s3://{BUCKET}/reanalysis/", cfg())
+    finally:
+        fsspec.filesystem("s3").clear_instance_cache()
+    assert "access denied" in str(e.value) and "AWS_SECRET_ACCESS_KEY" in str(e.value)
+    assert "\n" not in str(e.value)
+
+
+def test_missing_extra_names_the_install_command(monkeypatch):
+    monkeypatch.setitem(sys.modules, "s3fs", None)       # import s3fs now raises ImportError
+    with pytest.raises(InputError) as e:
+        R.expand_url(f"s3://{BUCKET}/reanalysis/", cfg())
+    assert "pip install 'circtrack[cloud]'" in str(e.value)
+
+
+# --------------------------------------------------------------------------- reading
+def _open(url, c):
+    target, engine, kw, close = R.open_target(url, c)
+    ds = xr.open_dataset(target, engine=engine, chunks=None, cache=False, decode_times=False, **kw)
+    return ds, close
+
+
+def test_netcdf_object_reads_the_same_values_in_byte_ranges(aws, local_data):
+    url = f"s3://{BUCKET}/reanalysis/daily/uv_01.nc"
+    target, engine, kw, close = R.open_target(url, cfg(block_bytes=16384, cached_blocks=4))
+    assert engine == "h5netcdf"
+    ds = xr.open_dataset(target, engine=engine, chunks=None, cache=False, decode_times=False, **kw)
+    try:
+        ds["ua"][0, 0].values                               # one time step of one level
+        size = local_data["files"][1].stat().st_size
+        assert 0 < target.cache.total_requested_bytes < size / 2     # byte ranges, not the whole object
+        assert target.cache.maxblocks == 4 and target.blocksize == 16384
+        with xr.open_dataset(local_data["files"][1], engine="netcdf4", decode_times=False) as ref:
+            for v in ("ua", "va", "time", "lat"):
+                np.testing.assert_array_equal(ds[v].values, ref[v].values)
+    finally:
+        ds.close()
+        close()
+
+
+def test_zarr_store_opens_natively(aws, local_data):
+    ds, close = _open(f"s3://{BUCKET}/stores/uv.zarr", cfg())
+    with xr.open_zarr(local_data["store"], decode_times=False) as ref:
+        np.testing.assert_array_equal(ds["ua"].values, ref["ua"].values)
+    ds.close()
+
+
+def test_classic_netcdf_needs_a_local_copy(aws, local_data, tmp_path):
+    url = f"s3://{BUCKET}/other/classic.nc"
+    with pytest.raises(InputError, match="--cache-dir"):
+        R.open_target(url, cfg())
+    cache = tmp_path / "cache"
+    c = cfg(cache_dir=str(cache))
+    path, engine, _, _ = R.open_target(url, c)
+    assert os.path.dirname(path) == str(cache) and engine == "netcdf4"
+    assert open(path, "rb").read() == local_data["classic"].read_bytes()
+    assert R.open_target(url, c)[0] == path                 # the copy is reused
+    assert [p for p in os.listdir(cache) if p.endswith(".tmp")] == []
+
+
+def test_object_record_changes_with_the_object(aws, local_data, tmp_path):
+    key = "scratch/grow.nc"
+    url = f"s3://{BUCKET}/{key}"
+    aws.put(BUCKET, key, local_data["files"][0])
+    try:
+        a = R.object_record(url, cfg())
+        assert a["size"] == local_data["files"][0].stat().st_size and a["etag"]
+        assert R.object_record(url, cfg()) == a
+        aws.put(BUCKET, key, local_data["files"][1])
+        assert R.object_record(url, cfg()) != a
+        store = R.object_record(f"s3://{BUCKET}/stores/uv.zarr", cfg())
+        assert store["size"] > 0 and len(store["etag"]) == 64
+    finally:
+        aws.client.delete_object(Bucket=BUCKET, Key=key)
+
+
+# --------------------------------------------------------------------------- public buckets, HTTP
+def test_anonymous_reads_a_public_bucket(open_s3, monkeypatch):
+    for k in [k for k in os.environ if k.startswith("AWS_")]:
+        monkeypatch.delenv(k)
+    c = cfg(anonymous=True, endpoint_url=open_s3.endpoint)
+    before = open_s3.listing(BUCKET)
+    assert R.expand_url(f"s3://{BUCKET}/reanalysis/", c) == [f"s3://{BUCKET}/reanalysis/daily/uv_0{k}.nc"
+                                                             for k in range(3)]
+    ds, close = _open(f"s3://{BUCKET}/reanalysis/daily/uv_00.nc", c)
+    assert ds["ua"].shape[0] == 2
+    ds.close()
+    close()
+    assert open_s3.listing(BUCKET) == before
+
+
+def test_https_file_and_zarr_store(open_s3, local_data):
+    base = f"{open_s3.endpoint}/{BUCKET}"
+    url = f"{base}/reanalysis/daily/uv_02.nc"
+    assert R.expand_url(url, cfg()) == [url]
+    ds, close = _open(url, cfg())
+    with xr.open_dataset(local_data["files"][2], engine="netcdf4", decode_times=False) as ref:
+        np.testing.assert_array_equal(ds["va"].values, ref["va"].values)
+    ds.close()
+    close()
+    rec = R.object_record(url, cfg())
+    assert rec["size"] == local_data["files"][2].stat().st_size and rec["etag"]
+    ds, close = _open(f"{base}/stores/uv.zarr", cfg())
+    assert ds["ua"].shape[0] == 2
+    ds.close()
+    with pytest.raises(InputError, match="HTTP 404"):
+        R.expand_url(f"{base}/reanalysis/daily/uv_77.nc", cfg())
+    with pytest.raises(InputError, match="no listing"):
+        R.expand_url(f"{base}/reanalysis/daily/*.nc", cfg())
