@@ -35,8 +35,8 @@ ZARR_SUFFIX = ".zarr"
 # the first bytes of a netCDF classic file (CDF-1, CDF-2, CDF-5): its reader needs the whole file
 _CLASSIC_MAGIC = (b"CDF\x01", b"CDF\x02", b"CDF\x05")
 
-DEFAULTS = {"anonymous": False, "endpoint_url": "", "cache_dir": "", "block_bytes": 4 * 2 ** 20,
-            "cached_blocks": 16}
+DEFAULTS = {"anonymous": False, "endpoint_url": "", "cache_dir": "", "block_bytes": 16 * 2 ** 20,
+            "cached_blocks": 4}
 
 
 def is_url(path) -> bool:
