@@ -208,8 +208,7 @@ class LocalObjectStore:
             sock.bind(("127.0.0.1", 0))
             self.port = sock.getsockname()[1]
         self.endpoint = f"http://127.0.0.1:{self.port}"
-        exe = Path(sys.executable).with_name("moto_server")
-        self.proc = subprocess.Popen([str(exe), "-H", "127.0.0.1", "-p", str(self.port)],
+        self.proc = subprocess.Popen([sys.executable, "-m", "moto.server", "-H", "127.0.0.1", "-p", str(self.port)],
                                      stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         deadline = time.monotonic() + 30
         while True:

@@ -1,6 +1,6 @@
 """A local S3-compatible server for the object-storage tests (moto's server mode on 127.0.0.1).
 
-:class:`LocalS3` starts ``moto_server`` as a subprocess on a free port. With ``auth=True`` it
+:class:`LocalS3` starts ``python -m moto.server`` as a subprocess on a free port. With ``auth=True`` it
 checks signatures against its own IAM: the first three requests (no credentials needed) create a
 user allowed everything and its access key, and every later request must be signed with that
 key, so wrong credentials are refused as by a real service. With ``auth=False`` every request is
@@ -37,9 +37,8 @@ class LocalS3:
         env = {k: v for k, v in os.environ.items() if not k.startswith("AWS_")}
         if auth:
             env["INITIAL_NO_AUTH_ACTION_COUNT"] = "3"
-        exe = Path(sys.executable).with_name("moto_server")
-        self.proc = subprocess.Popen([str(exe), "-H", "127.0.0.1", "-p", str(self.port)], env=env,
-                                     stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        self.proc = subprocess.Popen([sys.executable, "-m", "moto.server", "-H", "127.0.0.1", "-p", str(self.port)],
+                                     env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         deadline = time.monotonic() + 30
         while True:
             try:
