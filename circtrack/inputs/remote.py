@@ -153,13 +153,11 @@ def _has_glob(text):
     return any(ch in text for ch in "*?[")
 
 
-def _data_suffix(name):
-    from circtrack.inputs.files import SUFFIXES
-
-    return os.path.splitext(name)[1].lower() in SUFFIXES
+def _data_suffix(name, suffixes):
+    return os.path.splitext(name.rstrip("/"))[1].lower() in suffixes
 
 
-def _inputs_below(keys, root):
+def _inputs_below(keys, root, suffixes):
     """Data objects and Zarr stores among object keys below ``root`` (a store counts once, at its
     root; objects inside a store are not inputs of their own)."""
     found = []
@@ -170,13 +168,13 @@ def _inputs_below(keys, root):
         store = next((i for i, part in enumerate(parts[:-1]) if part.lower().endswith(ZARR_SUFFIX)), None)
         if store is not None:
             found.append(posixpath.join(root, *parts[:store + 1]) if rel else root)
-        elif _data_suffix(parts[-1]) and not parts[-1].lower().endswith(ZARR_SUFFIX):
+        elif _data_suffix(parts[-1], suffixes) and not parts[-1].lower().endswith(ZARR_SUFFIX):
             found.append(key)
     return sorted(dict.fromkeys(found))
 
 
-def expand_url(arg, cfg):
-    """The inputs named by one URL, in sorted order.
+def expand_url(arg, cfg, suffixes):
+    """The inputs named by one URL, in sorted order (``suffixes``: those of data files, e.g. ``.nc``).
 
     ``s3://bucket/prefix/`` (or a prefix without the slash that is no object): every netCDF/HDF5/GRIB
     object and Zarr store below it, like a local directory; ``s3://bucket/path/*.nc``: a glob;
@@ -198,7 +196,7 @@ def expand_url(arg, cfg):
         matches = _call(arg, cfg, fs.glob, path)
         found = []
         for m in matches:
-            if m.lower().rstrip("/").endswith(ZARR_SUFFIX) or _data_suffix(m):
+            if m.lower().rstrip("/").endswith(ZARR_SUFFIX) or _data_suffix(m, suffixes):
                 found.append(m.rstrip("/"))
         if not found:
             _call(arg, cfg, fs.ls, path.split("/", 1)[0])     # a missing bucket says so
@@ -218,11 +216,9 @@ def expand_url(arg, cfg):
     if not keys:
         _call(arg, cfg, fs.ls, root.split("/", 1)[0])           # a missing bucket says so
         raise InputError(f"{arg}: no such object or prefix in bucket '{_bucket(arg)}'; check the path")
-    found = _inputs_below(keys, root)
+    found = _inputs_below(keys, root, suffixes)
     if not found:
-        from circtrack.inputs.files import SUFFIXES
-
-        raise InputError(f"{arg}: the prefix holds no data files ({', '.join(SUFFIXES[:4])}, ...) or Zarr stores; "
+        raise InputError(f"{arg}: the prefix holds no data files ({', '.join(suffixes[:4])}, ...) or Zarr stores; "
                          "point to the objects or a prefix that holds them")
     return ["s3://" + k for k in found]
 

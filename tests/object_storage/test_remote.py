@@ -12,28 +12,29 @@ import xarray as xr
 
 from circtrack.errors import InputError
 from circtrack.inputs import remote as R
+from circtrack.inputs.files import SUFFIXES
 
 from .conftest import BUCKET, cfg
 
 
 # --------------------------------------------------------------------------- locating
 def test_prefix_is_searched_like_a_directory(aws):
-    got = R.expand_url(f"s3://{BUCKET}/", cfg())
+    got = R.expand_url(f"s3://{BUCKET}/", cfg(), SUFFIXES)
     assert got == [f"s3://{BUCKET}/other/classic.nc", f"s3://{BUCKET}/reanalysis/daily/uv_00.nc",
                    f"s3://{BUCKET}/reanalysis/daily/uv_01.nc", f"s3://{BUCKET}/reanalysis/daily/uv_02.nc",
                    f"s3://{BUCKET}/stores/uv.zarr"]
     # without the trailing slash a prefix that is no object is a directory too; README.txt is no data
-    assert R.expand_url(f"s3://{BUCKET}/reanalysis", cfg()) == got[1:4]
+    assert R.expand_url(f"s3://{BUCKET}/reanalysis", cfg(), SUFFIXES) == got[1:4]
 
 
 def test_glob_single_object_and_store(aws):
-    assert R.expand_url(f"s3://{BUCKET}/reanalysis/daily/uv_0[12].nc", cfg()) == \
+    assert R.expand_url(f"s3://{BUCKET}/reanalysis/daily/uv_0[12].nc", cfg(), SUFFIXES) == \
         [f"s3://{BUCKET}/reanalysis/daily/uv_01.nc", f"s3://{BUCKET}/reanalysis/daily/uv_02.nc"]
-    assert R.expand_url(f"s3://{BUCKET}/*/*/*.nc", cfg()) == [f"s3://{BUCKET}/reanalysis/daily/uv_0{k}.nc"
+    assert R.expand_url(f"s3://{BUCKET}/*/*/*.nc", cfg(), SUFFIXES) == [f"s3://{BUCKET}/reanalysis/daily/uv_0{k}.nc"
                                                                for k in range(3)]
     one = f"s3://{BUCKET}/reanalysis/daily/uv_01.nc"
-    assert R.expand_url(one, cfg()) == [one]
-    assert R.expand_url(f"s3://{BUCKET}/stores/uv.zarr/", cfg()) == [f"s3://{BUCKET}/stores/uv.zarr"]
+    assert R.expand_url(one, cfg(), SUFFIXES) == [one]
+    assert R.expand_url(f"s3://{BUCKET}/stores/uv.zarr/", cfg(), SUFFIXES) == [f"s3://{BUCKET}/stores/uv.zarr"]
 
 
 @pytest.mark.parametrize("url, words", [
@@ -46,7 +47,7 @@ def test_glob_single_object_and_store(aws):
 ])
 def test_missing_bucket_key_and_pattern(aws, url, words):
     with pytest.raises(InputError) as e:
-        R.expand_url(url, cfg())
+        R.expand_url(url, cfg(), SUFFIXES)
     msg = str(e.value)
     assert "\n" not in msg and msg.startswith(url)
     for w in words:
@@ -60,7 +61,7 @@ def test_wrong_credentials_one_line(aws, monkeypatch):
     fsspec.filesystem("s3").clear_instance_cache()       # a new filesystem picks up the environment
     try:
         with pytest.raises(InputError) as e:
-            R.expand_url(f"s3://{BUCKET}/reanalysis/", cfg())
+            R.expand_url(f"s3://{BUCKET}/reanalysis/", cfg(), SUFFIXES)
     finally:
         fsspec.filesystem("s3").clear_instance_cache()
     assert "access denied" in str(e.value) and "AWS_SECRET_ACCESS_KEY" in str(e.value)
@@ -70,7 +71,7 @@ def test_wrong_credentials_one_line(aws, monkeypatch):
 def test_missing_extra_names_the_install_command(monkeypatch):
     monkeypatch.setitem(sys.modules, "s3fs", None)       # import s3fs now raises ImportError
     with pytest.raises(InputError) as e:
-        R.expand_url(f"s3://{BUCKET}/reanalysis/", cfg())
+        R.expand_url(f"s3://{BUCKET}/reanalysis/", cfg(), SUFFIXES)
     assert "pip install 'circtrack[cloud]'" in str(e.value)
 
 
@@ -141,7 +142,7 @@ def test_anonymous_reads_a_public_bucket(open_s3, monkeypatch):
         monkeypatch.delenv(k)
     c = cfg(anonymous=True, endpoint_url=open_s3.endpoint)
     before = open_s3.listing(BUCKET)
-    assert R.expand_url(f"s3://{BUCKET}/reanalysis/", c) == [f"s3://{BUCKET}/reanalysis/daily/uv_0{k}.nc"
+    assert R.expand_url(f"s3://{BUCKET}/reanalysis/", c, SUFFIXES) == [f"s3://{BUCKET}/reanalysis/daily/uv_0{k}.nc"
                                                              for k in range(3)]
     ds, close = _open(f"s3://{BUCKET}/reanalysis/daily/uv_00.nc", c)
     assert ds["ua"].shape[0] == 2
@@ -153,7 +154,7 @@ def test_anonymous_reads_a_public_bucket(open_s3, monkeypatch):
 def test_https_file_and_zarr_store(open_s3, local_data):
     base = f"{open_s3.endpoint}/{BUCKET}"
     url = f"{base}/reanalysis/daily/uv_02.nc"
-    assert R.expand_url(url, cfg()) == [url]
+    assert R.expand_url(url, cfg(), SUFFIXES) == [url]
     ds, close = _open(url, cfg())
     with xr.open_dataset(local_data["files"][2], engine="netcdf4", decode_times=False) as ref:
         np.testing.assert_array_equal(ds["va"].values, ref["va"].values)
@@ -165,6 +166,6 @@ def test_https_file_and_zarr_store(open_s3, local_data):
     assert ds["ua"].shape[0] == 2
     ds.close()
     with pytest.raises(InputError, match="HTTP 404"):
-        R.expand_url(f"{base}/reanalysis/daily/uv_77.nc", cfg())
+        R.expand_url(f"{base}/reanalysis/daily/uv_77.nc", cfg(), SUFFIXES)
     with pytest.raises(InputError, match="no listing"):
-        R.expand_url(f"{base}/reanalysis/daily/*.nc", cfg())
+        R.expand_url(f"{base}/reanalysis/daily/*.nc", cfg(), SUFFIXES)
