@@ -278,8 +278,8 @@ def open_target(url, cfg):
     """What xarray opens for ``url``: ``(target, engine, open_kwargs, close)``.
 
     Zarr stores: the URL itself with ``storage_options`` (zarr reads one object per chunk). Other
-    objects: a local copy when ``[storage] cache_dir`` is set (opened with the configured engine,
-    like any local file), else an fsspec file object read by h5netcdf in blocks of
+    objects: the path of a whole-object local copy when ``[storage] cache_dir`` is set (engine
+    None: open it like any local file), else an fsspec file object read by h5netcdf in blocks of
     ``block_bytes`` (at most ``cached_blocks`` kept). ``close`` releases the file object.
     """
     if is_store(url):
@@ -287,8 +287,8 @@ def open_target(url, cfg):
         _require(url, scheme)
         return url.rstrip("/"), "zarr", {"storage_options": storage_options(url, cfg)}, (lambda: None)
     s = _settings(cfg)
-    if str(s["cache_dir"]).strip():
-        return local_copy(url, cfg), cfg["run"]["netcdf_engine"], {}, (lambda: None)
+    if local_copies(cfg):
+        return local_copy(url, cfg), None, {}, (lambda: None)
     if url.lower().endswith((".grib", ".grib2", ".grb", ".grb2")):
         raise InputError(f"{url}: GRIB is read from local files only; copy it to a disk or pass --cache-dir DIR")
     fs, path = filesystem(url, cfg)
@@ -308,6 +308,11 @@ def open_target(url, cfg):
         f.close()
         raise InputError(f"{url}: the object is empty; re-upload it, or pass --on-bad-file skip")
     return f, "h5netcdf", {}, f.close
+
+
+def local_copies(cfg):
+    """True when ``[storage] cache_dir`` asks for whole-object local copies."""
+    return bool(str(_settings(cfg)["cache_dir"]).strip())
 
 
 def local_copy(url, cfg):
