@@ -7,7 +7,8 @@ import sys
 import click
 
 from circtrack import __version__
-from circtrack.cli_support import OneLineGroup, _fail, guarded, parse_vars, track_options  # noqa: F401
+from circtrack.cli_support import (OneLineGroup, _fail, apply_storage, guarded, parse_vars,  # noqa: F401
+                                   storage_options, track_options)
 from circtrack.errors import UsageError
 
 
@@ -19,14 +20,14 @@ def main(debug):
 
 
 def _run_track(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-               repeated_times=None):
+               repeated_times=None, anonymous=False, cache_dir=None):
     from circtrack import config as C
     from circtrack import engine, output as O
     from circtrack.cluster import scheduler_context
 
     if workers and scheduler:
         raise UsageError("--workers and --scheduler exclude each other; give one")
-    cfg = C.load(config)
+    cfg = apply_storage(C.load(config), anonymous, cache_dir)
     if repeated_times:
         cfg["run"]["repeated_times"] = repeated_times
     if on_bad_file:
@@ -55,13 +56,14 @@ def track(**kw):
 @click.argument("paths", nargs=-1, required=True)
 @click.option("-c", "--config", "config", default=None, help="TOML config (for [variables] overrides).")
 @click.option("--var", "variables", multiple=True, metavar="ROLE=NAME")
+@storage_options
 @guarded
-def scan(paths, config, variables):
+def scan(paths, config, variables, anonymous, cache_dir):
     """Show what was found in PATH..., which metrics can run, and what to add for the rest."""
     from circtrack import config as C
     from circtrack.scan import report
 
-    cfg = C.load(config)
+    cfg = apply_storage(C.load(config), anonymous, cache_dir)
     click.echo(report(list(paths), cfg, {**cfg.get("variables", {}), **parse_vars(variables)}))
 
 

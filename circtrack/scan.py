@@ -32,7 +32,7 @@ def _grid(det):
 
 
 def report(paths, cfg, overrides) -> str:
-    files = expand(paths)
+    files = expand(paths, cfg=cfg)
     lines = []
     dets, bad = [], []
     det_dims = {}

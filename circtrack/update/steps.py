@@ -18,6 +18,7 @@ from dataclasses import dataclass, field
 import click
 
 from circtrack.errors import InputError, UsageError
+from circtrack.inputs.files import input_key
 from circtrack.update.state import (STATE_VERSION, _group_lines, _load_state, _pause_point, _record_step_days,
                                     _remove_stale_temps, _same_file, _sha_text, _source_paths, _step_class,
                                     acquire_lock, file_record, params_hash, state_path, time_key)
@@ -82,12 +83,12 @@ class Update:
 
 
 def run_update(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file,
-               quiet, rebuild=False, repeated_times=None, stdin=None, echo=None):
+               quiet, rebuild=False, repeated_times=None, stdin=None, echo=None, anonymous=False, cache_dir=None):
     """Bring OUT up to date with ``paths``; returns the new state (None when nothing was new)."""
     from circtrack import output as O
 
     u = options(output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-                repeated_times, echo or click.echo)
+                repeated_times, echo or click.echo, anonymous, cache_dir)
     O.check_output_path(u.output)
     lock_fd = acquire_lock(u.output)
     try:
@@ -111,17 +112,17 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
 
 
 def options(output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-            repeated_times, echo):
+            repeated_times, echo, anonymous=False, cache_dir=None):
     """The command's options checked and combined with the config, as ``circtrack track`` does."""
     from circtrack import config as C
-    from circtrack.cli_support import parse_vars
+    from circtrack.cli_support import apply_storage, parse_vars
     from circtrack.engine.sectors import merge_sectors, parse_sector
 
     if output == "-":
         raise UsageError("update needs an output file (-o OUT.csv), not stdout; the state lives beside it")
     if workers and scheduler:
         raise UsageError("--workers and --scheduler exclude each other; give one")
-    cfg = C.load(config)
+    cfg = apply_storage(C.load(config), anonymous, cache_dir)
     user_ids = [m.strip() for m in metrics.split(",") if m.strip()] if metrics else None
     secs = [parse_sector(s) for s in sectors]
     overrides_cli = parse_vars(variables)
@@ -175,10 +176,10 @@ def diff_inputs(u, paths, stdin):
     policy changed. Returns False when there is nothing to do."""
     from circtrack.engine.locate import locate
 
-    u.files = locate(list(paths), stdin=stdin)
-    u.ab = [os.path.abspath(p) for p in u.files]
+    u.files = locate(list(paths), stdin=stdin, cfg=u.cfg)
+    u.ab = [input_key(p) for p in u.files]
     u.shown = dict(zip(u.ab, u.files))
-    u.records = {a: file_record(a) for a in u.ab}
+    u.records = {a: file_record(a, u.cfg) for a in u.ab}
     old_files, state = u.old_files, u.state
     u.unchanged = [a for a in u.ab if _same_file(old_files.get(a), u.records[a])]
     u.fresh = [a for a in u.ab if a not in u.unchanged]
@@ -326,7 +327,7 @@ def merge(u, run_files, outcome):
     for a in run_files:                  # e.g. a file skipped for want of its partner, now joined
         u.entries[a].pop("skipped", None)
     for s in outcome.provenance["skipped_inputs"]:            # e.g. a variable no file supplies
-        u.entries[os.path.abspath(s["path"])]["skipped"] = s["reason"]
+        u.entries[input_key(s["path"])]["skipped"] = s["reason"]
     for inp in outcome.provenance["inputs"]:
         u.new_prov[inp["path"]] = inp
     for d in outcome.provenance["repeated_time_steps_dropped"]:
@@ -354,7 +355,7 @@ def bookkeeping(u, text):
     repeats = {t: repeats[t] for t in order if t in repeats}
     notes = {t: notes[t] for t in order if t in notes}
     entries, ab = u.entries, u.ab
-    dropped_from = {t: {os.path.abspath(d["path"]) for d in ds} for t, ds in repeats.items()}
+    dropped_from = {t: {input_key(d["path"]) for d in ds} for t, ds in repeats.items()}
     for a in ab:
         entries[a]["owned"] = [] if entries[a].get("skipped") else [
             t for t in entries[a]["times"] if t in u.blocks and a not in dropped_from.get(t, ())]
