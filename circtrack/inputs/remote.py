@@ -23,6 +23,7 @@ without signing requests. Everything here needs the optional extra: ``pip instal
 from __future__ import annotations
 
 import hashlib
+import logging
 import os
 import posixpath
 import tempfile
@@ -285,6 +286,7 @@ def open_target(url, cfg):
     if is_store(url):
         scheme = _scheme(url)
         _require(url, scheme)
+        _quiet_inherited_sessions()
         return url.rstrip("/"), "zarr", {"storage_options": storage_options(url, cfg)}, (lambda: None)
     s = _settings(cfg)
     if local_copies(cfg):
@@ -308,6 +310,21 @@ def open_target(url, cfg):
         f.close()
         raise InputError(f"{url}: the object is empty; re-upload it, or pass --on-bad-file skip")
     return f, "h5netcdf", {}, f.close
+
+
+class _InheritedSessions(logging.Filter):
+    """Drops asyncio's "Unclosed client session/connector" messages. zarr's store keeps an HTTP
+    session per filesystem; a forked worker inherits the parent's and must not close it (its
+    connections belong to the parent), so it is dropped unclosed when the worker exits."""
+
+    def filter(self, record):
+        return not str(record.msg).startswith(("Unclosed client session", "Unclosed connector"))
+
+
+def _quiet_inherited_sessions():
+    log = logging.getLogger("asyncio")
+    if not any(isinstance(f, _InheritedSessions) for f in log.filters):
+        log.addFilter(_InheritedSessions())
 
 
 def local_copies(cfg):

@@ -44,7 +44,7 @@ def local_data(tmp_path_factory):
     synthetic.dataset(LAT, LON, PLEV, synthetic.monthly_times(2000, 1, CALENDAR)[:1]).to_netcdf(
         str(classic), format="NETCDF3_64BIT", encoding=synthetic.time_encoding(CALENDAR))
     store = d / "stores" / "uv.zarr"
-    synthetic.dataset(LAT, LON, PLEV, synthetic.monthly_times(2000, 1, CALENDAR)[:2]).to_zarr(
+    synthetic.dataset(LAT, LON, PLEV, synthetic.monthly_times(2000, 1, CALENDAR)).to_zarr(
         str(store), encoding=synthetic.time_encoding(CALENDAR), mode="w", zarr_format=2)
     return {"files": files, "classic": classic, "store": store}
 

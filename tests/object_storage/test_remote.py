@@ -163,7 +163,7 @@ def test_https_file_and_zarr_store(open_s3, local_data):
     rec = R.object_record(url, cfg())
     assert rec["size"] == local_data["files"][2].stat().st_size and rec["etag"]
     ds, close = _open(f"{base}/stores/uv.zarr", cfg())
-    assert ds["ua"].shape[0] == 2
+    assert ds["ua"].shape[0] == 12
     ds.close()
     with pytest.raises(InputError, match="HTTP 404"):
         R.expand_url(f"{base}/reanalysis/daily/uv_77.nc", cfg(), SUFFIXES)
