@@ -327,6 +327,18 @@ def _quiet_inherited_sessions():
         log.addFilter(_InheritedSessions())
 
 
+METADATA_BLOCK_BYTES = 2 ** 20
+
+
+def for_metadata(cfg):
+    """``cfg`` for an opening that reads metadata and coordinates only (planning, detection): objects
+    are fetched in ranges of at most 1 MiB (measured: a 16 MiB range per object only for its header
+    cost the planning of 6 objects of 25 MB 0.8 s of 5.6 s against the local S3 server)."""
+    s = _settings(cfg)
+    small = min(int(s["block_bytes"]), METADATA_BLOCK_BYTES)
+    return {**cfg, "storage": {**s, "block_bytes": small, "cached_blocks": max(int(s["cached_blocks"]), 8)}}
+
+
 def local_copies(cfg):
     """True when ``[storage] cache_dir`` asks for whole-object local copies."""
     return bool(str(_settings(cfg)["cache_dir"]).strip())
