@@ -231,6 +231,13 @@ class LocalObjectStore:
             self.client.upload_file(str(f), bucket, f"{prefix}/{Path(f).name}")
         return f"s3://{bucket}/{prefix}/"
 
+    def cpu_seconds(self):
+        """CPU time the server has used so far (it shares the machine's cores with circtrack)."""
+        import psutil
+
+        t = psutil.Process(self.proc.pid).cpu_times()
+        return t.user + t.system
+
     def stop(self):
         if self.proc.poll() is None:
             self.proc.terminate()
@@ -257,8 +264,11 @@ def object_store_table(files, outdir, nbytes, log):
         rows = []
         for name, cmd, env in runs:
             slug = "".join(c if c.isalnum() else "_" for c in name)[:40]
+            cpu0 = store.cpu_seconds()
             m = measure(cmd, outdir / f"{slug}.log", env=env)
-            log(f"  {name}: rc={m['rc']} wall={m['wall']:.1f}s maxrss={m['maxrss'] / 1e9:.2f}GB")
+            m["server_cpu"] = store.cpu_seconds() - cpu0
+            log(f"  {name}: rc={m['rc']} wall={m['wall']:.1f}s maxrss={m['maxrss'] / 1e9:.2f}GB "
+                f"server CPU {m['server_cpu']:.1f}s")
             rows.append((name, m))
     finally:
         store.stop()
@@ -267,7 +277,8 @@ def object_store_table(files, outdir, nbytes, log):
     same = disk_csv.exists() and s3_csv.exists() and disk_csv.read_bytes() == s3_csv.read_bytes()
     table = [(name, f"{m['wall']:.1f}" if m["rc"] == 0 else f"FAILED rc={m['rc']}",
               f"{m['wall'] / base:.2f}" if k < 2 else "", f"{n / 1e6 / m['wall']:.0f}", f"{m['maxrss'] / 1e9:.2f}",
-              f"{m['tree'] / 1e9:.2f}") for k, ((name, m), n) in enumerate(zip(rows, nbytes_of))]
+              f"{m['tree'] / 1e9:.2f}", f"{m['server_cpu']:.1f}" if k else "")
+             for k, ((name, m), n) in enumerate(zip(rows, nbytes_of))]
     return table, same
 
 
@@ -425,7 +436,8 @@ def main(argv=None):
                        f"{len(files)} files, {nbytes / 1e6:.0f} MB of ua+va values, {ondisk / 1e6:.0f} MB on disk; "
                        f"one run each; CSVs byte-identical: {'yes' if same else 'NO'}. Logs: {outdir}", "",
                        markdown(table, head=("approach", "wall s", "ratio to disk", "input MB/s",
-                                             "peak RSS GB (largest proc)", "peak RSS GB (tree sum)")), ""]
+                                             "peak RSS GB (largest proc)", "peak RSS GB (tree sum)",
+                                             "S3 server CPU s")), ""]
             continue
         table = run_config(files, outdir, nbytes, a.repeat, log)
         report += [f"## compression: {comp}",
