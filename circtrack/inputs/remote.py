@@ -300,16 +300,26 @@ def open_target(url, cfg):
         head = _call(url, cfg, f.read, 8)
         f.seek(0)
     except BaseException:
-        f.close()
+        _release(f)
         raise
     if head[:4] in _CLASSIC_MAGIC:
-        f.close()
+        _release(f)
         raise InputError(f"{url}: a netCDF classic file cannot be read in byte ranges; pass --cache-dir DIR to read "
                          "a local copy, or convert it to netCDF4 (e.g. nccopy -k nc4)")
     if not head:
-        f.close()
+        _release(f)
         raise InputError(f"{url}: the object is empty; re-upload it, or pass --on-bad-file skip")
-    return f, "h5netcdf", {}, f.close
+    return f, "h5netcdf", {}, lambda: _release(f)
+
+
+def _release(f):
+    """Close an object's file and free its cached blocks at once. fsspec's block cache is an LRU
+    bound to the cache object (a reference cycle), so after close() its blocks waited for the cyclic
+    garbage collector: measured, a worker grew by about one cache (64 MiB) per object it had read."""
+    clear = getattr(getattr(getattr(f, "cache", None), "_fetch_block_cached", None), "cache_clear", None)
+    if clear is not None:
+        clear()
+    f.close()
 
 
 class _InheritedSessions(logging.Filter):

@@ -169,3 +169,23 @@ def test_https_file_and_zarr_store(open_s3, local_data):
         R.expand_url(f"{base}/reanalysis/daily/uv_77.nc", cfg(), SUFFIXES)
     with pytest.raises(InputError, match="no listing"):
         R.expand_url(f"{base}/reanalysis/daily/*.nc", cfg(), SUFFIXES)
+
+
+def test_closing_frees_the_cached_blocks_at_once(aws):
+    """The block cache is freed when the object is closed, not when the cyclic garbage collector
+    runs (a worker reading many objects grew by one cache per object before)."""
+    import gc
+    import weakref
+
+    target, engine, kw, close = R.open_target(f"s3://{BUCKET}/reanalysis/daily/uv_00.nc", cfg(block_bytes=65536))
+    target.read(200000)
+    cache = target.cache
+    assert cache._fetch_block_cached.cache_info().currsize > 0
+    ref = weakref.ref(cache)
+    del cache
+    gc.disable()
+    try:
+        close()
+        assert target.closed and (ref() is None or ref()._fetch_block_cached.cache_info().currsize == 0)
+    finally:
+        gc.enable()
