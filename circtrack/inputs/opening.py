@@ -19,6 +19,7 @@ import warnings
 import xarray as xr
 
 from circtrack.errors import InputError
+from circtrack.inputs import remote
 from circtrack.inputs import times as T
 
 NETCDF_SUFFIXES = (".nc", ".nc4", ".netcdf", ".cdf", ".h5", ".hdf5")
@@ -31,6 +32,12 @@ _CACHE_SET = False
 def open_raw(path, cfg):
     """A plain ``netCDF4.Dataset`` for :meth:`~circtrack.inputs.readers.RoleReader.read_fast`, or None
     (other engines and sources)."""
+    if remote.is_url(path):
+        # objects are read through xarray (h5netcdf on byte ranges); only a whole-object local copy
+        # (``[storage] cache_dir``) takes the fast path
+        if remote.is_store(path) or not remote.local_copies(cfg):
+            return None
+        path = remote.local_copy(path, cfg)
     if cfg["run"]["netcdf_engine"] != "netcdf4" or not os.path.isfile(path) or _source_for(path) is not None:
         return None
     import netCDF4
@@ -115,15 +122,52 @@ def open_dataset(path, cfg) -> xr.Dataset:
     files in :func:`grib_index_dir`). Time axes xarray refuses are decoded where unambiguous by
     :func:`circtrack.inputs.times.reopen_undecoded` (year 0, "months since").
     """
+    if remote.is_url(path):
+        return _open_remote(path, cfg)
     engine, extra = _engine_for(path, cfg)
-    if engine == "netcdf4":
-        _set_chunk_cache(cfg["run"]["chunk_cache_bytes"])
+    _check_local(path)
+    return _open_lazily(path, path, engine, extra, cfg)
+
+
+def _check_local(path):
     if not os.path.exists(path):
         raise InputError(f"{path}: file not found; check the path")
     if os.path.isfile(path) and os.path.getsize(path) == 0:
         raise InputError(f"{path}: the file is empty; re-copy or re-download it, or pass --on-bad-file skip")
     if os.path.isfile(path):
         _check_classic_complete(path)
+
+
+def _open_remote(url, cfg):
+    """An object in object storage (:mod:`circtrack.inputs.remote`): read in byte ranges through an
+    fsspec file object (closed with the dataset), natively as a Zarr store, or from a local copy
+    (``[storage] cache_dir``); error lines name the URL."""
+    target, engine, extra, close = remote.open_target(url, cfg)
+    if engine is None:                         # a whole-object local copy: opened like a local file
+        engine, extra = _engine_for(target, cfg)
+        _check_local(target)
+    try:
+        ds = _open_lazily(url, target, engine, extra, cfg)
+    except BaseException:
+        close()
+        raise
+    backend_close = ds._close
+
+    def close_both():
+        try:
+            if backend_close is not None:
+                backend_close()
+        finally:
+            close()
+
+    ds.set_close(close_both)
+    return ds
+
+
+def _open_lazily(path, target, engine, extra, cfg):
+    """``xarray.open_dataset(target)`` with the engine named, failures as one line naming ``path``."""
+    if engine == "netcdf4":
+        _set_chunk_cache(cfg["run"]["chunk_cache_bytes"])
     coder = xr.coders.CFDatetimeCoder(use_cftime=True)
     try:
         # no pandas indexes: circtrack only reads coordinate values, and building indexes
@@ -131,12 +175,14 @@ def open_dataset(path, cfg) -> xr.Dataset:
         with warnings.catch_warnings():
             # stores without consolidated metadata are read fine, only their opening is slower
             warnings.filterwarnings("ignore", message="Failed to open Zarr store with consolidated metadata")
-            ds = xr.open_dataset(path, engine=engine, chunks=None, cache=False, decode_times=coder,
+            ds = xr.open_dataset(target, engine=engine, chunks=None, cache=False, decode_times=coder,
                                  decode_timedelta=False, create_default_indexes=False, **extra)
     except ValueError as e:
         # xarray's advice (decode_times=False, install cftime) is for library users, not for this command
         msg = str(e).splitlines()[0].split(" Try opening", 1)[0]
-        ds = T.reopen_undecoded(path, engine, extra, cfg, coder, msg)
+        if hasattr(target, "seek"):
+            target.seek(0)
+        ds = T.reopen_undecoded(path, engine, extra, cfg, coder, msg, target=target)
         if ds is not None:
             return ds
         raise InputError(f"{path}: cannot be opened with the {engine} engine ({msg}); check that it is a "
