@@ -7,6 +7,7 @@ import numpy as np
 from circtrack.engine.times import iso_time
 from circtrack.errors import InputError
 from circtrack.inputs import dataset as D
+from circtrack.inputs import remote
 from circtrack.inputs import units as U
 from circtrack.inputs.files import expand
 from circtrack.inputs.rules import VARIABLES
@@ -38,7 +39,7 @@ def report(paths, cfg, overrides) -> str:
     det_dims = {}
     for p in files:
         try:
-            ds = D.open_dataset(p, cfg)
+            ds = D.open_dataset(p, remote.for_metadata(cfg))     # metadata only: small ranges for objects
             dets.append((D.detect(ds, p, overrides), sorted(map(str, ds.data_vars))))
             det_dims[p] = [str(d) for d in ds.dims]
             ds.close()
