@@ -31,12 +31,14 @@ _CACHE_SET = False
 
 def open_raw(path, cfg):
     """A plain ``netCDF4.Dataset`` for :meth:`~circtrack.inputs.readers.RoleReader.read_fast`, or None
-    (other engines and sources)."""
+    (other engines and sources). For a netCDF4/HDF5 object in object storage: h5netcdf's
+    netCDF4-like API on its byte ranges (:func:`circtrack.inputs.remote.open_raw`), or the netCDF4
+    file of its local copy (``[storage] cache_dir``)."""
     if remote.is_url(path):
-        # objects are read through xarray (h5netcdf on byte ranges); only a whole-object local copy
-        # (``[storage] cache_dir``) takes the fast path
-        if remote.is_store(path) or not remote.local_copies(cfg):
+        if remote.is_store(path) or _source_for(path) is not None:
             return None
+        if not remote.local_copies(cfg):
+            return remote.open_raw(path, cfg)
         path = remote.local_copy(path, cfg)
     if cfg["run"]["netcdf_engine"] != "netcdf4" or not os.path.isfile(path) or _source_for(path) is not None:
         return None

@@ -312,6 +312,40 @@ def open_target(url, cfg):
     return f, "h5netcdf", {}, lambda: _release(f)
 
 
+class RawObject:
+    """h5netcdf's netCDF4-like API (``variables``, ``ncattrs``, ``dimensions``, raw values) on an
+    object, for :meth:`~circtrack.inputs.readers.RoleReader.read_fast`; closed with its file."""
+
+    def __init__(self, nc, close):
+        self._nc, self._close = nc, close
+
+    @property
+    def variables(self):
+        return self._nc.variables
+
+    def close(self):
+        try:
+            self._nc.close()
+        finally:
+            self._close()
+
+
+def open_raw(url, cfg):
+    """A :class:`RawObject` of a netCDF4/HDF5 object, or None where it does not apply (netCDF
+    classic objects, which open_dataset refuses with its own line)."""
+    try:
+        target, _engine, _kw, close = open_target(url, cfg)
+    except InputError:
+        return None
+    import h5netcdf.legacyapi
+
+    try:
+        return RawObject(h5netcdf.legacyapi.Dataset(target, "r"), close)
+    except BaseException:
+        close()
+        raise
+
+
 def _release(f):
     """Close an object's file and free its cached blocks at once. fsspec's block cache is an LRU
     bound to the cache object (a reference cycle), so after close() its blocks waited for the cyclic
