@@ -174,3 +174,27 @@ def test_time_axis_reopened_from_the_object(aws, tmp_path):
         assert remote == csv_of(tmp_path, "disk.csv", local) and b",2000-03-01," in remote
     finally:
         aws.client.delete_object(Bucket=BUCKET, Key=key)
+
+
+def test_object_replaced_during_a_run_is_refused(aws, local_data, tmp_path):
+    """Size and ETag are taken before reading and compared before writing, as size and mtime of a
+    file: an object rewritten meanwhile gives one line and no output."""
+    key = "scratch/replaced.nc"
+    aws.put(BUCKET, key, local_data["files"][0])
+    out = tmp_path / "x.csv"
+    try:
+        proc = subprocess.Popen([sys.executable, "-m", "circtrack.cli", "track", f"s3://{BUCKET}/{key}", "-o", str(out),
+                                 "--metrics", METRICS], stderr=subprocess.PIPE, text=True,
+                                env={**os.environ, "PYTHONPATH": ROOT, "CIRCTRACK_TASK_PAUSE_S": "2"})
+        lines = []
+        while not any("file(s), metrics" in ln for ln in lines):      # planned (stamps taken before)
+            lines.append(proc.stderr.readline())
+            assert lines[-1], "".join(lines)
+        aws.put(BUCKET, key, local_data["files"][1])
+        rest = proc.communicate(timeout=120)[1].strip().splitlines()
+        assert proc.returncode == 1, rest
+        assert "changed while it was being read" in rest[-1] and key in rest[-1]
+        assert not any("Traceback" in ln for ln in rest)
+        assert not out.exists()
+    finally:
+        aws.client.delete_object(Bucket=BUCKET, Key=key)
