@@ -6,7 +6,9 @@ The one place to touch for a new kind of input: :data:`SOURCES` picks the engine
 its index files in :func:`grib_index_dir`), and :func:`open_dataset` turns every way of
 failing to open into one :class:`~circtrack.errors.InputError` line. Also here: the netCDF chunk
 cache, and the check that a netCDF classic file is as long as its header says. Time axes that
-xarray cannot decode are handed to :mod:`circtrack.inputs.times`.
+xarray cannot decode are handed to :mod:`circtrack.inputs.times`. URLs (``s3://``, ``https://``)
+are opened through :mod:`circtrack.inputs.remote` (byte ranges, Zarr stores, local copies) and
+then decoded exactly like files.
 """
 
 from __future__ import annotations

@@ -130,7 +130,7 @@ def translate(err, url, cfg):
         if s3 and ("bucket" in msg.lower()):
             return InputError(f"{url}: bucket '{_bucket(url)}' does not exist {_where(cfg)}; check the bucket name "
                               "(and AWS_ENDPOINT_URL for an S3-compatible service)")
-        what = "no such object or prefix in bucket '" + _bucket(url) + "'" if s3 else "not found on the server (HTTP 404)"
+        what = f"no such object or prefix in bucket '{_bucket(url)}'" if s3 else "not found on the server (HTTP 404)"
         return InputError(f"{url}: {what}; check the path")
     if "connect" in msg.lower() or name in ("EndpointConnectionError", "ClientConnectorError", "ConnectTimeoutError"):
         where = endpoint(cfg) if s3 else url
