@@ -136,7 +136,9 @@ def translate(err, url, cfg):
         where = endpoint(cfg) if s3 else url
         return InputError(f"{url}: cannot reach {where or 'the object store'} ({msg}); check the network and "
                           "AWS_ENDPOINT_URL")
-    return InputError(f"{url}: reading from object storage failed ({name}: {msg}); check the URL and credentials")
+    hint = ("the bucket must be public for --anonymous; drop it and set credentials, or check the URL"
+            if s3 and _settings(cfg)["anonymous"] else "check the URL and credentials")
+    return InputError(f"{url}: reading from object storage failed ({name}: {msg}); {hint}")
 
 
 def _call(url, cfg, fn, *args, **kwargs):
