@@ -2,7 +2,7 @@
 """Benchmark harness: circtrack vs plain netCDF4/numpy, xarray.open_mfdataset and (optionally) cdo.
 
     python benchmarks/run.py [--months N] [--res 0.5] [--compress zlib|none|both]
-                             [--workdir DIR] [--repeat 1] [--scaling]
+                             [--workdir DIR] [--repeat 1] [--scaling] [--object-store]
 
 See benchmarks/README.md.  Nothing here is a test; it only measures and prints.
 """
@@ -196,7 +196,93 @@ def approaches(files, outdir):
     return out
 
 
-def measure(cmd, log_path):
+class LocalObjectStore:
+    """moto's S3-compatible server on 127.0.0.1 (a free port), for --object-store; stopped by stop()."""
+
+    def __init__(self):
+        import socket
+
+        import boto3
+
+        with socket.socket() as sock:
+            sock.bind(("127.0.0.1", 0))
+            self.port = sock.getsockname()[1]
+        self.endpoint = f"http://127.0.0.1:{self.port}"
+        self.proc = subprocess.Popen([sys.executable, "-m", "moto.server", "-H", "127.0.0.1", "-p", str(self.port)],
+                                     stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        deadline = time.monotonic() + 30
+        while True:
+            try:
+                socket.create_connection(("127.0.0.1", self.port), 0.2).close()
+                break
+            except OSError:
+                if self.proc.poll() is not None or time.monotonic() > deadline:
+                    self.stop()
+                    raise SystemExit("moto_server did not start (pip install 'moto[server]')")
+                time.sleep(0.05)
+        self.env = {"AWS_ACCESS_KEY_ID": "bench", "AWS_SECRET_ACCESS_KEY": "bench",
+                    "AWS_ENDPOINT_URL": self.endpoint, "AWS_DEFAULT_REGION": "us-east-1"}
+        self.client = boto3.client("s3", endpoint_url=self.endpoint, region_name="us-east-1",
+                                   aws_access_key_id="bench", aws_secret_access_key="bench")
+
+    def upload(self, bucket, prefix, files):
+        self.client.create_bucket(Bucket=bucket)
+        for f in files:
+            self.client.upload_file(str(f), bucket, f"{prefix}/{Path(f).name}")
+        return f"s3://{bucket}/{prefix}/"
+
+    def cpu_seconds(self):
+        """CPU time the server has used so far (it shares the machine's cores with circtrack)."""
+        import psutil
+
+        t = psutil.Process(self.proc.pid).cpu_times()
+        return t.user + t.system
+
+    def stop(self):
+        if self.proc.poll() is None:
+            self.proc.terminate()
+            self.proc.wait(timeout=10)
+
+
+def object_store_table(files, outdir, nbytes, log):
+    """circtrack track on the files on disk and on the same files in a local S3 server (one run
+    each): wall time, ratio, throughput, peak RSS, and whether the two CSVs are byte-identical."""
+    store = LocalObjectStore()
+    try:
+        t0 = time.perf_counter()
+        url = store.upload("circtrack-bench", outdir.name, files)
+        log(f"  uploaded {len(files)} files to {url} in {time.perf_counter() - t0:.0f} s")
+        ct = circtrack_cmd()
+        disk_csv, s3_csv = outdir / "disk.csv", outdir / "object_store.csv"
+        runs = [("circtrack track, files on disk", ct + ["track", *map(str, files), "-o", str(disk_csv),
+                                                         "--metrics", METRICS, "-q"], None),
+                ("circtrack track, same files from the local S3 server",
+                 ct + ["track", url, "-o", str(s3_csv), "--metrics", METRICS, "-q"], store.env),
+                ("the same, first object only (memory does not grow with the record)",
+                 ct + ["track", url + Path(files[0]).name, "-o", str(outdir / "object_store_1.csv"), "--metrics",
+                       METRICS, "-q"], store.env)]
+        rows = []
+        for name, cmd, env in runs:
+            slug = "".join(c if c.isalnum() else "_" for c in name)[:40]
+            cpu0 = store.cpu_seconds()
+            m = measure(cmd, outdir / f"{slug}.log", env=env)
+            m["server_cpu"] = store.cpu_seconds() - cpu0
+            log(f"  {name}: rc={m['rc']} wall={m['wall']:.1f}s maxrss={m['maxrss'] / 1e9:.2f}GB "
+                f"server CPU {m['server_cpu']:.1f}s")
+            rows.append((name, m))
+    finally:
+        store.stop()
+    base = rows[0][1]["wall"]
+    nbytes_of = [nbytes, nbytes, nbytes / len(files)]
+    same = disk_csv.exists() and s3_csv.exists() and disk_csv.read_bytes() == s3_csv.read_bytes()
+    table = [(name, f"{m['wall']:.1f}" if m["rc"] == 0 else f"FAILED rc={m['rc']}",
+              f"{m['wall'] / base:.2f}" if k < 2 else "", f"{n / 1e6 / m['wall']:.0f}", f"{m['maxrss'] / 1e9:.2f}",
+              f"{m['tree'] / 1e9:.2f}", f"{m['server_cpu']:.1f}" if k else "")
+             for k, ((name, m), n) in enumerate(zip(rows, nbytes_of))]
+    return table, same
+
+
+def measure(cmd, log_path, env=None):
     """Wall time, max RSS of the largest single process (wait4 / time -v) and sampled peak of the
     summed RSS of the whole process tree (matters for --workers, where workers are separate processes)."""
     import psutil
@@ -208,7 +294,8 @@ def measure(cmd, log_path):
 
     with open(log_path, "w") as log:
         t0 = time.perf_counter()
-        proc = subprocess.Popen(full, stdout=log, stderr=subprocess.PIPE, text=True)
+        proc = subprocess.Popen(full, stdout=log, stderr=subprocess.PIPE, text=True,
+                                env={**os.environ, **env} if env else None)
 
         def sample():
             nonlocal peak_tree
@@ -302,6 +389,8 @@ def main(argv=None):
     ap.add_argument("--many-res", type=float, default=5.0)
     ap.add_argument("--skip-large", action="store_true", help="only the --many-files case")
     ap.add_argument("--no-cdo", action="store_true", help="leave out cdo zonmean even when cdo is installed")
+    ap.add_argument("--object-store", action="store_true",
+                    help="only time circtrack track from a local S3 server (moto) against the same files on disk")
     a = ap.parse_args(argv)
     global WITH_CDO
     WITH_CDO = not a.no_cdo
@@ -341,6 +430,15 @@ def main(argv=None):
             with open(f, "rb") as fh:
                 while fh.read(1 << 24):
                     pass
+        if a.object_store:
+            table, same = object_store_table(files, outdir, nbytes, log)
+            report += [f"## object storage vs disk, compression: {comp}", "",
+                       f"{len(files)} files, {nbytes / 1e6:.0f} MB of ua+va values, {ondisk / 1e6:.0f} MB on disk; "
+                       f"one run each; CSVs byte-identical: {'yes' if same else 'NO'}. Logs: {outdir}", "",
+                       markdown(table, head=("approach", "wall s", "ratio to disk", "input MB/s",
+                                             "peak RSS GB (largest proc)", "peak RSS GB (tree sum)",
+                                             "S3 server CPU s")), ""]
+            continue
         table = run_config(files, outdir, nbytes, a.repeat, log)
         report += [f"## compression: {comp}",
                    "",

@@ -7,7 +7,8 @@ import sys
 import click
 
 from circtrack import __version__
-from circtrack.cli_support import OneLineGroup, _fail, apply_units, guarded, parse_vars, track_options  # noqa: F401
+from circtrack.cli_support import (OneLineGroup, _fail, apply_storage, apply_units, guarded,  # noqa: F401
+                                   parse_vars, storage_options, track_options)
 from circtrack.errors import UsageError
 
 
@@ -19,7 +20,7 @@ def main(debug):
 
 
 def _run_track(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-               repeated_times=None, units=(), levels=(), fail_on_empty=False):
+               repeated_times=None, units=(), levels=(), fail_on_empty=False, anonymous=False, cache_dir=None):
     from circtrack import config as C
     from circtrack import engine, guards as G, output as O
     from circtrack.cluster import scheduler_context
@@ -27,7 +28,7 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
 
     if workers and scheduler:
         raise UsageError("--workers and --scheduler exclude each other; give one")
-    cfg = apply_units(C.load(config), units, levels)
+    cfg = apply_storage(apply_units(C.load(config), units, levels), anonymous, cache_dir)
     if repeated_times:
         cfg["run"]["repeated_times"] = repeated_times
     if on_bad_file:
@@ -37,15 +38,15 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
     G.check_cli_labels(label, sectors, secs)
     target = O.check_output_path(output)
     G.refuse_data_file_as_output(output)
-    files = expand(list(paths))             # before anything is read: OUT must not be an input
+    files = expand(list(paths), cfg=cfg)    # before anything is read: OUT must not be an input
     outputs = [("-o", output)] + ([("the sidecar of -o", O.sidecar_path(target.path))] if target.kind == "file" else [])
     G.refuse_outputs_among_inputs(outputs, files)
-    stamps = G.input_stamps(files)
+    stamps = G.input_stamps(files, cfg)
     prog = engine.Progress(quiet=quiet)
     with scheduler_context(workers, scheduler, cfg):
         outcome = engine.track(files, cfg, metric_ids=ids, label=label, sectors=secs,
                                overrides=parse_vars(variables), progress=prog, on_bad_file=on_bad_file)
-    G.refuse_changed_inputs(stamps)
+    G.refuse_changed_inputs(stamps, cfg)
     O.write(outcome, output, cfg, argv=["circtrack", *sys.argv[1:]])
     prog.done(len(outcome.columns["metric"]))
     from circtrack import summary
@@ -67,13 +68,14 @@ def track(**kw):
 @click.option("--var", "variables", multiple=True, metavar="ROLE=NAME")
 @click.option("--units", "units", multiple=True, metavar="ROLE=UNITS", help="As for track.")
 @click.option("--level", "levels", multiple=True, metavar="NAME=HPA", help="As for track.")
+@storage_options
 @guarded
-def scan(paths, config, variables, units, levels):
+def scan(paths, config, variables, units, levels, anonymous, cache_dir):
     """Show what was found in PATH..., which metrics can run, and what to add for the rest."""
     from circtrack import config as C
     from circtrack.scan import report
 
-    cfg = apply_units(C.load(config), units, levels)
+    cfg = apply_storage(apply_units(C.load(config), units, levels), anonymous, cache_dir)
     click.echo(report(list(paths), cfg, {**cfg.get("variables", {}), **parse_vars(variables)}))
 
 

@@ -198,7 +198,33 @@ def track_options(fn):
         click.option("--fail-on-empty", "fail_on_empty", is_flag=True,
                      help="Exit 1 (after writing the output) when a metric has no value in any row, e.g. for "
                           "cron or make; the end-of-run summary names it and its most common flag."),
-    ]
+    ] + STORAGE_OPTIONS
     for o in reversed(opts):
         fn = o(fn)
     return fn
+
+
+# inputs in object storage (s3://, https://); they change how inputs are reached, never the rows
+STORAGE_OPTIONS = [
+    click.option("--anonymous", is_flag=True, default=False,
+                 help="Read s3:// URLs of a public bucket without credentials."),
+    click.option("--cache-dir", "cache_dir", default=None, metavar="DIR",
+                 help="Keep whole-object local copies of netCDF objects from s3:// or https:// URLs in DIR "
+                      "(default: read byte ranges, copy nothing)."),
+]
+
+
+def storage_options(fn):
+    """--anonymous and --cache-dir (for commands that have no track_options, e.g. scan)."""
+    for o in reversed(STORAGE_OPTIONS):
+        fn = o(fn)
+    return fn
+
+
+def apply_storage(cfg, anonymous=False, cache_dir=None):
+    """The storage options of the command line into ``cfg["storage"]`` (they win over the config)."""
+    if anonymous:
+        cfg["storage"]["anonymous"] = True
+    if cache_dir:
+        cfg["storage"]["cache_dir"] = str(cache_dir)
+    return cfg

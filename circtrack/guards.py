@@ -21,6 +21,7 @@ from __future__ import annotations
 import os
 
 from circtrack.errors import InputError, UsageError
+from circtrack.inputs import remote
 
 FORMULA_START = ("=", "+", "-", "@")
 DATA_MAGIC = (b"CDF\x01", b"CDF\x02", b"CDF\x05", b"\x89HDF\r\n\x1a\n", b"GRIB")
@@ -148,16 +149,20 @@ def refuse_data_file_as_output(out_path):
 
 
 # --------------------------------------------------------------------------- inputs that change during a run
-def input_stamps(paths):
+def input_stamps(paths, cfg=None):
     """Size, modification time and inode of every input (for a directory such as a Zarr store: of
-    the directory and of the files in it), taken before anything is read."""
+    the directory and of the files in it; for an object in object storage: its size and ETag),
+    taken before anything is read. ``cfg``: how object storage is reached (``[storage]``)."""
     out = {}
     for p in paths:
-        out[p] = _stamp(p)
+        out[p] = _stamp(p, cfg)
     return out
 
 
-def _stamp(path):
+def _stamp(path, cfg=None):
+    if remote.is_url(path):
+        rec = remote.object_record(path, cfg)
+        return (rec["size"], rec["etag"])
     try:
         st = os.stat(path)
     except OSError:
@@ -176,10 +181,10 @@ def _stamp(path):
     return tuple(parts)
 
 
-def refuse_changed_inputs(stamps):
+def refuse_changed_inputs(stamps, cfg=None):
     """After reading, before writing: an input whose size, modification time or inode changed was
     replaced or still being written while it was read; its rows cannot be trusted (InputError)."""
     for p, before in stamps.items():
-        if _stamp(p) != before:
+        if _stamp(p, cfg) != before:
             raise InputError(f"{p}: changed while it was being read (size, modification time or inode differ); "
                              "rerun once the file is complete (nothing was written)")

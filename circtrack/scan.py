@@ -7,6 +7,7 @@ import numpy as np
 from circtrack.engine.times import iso_time
 from circtrack.errors import InputError
 from circtrack.inputs import dataset as D
+from circtrack.inputs import remote
 from circtrack.inputs import units as U
 from circtrack.inputs.files import expand
 from circtrack.inputs.rules import VARIABLES
@@ -48,13 +49,13 @@ def _implausible(ds, det, cfg):
 
 
 def report(paths, cfg, overrides) -> str:
-    files = expand(paths)
+    files = expand(paths, cfg=cfg)
     lines = []
     dets, bad = [], []
     det_dims, implausible = {}, {}
     for p in files:
         try:
-            ds = D.open_dataset(p, cfg)
+            ds = D.open_dataset(p, remote.for_metadata(cfg))     # metadata only: small ranges for objects
             try:
                 det = D.detect(ds, p, overrides, cfg)
                 dets.append((det, sorted(map(str, ds.data_vars))))

@@ -17,7 +17,7 @@ import threading
 
 import numpy as np
 
-from circtrack.engine.reduce import reduce_chunks
+from circtrack.engine.reduce import close_thread_cached, reduce_chunks
 from circtrack.engine.times import iso_time
 from circtrack.errors import InputError
 
@@ -151,6 +151,10 @@ class BatchReader:
                 box["result"] = self.reduce(b)
             except BaseException as e:  # noqa: BLE001 - re-raised in the main thread
                 box["error"] = e
+            finally:
+                # handles are per thread and this one ends: files it opened (tasks run in this
+                # process with the sync/threads schedulers) would stay open until the run ends
+                close_thread_cached()
 
         th = threading.Thread(target=prefetch, daemon=True)
         th.start()

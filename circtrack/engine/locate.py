@@ -1,10 +1,12 @@
 """Locate: PATH arguments -> the concrete input files, and the bad-file policy.
 
-In: the PATH arguments as given (files, directories, globs, ``-`` for a list on stdin). Out: the
-list of files in the order given (:func:`locate`), their size and mtime for the provenance
-(:func:`file_stat`), and what to do with a file that cannot be used: stop with its one error line,
-or skip it with a note (``--on-bad-file skip``, :func:`skip_or_raise`). A new kind of input
-source (e.g. URLs) is added here and in circtrack/inputs/files.py.
+In: the PATH arguments as given (files, directories, globs, ``-`` for a list on stdin, URLs of
+object storage) and the config (credentials and endpoint of object storage, ``[storage]``). Out:
+the list of inputs in the order given (:func:`locate`), their size and mtime (size and ETag for
+objects) for the provenance (:func:`file_stat`), and what to do with a file that cannot be used:
+stop with its one error line, or skip it with a note (``--on-bad-file skip``,
+:func:`skip_or_raise`). A new kind of input source is added here and in circtrack/inputs/files.py
+(URLs: circtrack/inputs/remote.py).
 """
 
 from __future__ import annotations
@@ -13,16 +15,20 @@ import os
 import re
 import sys
 
+from circtrack.inputs import remote
 from circtrack.inputs.files import expand
 
 
-def locate(paths, stdin=None):
+def locate(paths, stdin=None, cfg=None):
     """The input files named by ``paths`` (see :func:`circtrack.inputs.files.expand`)."""
-    return expand(paths, stdin=stdin)
+    return expand(paths, stdin=stdin, cfg=cfg)
 
 
-def file_stat(path):
-    """Absolute path, size and mtime of an input for the provenance (None for directories/stores)."""
+def file_stat(path, cfg=None):
+    """Absolute path, size and mtime of an input for the provenance (None for directories/stores);
+    for a URL: the URL, its size and ETag (:func:`circtrack.inputs.remote.object_record`)."""
+    if remote.is_url(path):
+        return {"path": path, **remote.object_record(path, cfg)}
     st = os.stat(path) if os.path.isfile(path) else None
     return {"path": os.path.abspath(path), "size": st.st_size if st else None,
             "mtime": int(st.st_mtime) if st else None}

@@ -92,7 +92,7 @@ def prepare_inputs(files, plan, cfg, overrides, policy):
             partial.append(e)          # joined below with files holding its other variables
         except InputError as e:
             skip_or_raise(e, p, policy, skipped)
-    joined, unmatched = join_split_variables(partial, plan)
+    joined, unmatched = join_split_variables(partial, plan, cfg)
     infos += joined
     for e in unmatched:
         path = e.info.path
@@ -108,7 +108,7 @@ def prepare_inputs(files, plan, cfg, overrides, policy):
     return infos, skipped
 
 
-def join_split_variables(partial, plan):
+def join_split_variables(partial, plan, cfg=None):
     """Join files that hold different roles for the same time steps and grid into one input.
 
     ``partial``: MissingRoles errors in the order the files were given. Returns ``(infos, errors)``:
@@ -146,7 +146,7 @@ def join_split_variables(partial, plan):
         det.units = {r: o.detected.units[r] for r, o in origin.items()}
         det.why = {**first.detected.why, **{r: o.detected.why[r] for r, o in origin.items()}}
         det.layout = {**det.layout, "files": {r: o.path for r, o in origin.items()},
-                      "joined_inputs": [file_stat(p) for p in dict.fromkeys(o.path for o in origin.values())
+                      "joined_inputs": [file_stat(p, cfg) for p in dict.fromkeys(o.path for o in origin.values())
                                         if p != first.path]}
         infos.append(FileInfo(first.path, det, readers, plevs))
     return infos, errors

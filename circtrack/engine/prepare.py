@@ -17,6 +17,7 @@ from pandas.errors import OutOfBoundsDatetime as OutOfBoundsError
 from circtrack.engine.times import iso_time
 from circtrack.errors import InputError
 from circtrack.inputs import dataset as D
+from circtrack.inputs import remote
 from circtrack.inputs.files import same_period_siblings
 from circtrack.inputs.rules import VARIABLES
 from circtrack.metrics import families
@@ -32,7 +33,7 @@ class FileInfo:
 
 def prepare_file(path, plan, cfg, overrides):
     """Open once for coordinates and readers, then close: workers reopen by path."""
-    ds = D.open_dataset(path, cfg)
+    ds = D.open_dataset(path, remote.for_metadata(cfg))
     try:
         return _prepare_open(ds, path, plan, cfg, overrides)
     finally:
@@ -86,7 +87,7 @@ class MissingRoles(InputError):
 
 def detect_only(path, cfg, overrides):
     """What a file holds (coordinates, variables), opened and closed again."""
-    ds = D.open_dataset(path, cfg)
+    ds = D.open_dataset(path, remote.for_metadata(cfg))
     try:
         det = _detect(ds, path, overrides, cfg)
         if "lat" in det.coords:

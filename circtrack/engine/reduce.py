@@ -93,6 +93,18 @@ def _forget(path):
                 pass
 
 
+def close_thread_cached():
+    """Close the handles the current thread opened (a thread that ends never uses them again)."""
+    with _OPEN_LOCK:
+        group = _OPEN.pop((os.getpid(), threading.get_ident()), None)
+    if group:
+        with _NC_LOCK:
+            while group:
+                ds = group.popitem()[1]
+                if ds is not None:
+                    ds.close()
+
+
 def close_cached():
     """Close every handle this process holds (all threads; call when no task is running)."""
     with _OPEN_LOCK:

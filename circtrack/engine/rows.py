@@ -91,7 +91,7 @@ def provenance(rp, iso, notes, extra_names):
     """The run's part of the sidecar: inputs and how they were read, repeats, notes, parameters."""
     infos, nt = rp.infos, rp.times.size
     prov = {
-        "inputs": [{**file_stat(i.path), "variables": i.detected.variables, "units": i.detected.units,
+        "inputs": [{**file_stat(i.path, rp.cfg), "variables": i.detected.variables, "units": i.detected.units,
                     "found_by": i.detected.why, "time_steps": int(i.detected.times.size),
                     "first_time": iso_time(i.detected.times[0]) if i.detected.times.size else None,
                     "last_time": iso_time(i.detected.times[-1]) if i.detected.times.size else None,

@@ -83,7 +83,7 @@ class Run:
         self.progress = progress = progress or Progress(quiet=True)
         overrides = {**cfg.get("variables", {}), **(overrides or {})}
         sectors = merge_sectors(sectors, cfg)
-        files = locate(paths, stdin=stdin)
+        files = locate(paths, stdin=stdin, cfg=cfg)
         policy = on_bad_file or cfg["run"]["on_bad_file"]
         self.left_out = []                 # default metrics left out: (family, ids, missing roles)
         if metric_ids is None:

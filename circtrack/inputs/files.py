@@ -8,6 +8,7 @@ import sys
 from pathlib import Path
 
 from circtrack.errors import InputError
+from circtrack.inputs import remote
 from circtrack.inputs.opening import DATA_SUFFIXES
 
 SUFFIXES = DATA_SUFFIXES                 # netCDF/HDF5 and every source in opening.SOURCES
@@ -17,14 +18,19 @@ def _is_data(p: Path) -> bool:
     return p.suffix.lower() in SUFFIXES
 
 
-def expand(paths, stdin=None) -> list[str]:
-    """Files, directories (searched recursively), globs, or ``-`` (one path per line on stdin)."""
+def expand(paths, stdin=None, cfg=None) -> list[str]:
+    """Files, directories (searched recursively), globs, ``-`` (one path per line on stdin), or URLs
+    (``s3://`` prefixes, globs, objects and Zarr stores, ``https://`` files and stores; see
+    :func:`circtrack.inputs.remote.expand_url`, which takes its credentials and endpoint from ``cfg``)."""
     out: list[str] = []
     for arg in paths:
         if arg == "-":
             stream = stdin if stdin is not None else sys.stdin
             lines = [ln.strip() for ln in stream.read().splitlines() if ln.strip()]
-            out.extend(expand(lines))
+            out.extend(expand(lines, cfg=cfg))
+            continue
+        if remote.is_url(arg):
+            out.extend(remote.expand_url(arg, cfg, SUFFIXES))
             continue
         p = Path(arg)
         if p.is_dir() and p.suffix.lower() != ".zarr":
@@ -45,13 +51,18 @@ def expand(paths, stdin=None) -> list[str]:
             raise InputError(f"{arg}: no such file or directory; check the path")
     seen, uniq = set(), []
     for f in out:
-        key = os.path.abspath(f)
+        key = input_key(f)
         if key not in seen:
             seen.add(key)
             uniq.append(f)
     if not uniq:
         raise InputError("no input files given; pass files, directories, globs or '-' to read paths from stdin")
     return uniq
+
+
+def input_key(path):
+    """How an input is told apart from the others: a URL as it is, a local path made absolute."""
+    return path if remote.is_url(path) else os.path.abspath(path)
 
 
 def _split_variable_token(path):
@@ -67,10 +78,10 @@ def same_period_siblings(path, files):
     head, rest = _split_variable_token(path)
     if not rest:
         return []
-    d = os.path.dirname(os.path.abspath(path))
+    d = os.path.dirname(input_key(path))
     out = []
     for f in files:
         h, r = _split_variable_token(f)
-        if r == rest and h != head and os.path.dirname(os.path.abspath(f)) == d:
+        if r == rest and h != head and os.path.dirname(input_key(f)) == d:
             out.append(f)
     return out

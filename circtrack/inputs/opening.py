@@ -6,7 +6,9 @@ The one place to touch for a new kind of input: :data:`SOURCES` picks the engine
 its index files in :func:`grib_index_dir`), and :func:`open_dataset` turns every way of
 failing to open into one :class:`~circtrack.errors.InputError` line. Also here: the netCDF chunk
 cache, and the check that a netCDF classic file is as long as its header says. Time axes that
-xarray cannot decode are handed to :mod:`circtrack.inputs.times`.
+xarray cannot decode are handed to :mod:`circtrack.inputs.times`. URLs (``s3://``, ``https://``)
+are opened through :mod:`circtrack.inputs.remote` (byte ranges, Zarr stores, local copies) and
+then decoded exactly like files.
 """
 
 from __future__ import annotations
@@ -19,6 +21,7 @@ import warnings
 import xarray as xr
 
 from circtrack.errors import InputError
+from circtrack.inputs import remote
 from circtrack.inputs import times as T
 
 NETCDF_SUFFIXES = (".nc", ".nc4", ".netcdf", ".cdf", ".h5", ".hdf5")
@@ -30,7 +33,15 @@ _CACHE_SET = False
 
 def open_raw(path, cfg):
     """A plain ``netCDF4.Dataset`` for :meth:`~circtrack.inputs.readers.RoleReader.read_fast`, or None
-    (other engines and sources)."""
+    (other engines and sources). For a netCDF4/HDF5 object in object storage: h5netcdf's
+    netCDF4-like API on its byte ranges (:func:`circtrack.inputs.remote.open_raw`), or the netCDF4
+    file of its local copy (``[storage] cache_dir``)."""
+    if remote.is_url(path):
+        if remote.is_store(path) or _source_for(path) is not None:
+            return None
+        if not remote.local_copies(cfg):
+            return remote.open_raw(path, cfg)
+        path = remote.local_copy(path, cfg)
     if cfg["run"]["netcdf_engine"] != "netcdf4" or not os.path.isfile(path) or _source_for(path) is not None:
         return None
     import netCDF4
@@ -115,9 +126,14 @@ def open_dataset(path, cfg) -> xr.Dataset:
     files in :func:`grib_index_dir`). Time axes xarray refuses are decoded where unambiguous by
     :func:`circtrack.inputs.times.reopen_undecoded` (year 0, "months since").
     """
+    if remote.is_url(path):
+        return _open_remote(path, cfg)
     engine, extra = _engine_for(path, cfg)
-    if engine == "netcdf4":
-        _set_chunk_cache(cfg["run"]["chunk_cache_bytes"])
+    _check_local(path)
+    return _open_lazily(path, path, engine, extra, cfg)
+
+
+def _check_local(path):
     if not os.path.exists(path):
         raise InputError(f"{path}: file not found; check the path")
     if os.path.isfile(path) and os.path.getsize(path) == 0:
@@ -125,6 +141,38 @@ def open_dataset(path, cfg) -> xr.Dataset:
     if os.path.isfile(path):
         _check_format(path)
         _check_classic_complete(path)
+
+
+def _open_remote(url, cfg):
+    """An object in object storage (:mod:`circtrack.inputs.remote`): read in byte ranges through an
+    fsspec file object (closed with the dataset), natively as a Zarr store, or from a local copy
+    (``[storage] cache_dir``); error lines name the URL."""
+    target, engine, extra, close = remote.open_target(url, cfg)
+    if engine is None:                         # a whole-object local copy: opened like a local file
+        engine, extra = _engine_for(target, cfg)
+        _check_local(target)
+    try:
+        ds = _open_lazily(url, target, engine, extra, cfg)
+    except BaseException:
+        close()
+        raise
+    backend_close = ds._close
+
+    def close_both():
+        try:
+            if backend_close is not None:
+                backend_close()
+        finally:
+            close()
+
+    ds.set_close(close_both)
+    return ds
+
+
+def _open_lazily(path, target, engine, extra, cfg):
+    """``xarray.open_dataset(target)`` with the engine named, failures as one line naming ``path``."""
+    if engine == "netcdf4":
+        _set_chunk_cache(cfg["run"]["chunk_cache_bytes"])
     coder = xr.coders.CFDatetimeCoder(use_cftime=True)
     if {"time", "calendar"} & set(cfg.get("units", {})):
         return T.open_with_time_units(path, engine, extra, cfg, coder)
@@ -134,12 +182,14 @@ def open_dataset(path, cfg) -> xr.Dataset:
         with warnings.catch_warnings():
             # stores without consolidated metadata are read fine, only their opening is slower
             warnings.filterwarnings("ignore", message="Failed to open Zarr store with consolidated metadata")
-            ds = xr.open_dataset(path, engine=engine, chunks=None, cache=False, decode_times=coder,
+            ds = xr.open_dataset(target, engine=engine, chunks=None, cache=False, decode_times=coder,
                                  decode_timedelta=False, create_default_indexes=False, **extra)
     except ValueError as e:
         # xarray's advice (decode_times=False, install cftime) is for library users, not for this command
         msg = str(e).splitlines()[0].split(" Try opening", 1)[0]
-        ds = T.reopen_undecoded(path, engine, extra, cfg, coder, msg)
+        if hasattr(target, "seek"):
+            target.seek(0)
+        ds = T.reopen_undecoded(path, engine, extra, cfg, coder, msg, target=target)
         if ds is not None:
             return ds
         raise InputError(f"{path}: cannot be opened with the {engine} engine ({msg}); check that it is a "

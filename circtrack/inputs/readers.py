@@ -317,8 +317,8 @@ class RoleReader:
         return self.read_noted(ds, t0, t1)[0]
 
     def read_fast(self, nc, t0, t1):
-        """The same array as :meth:`read`, straight from a ``netCDF4.Dataset`` without xarray's
-        decoding passes; None when the variable needs more than that (packed values, data streams,
+        """The same array as :meth:`read`, straight from a ``netCDF4.Dataset`` (or h5netcdf's
+        netCDF4-like API on an object in object storage) without xarray's decoding passes; None when the variable needs more than that (packed values, data streams,
         model levels), and the caller takes :meth:`read_noted`.
 
         Contiguous level runs are read as one hyperslab and reversed as a view; scattered levels
@@ -331,7 +331,8 @@ class RoleReader:
         var = nc.variables[self.name]
         if var.dtype.kind != "f" or any(a in var.ncattrs() for a in ("scale_factor", "add_offset")):
             return None
-        var.set_auto_maskandscale(False)
+        if getattr(type(var), "set_auto_maskandscale", None) is not None:   # netCDF4; h5netcdf reads raw
+            var.set_auto_maskandscale(False)
         index, post = _fast_index(var.dimensions, self.time_dim, self.selection, t0, t1)
         arr = _read_hyperslabs(var, index)
         for k, p in enumerate(post):                         # reversed axes as views

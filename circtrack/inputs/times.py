@@ -26,17 +26,19 @@ _MIXED_CALENDARS = {"", "standard", "gregorian", "julian"}
 _YEAR_ZERO_MARK = "_circtrack_year_zero"         # dataset attribute: time variables decoded with year 0
 
 
-def reopen_undecoded(path, engine, extra, cfg, coder, msg):
+def reopen_undecoded(path, engine, extra, cfg, coder, msg, target=None):
     """After xarray refused to open ``path`` with error ``msg``: the dataset with its time axes
     decoded by one of the special cases here, or None when the failure was not about time.
+    ``target``: what xarray opens when it is not ``path`` itself (e.g. a file object of an object
+    in object storage).
 
     Raises one :class:`~circtrack.errors.InputError` line when it was about time and no special
     case applies (or a "months since" axis is ambiguous)."""
     low = msg.lower()
     if "months since" in low:
-        return _open_months_since(path, engine, extra, cfg, coder)
+        return _open_months_since(path, engine, extra, cfg, coder, target)
     if "time" in low or "zero" in low:
-        ds = _open_year_zero(path, engine, extra, coder)
+        ds = _open_year_zero(path, engine, extra, coder, target)
         if ds is not None:
             return ds
     if "time" in low or "calendar" in low or "units" in low:
@@ -123,13 +125,13 @@ def year_zero_time(units, calendar):
     return bool(_YEAR_ZERO.search(str(units))) and str(calendar).strip().lower() in _MIXED_CALENDARS
 
 
-def _open_year_zero(path, engine, extra, coder):
+def _open_year_zero(path, engine, extra, coder, target=None):
     """Reopen a file whose time axis counts from year 0 and decode it in the proleptic Gregorian
     calendar with astronomical year numbering (year 0 exists, as ISO 8601 has it); None when the
     failure had another cause. The decision is recorded by detection (:func:`year_zero_note`)."""
     try:
-        ds = xr.open_dataset(path, engine=engine, chunks=None, cache=False, decode_times=False,
-                             decode_timedelta=False, create_default_indexes=False, **extra)
+        ds = xr.open_dataset(path if target is None else target, engine=engine, chunks=None, cache=False,
+                             decode_times=False, decode_timedelta=False, create_default_indexes=False, **extra)
     except (ValueError, OSError, RuntimeError, KeyError, IndexError, TypeError):
         return None
     fixed = {}
@@ -190,11 +192,11 @@ def _decode_months(values, units, calendar, path, name, cfg):
     return np.array(out, dtype=object)
 
 
-def _open_months_since(path, engine, extra, cfg, coder):
+def _open_months_since(path, engine, extra, cfg, coder, target=None):
     """Reopen without time decoding and decode "months since" ourselves (one clear error if ambiguous)."""
     try:
-        ds = xr.open_dataset(path, engine=engine, chunks=None, cache=False, decode_times=False,
-                             decode_timedelta=False, create_default_indexes=False, **extra)
+        ds = xr.open_dataset(path if target is None else target, engine=engine, chunks=None, cache=False,
+                             decode_times=False, decode_timedelta=False, create_default_indexes=False, **extra)
     except (ValueError, OSError, RuntimeError, KeyError, IndexError, TypeError) as e:
         raise InputError(f"{path}: cannot be opened with the {engine} engine ({str(e).splitlines()[0]}); check "
                          "that it is a complete netCDF/Zarr file, or pass --on-bad-file skip")

@@ -16,6 +16,7 @@ import sys
 import time
 
 from circtrack.errors import InputError, UsageError
+from circtrack.inputs import remote
 
 STATE_VERSION = 2
 CHUNK = 1 << 20
@@ -50,13 +51,17 @@ def checksum(path):
     return h.hexdigest()
 
 
-def file_record(path):
+def file_record(path, cfg=None):
+    """Size, mtime and checksum of a file; size and ETag of an object in object storage (its
+    modification time says when it was uploaded, not whether its content changed)."""
+    if remote.is_url(path):
+        return remote.object_record(path, cfg)
     st = os.stat(path)
     return {"size": st.st_size, "mtime_ns": st.st_mtime_ns, "checksum": checksum(path)}
 
 
 def _same_file(old, new):
-    return old is not None and all(old.get(k) == new[k] for k in ("size", "mtime_ns", "checksum"))
+    return old is not None and all(old.get(k) == v for k, v in new.items())
 
 
 def _sha_text(text):
@@ -74,7 +79,8 @@ def time_key(iso):
 
 
 def params_hash(cfg, metrics, sectors, overrides):
-    blob = json.dumps({"config": cfg, "metrics": metrics, "sectors": [list(s) for s in sectors],
+    # how inputs are reached ([storage]: credentials, local copies) never changes the rows
+    blob = json.dumps({"config": {k: v for k, v in cfg.items() if k != "storage"}, "metrics": metrics, "sectors": [list(s) for s in sectors],
                        "variables": overrides}, sort_keys=True, default=str)
     return hashlib.sha256(blob.encode()).hexdigest()
 

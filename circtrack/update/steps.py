@@ -18,6 +18,7 @@ from dataclasses import dataclass, field
 import click
 
 from circtrack.errors import InputError, UsageError
+from circtrack.inputs.files import input_key
 from circtrack.update.state import (STATE_VERSION, _group_lines, _load_state, _pause_point, _record_step_days,
                                     _remove_stale_temps, _same_file, _sha_text, _source_paths, _step_class,
                                     acquire_lock, file_record, lock_path, params_hash, state_path, time_key)
@@ -84,7 +85,7 @@ class Update:
 
 def run_update(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file,
                quiet, rebuild=False, repeated_times=None, stdin=None, echo=None, units=(), levels=(),
-               fail_on_empty=False):
+               fail_on_empty=False, anonymous=False, cache_dir=None):
     """Bring OUT up to date with ``paths``; returns the new state (None when nothing was new)."""
     from circtrack import output as O
 
@@ -92,17 +93,17 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
     from circtrack.engine.locate import locate
 
     u = options(output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-                repeated_times, echo or click.echo, units, levels)
+                repeated_times, echo or click.echo, units, levels, anonymous, cache_dir)
     target = O.check_output_path(u.output, beside_names=("provenance.json", "state.json", "lock"), stream_ok=False)
     G.refuse_data_file_as_output(u.output)
     if os.path.islink(u.output):
         u.output = target.path        # written through: sidecar, state and lock beside the target
     # before anything is read: neither OUT nor a file beside it may be an input
-    files = locate(list(paths), stdin=stdin)
+    files = locate(list(paths), stdin=stdin, cfg=u.cfg)
     G.refuse_outputs_among_inputs([("-o", u.output), ("the sidecar of -o", O.sidecar_path(u.output)),
                                    ("the state of -o", state_path(u.output)),
                                    ("the lock of -o", lock_path(u.output))], files)
-    stamps = G.input_stamps(files)
+    stamps = G.input_stamps(files, u.cfg)
     lock_fd = acquire_lock(u.output)
     try:
         load_state(u, rebuild)
@@ -114,7 +115,7 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
         recompute(u)
         text = "\n".join([u.header, *[ln for t in sorted(u.blocks, key=time_key) for ln in u.blocks[t]]]) + "\n"
         new_state, prov = bookkeeping(u, text)
-        G.refuse_changed_inputs(stamps)
+        G.refuse_changed_inputs(stamps, u.cfg)
         write_atomically(u.output, text, prov, new_state)
         if not quiet:
             u.echo(f"circtrack: updated {u.output}: {len(u.processed)} file(s) processed, "
@@ -128,10 +129,10 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
 
 
 def options(output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-            repeated_times, echo, units=(), levels=()):
+            repeated_times, echo, units=(), levels=(), anonymous=False, cache_dir=None):
     """The command's options checked and combined with the config, as ``circtrack track`` does."""
     from circtrack import config as C
-    from circtrack.cli_support import apply_units, parse_vars
+    from circtrack.cli_support import apply_storage, apply_units, parse_vars
     from circtrack.engine.sectors import merge_sectors, parse_sector
     from circtrack.guards import check_cli_labels
 
@@ -139,7 +140,7 @@ def options(output, config, variables, metrics, label, sectors, workers, schedul
         raise UsageError("update needs an output file (-o OUT.csv), not stdout; the state lives beside it")
     if workers and scheduler:
         raise UsageError("--workers and --scheduler exclude each other; give one")
-    cfg = apply_units(C.load(config), units, levels)
+    cfg = apply_storage(apply_units(C.load(config), units, levels), anonymous, cache_dir)
     user_ids = [m.strip() for m in metrics.split(",") if m.strip()] if metrics else None
     secs = [parse_sector(s) for s in sectors]
     check_cli_labels(label, sectors, secs)
@@ -193,9 +194,9 @@ def diff_inputs(u, files):
     """Which inputs (``files``, located) are new or changed, which were removed, and whether file
     order or the repeat policy changed. Returns False when there is nothing to do."""
     u.files = list(files)
-    u.ab = [os.path.abspath(p) for p in u.files]
+    u.ab = [input_key(p) for p in u.files]
     u.shown = dict(zip(u.ab, u.files))
-    u.records = {a: file_record(a) for a in u.ab}
+    u.records = {a: file_record(a, u.cfg) for a in u.ab}
     old_files, state = u.old_files, u.state
     u.unchanged = [a for a in u.ab if _same_file(old_files.get(a), u.records[a])]
     u.fresh = [a for a in u.ab if a not in u.unchanged]
@@ -344,7 +345,7 @@ def merge(u, run_files, outcome):
     for a in run_files:                  # e.g. a file skipped for want of its partner, now joined
         u.entries[a].pop("skipped", None)
     for s in outcome.provenance["skipped_inputs"]:            # e.g. a variable no file supplies
-        u.entries[os.path.abspath(s["path"])]["skipped"] = s["reason"]
+        u.entries[input_key(s["path"])]["skipped"] = s["reason"]
     for inp in outcome.provenance["inputs"]:
         u.new_prov[inp["path"]] = inp
     for d in outcome.provenance["repeated_time_steps_dropped"]:
@@ -372,7 +373,7 @@ def bookkeeping(u, text):
     repeats = {t: repeats[t] for t in order if t in repeats}
     notes = {t: notes[t] for t in order if t in notes}
     entries, ab = u.entries, u.ab
-    dropped_from = {t: {os.path.abspath(d["path"]) for d in ds} for t, ds in repeats.items()}
+    dropped_from = {t: {input_key(d["path"]) for d in ds} for t, ds in repeats.items()}
     for a in ab:
         entries[a]["owned"] = [] if entries[a].get("skipped") else [
             t for t in entries[a]["times"] if t in u.blocks and a not in dropped_from.get(t, ())]
