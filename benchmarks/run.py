@@ -48,23 +48,57 @@ def month_starts(n):
     return out
 
 
-def data_dir(workdir, res, comp):
-    return Path(workdir) / f"res{res:g}" / comp
+def data_dir(workdir, res, comp, full=False):
+    return Path(workdir) / f"res{res:g}" / (f"{comp}-full" if full else comp)
 
 
-def generate(workdir, res, comp, months, log):
-    """One file per month holding ua and va (float32, daily).  Cached: existing files are kept."""
+FULL_VARS = ("ua", "va", "ta", "zg", "hus", "ps")
+
+
+def add_full_set(ds, rng):
+    """ta, zg, hus (on the levels) and ps besides ua and va: every family has its inputs.
+
+    Invented smooth fields: temperature falling with height to an isothermal layer above about
+    200 hPa (so a tropopause is found), geopotential height from the hypsometric equation with a
+    mean temperature, humidity decaying upwards; small noise so compression has work to do."""
+    import numpy as np
+    lat = np.deg2rad(ds["lat"].values)
+    p = ds["plev"].values
+    shape = ds["ua"].shape                                   # (T, L, J, I)
+    ts = 300.0 - 45.0 * np.sin(lat) ** 2                     # (J,)
+    ta = np.maximum(ts[None, :] * (p[:, None] / 1000.0) ** 0.19, 212.0)          # (L, J)
+    zg = (287.0 * 255.0 / 9.81 * np.log(1013.0 / p))[:, None] * np.ones_like(ts)[None, :]   # (L, J)
+    hus = 0.018 * np.cos(lat)[None, :] ** 2 * (p[:, None] / 1000.0) ** 3         # (L, J)
+    dims = ds["ua"].dims
+    for name, base, unit, std, sn in (("ta", ta, "K", 0.2, "air_temperature"),
+                                      ("zg", zg, "m", 2.0, "geopotential_height"),
+                                      ("hus", hus, "1", 1e-5, "specific_humidity")):
+        arr = np.broadcast_to(base[None, :, :, None], shape).astype(np.float32)
+        noise = rng.standard_normal(shape, dtype=np.float32)
+        noise *= np.float32(std)
+        arr = arr + noise
+        if name == "hus":
+            np.maximum(arr, 0.0, out=arr)
+        ds[name] = (dims, arr, {"standard_name": sn, "units": unit})
+    ps = 101300.0 + 50.0 * rng.standard_normal((shape[0],) + shape[2:], dtype=np.float32)
+    ds["ps"] = (("time", "lat", "lon"), ps.astype(np.float32), {"standard_name": "surface_air_pressure", "units": "Pa"})
+    return ds
+
+
+def generate(workdir, res, comp, months, log, full=False):
+    """One file per month holding ua and va (float32, daily), or the full set (``full``: ua, va, ta,
+    zg, hus, ps).  Cached: existing files are kept."""
     import numpy as np
     from circtrack import synthetic
 
-    d = data_dir(workdir, res, comp)
+    d = data_dir(workdir, res, comp, full)
     d.mkdir(parents=True, exist_ok=True)
     lat, lon = grid(res)
     starts = month_starts(months)
     files = []
     for i in range(months):
         t0, t1 = starts[i], starts[i + 1]
-        path = d / f"uv_day_{t0.year:04d}{t0.month:02d}.nc"
+        path = d / f"{'full' if full else 'uv'}_day_{t0.year:04d}{t0.month:02d}.nc"
         files.append(path)
         if path.exists():
             continue
@@ -78,9 +112,12 @@ def generate(workdir, res, comp, months, log):
             noise *= np.float32(NOISE_STD)
             ds[v].values += noise
             del noise
+        if full:
+            ds = add_full_set(ds, rng)
         enc = dict(synthetic.time_encoding())
-        for v in ("ua", "va"):
-            e = {"dtype": "float32", "chunksizes": (min(TIME_CHUNK, ndays), 1, lat.size, lon.size)}
+        for v in [v for v in FULL_VARS if v in ds]:
+            chunks = (min(TIME_CHUNK, ndays), 1, lat.size, lon.size)
+            e = {"dtype": "float32", "chunksizes": chunks if ds[v].ndim == 4 else (chunks[0],) + chunks[2:]}
             if comp == "zlib":
                 e.update(zlib=True, complevel=1, shuffle=True)
             else:
@@ -93,12 +130,12 @@ def generate(workdir, res, comp, months, log):
     return files
 
 
-def generate_many(workdir, n, res, log):
-    """``n`` small files of one day each (uncompressed): the many-small-files case."""
+def generate_many(workdir, n, res, log, comp="none"):
+    """``n`` small files of one day each: the many-small-files case."""
     import numpy as np
     from circtrack import synthetic
 
-    d = Path(workdir) / f"many{n}-res{res:g}"
+    d = Path(workdir) / (f"many{n}-res{res:g}" + ("" if comp == "none" else f"-{comp}"))
     d.mkdir(parents=True, exist_ok=True)
     lat, lon = grid(res)
     t0 = month_starts(1)[0]
@@ -113,19 +150,22 @@ def generate_many(workdir, n, res, log):
             for v in ("ua", "va"):
                 ds[v].values += rng.standard_normal(ds[v].shape).astype(np.float32) * np.float32(NOISE_STD)
             tmp = files[k].with_suffix(".nc.part")
-            ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=dict(synthetic.time_encoding()))
+            enc = dict(synthetic.time_encoding())
+            if comp == "zlib":
+                enc.update({v: {"zlib": True, "complevel": 1, "shuffle": True} for v in ("ua", "va")})
+            ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=enc)
             os.replace(tmp, files[k])
         log(f"  generated {len(missing)} files in {d} ({time.perf_counter() - t_start:.0f} s)")
     return files
 
 
 def payload_bytes(files):
-    """Uncompressed bytes of ua + va in the files (what every approach has to decode)."""
+    """Uncompressed bytes of the data variables in the files (what every approach has to decode)."""
     import netCDF4
     total = 0
     for f in files:
         with netCDF4.Dataset(f) as nc:
-            for v in ("ua", "va"):
+            for v in [v for v in FULL_VARS if v in nc.variables]:
                 var = nc.variables[v]
                 n = 1
                 for s in var.shape:
@@ -141,7 +181,7 @@ BASELINE_A = textwrap.dedent('''
     out = {}
     for f in sys.argv[1:]:
         with netCDF4.Dataset(f) as nc:
-            for name in ("ua", "va"):
+            for name in [v for v in ("ua", "va", "ta", "zg", "hus", "ps") if v in nc.variables]:
                 var = nc.variables[name]
                 var.set_auto_mask(False)
                 var.set_var_chunk_cache(size=1 << 20, nelems=521, preemption=0.75)
@@ -157,7 +197,7 @@ BASELINE_A = textwrap.dedent('''
 BASELINE_B = textwrap.dedent('''
     import sys, xarray as xr
     ds = xr.open_mfdataset(sys.argv[1:], engine="netcdf4", combine="by_coords")
-    zm = ds[["ua", "va"]].mean("lon").compute()
+    zm = ds[[v for v in ("ua", "va", "ta", "zg", "hus", "ps") if v in ds]].mean("lon").compute()
     print(dict(zm.sizes))
 ''')
 

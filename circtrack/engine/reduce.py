@@ -144,11 +144,12 @@ def reduce_chunk(job):
     stats = {role: _zonal_block(a, job["masks"]) for role, a in slabs.items()}
     extras = {}
     if job["reducers"]:
-        as64 = {r: a.astype(np.float64, copy=False) for r, a in slabs.items()}
+        # the slabs as read (the file's float type, e.g. float32, every level): each reducer converts
+        # only what it uses to float64 (e.g. one level), never a whole field
         plev = {r: rd.plev for r, rd in job["readers"].items()}
         for name, fn in job["reducers"].items():
             kw = {"lat": job["lat"]} if _wants_lat(fn) else {}     # latitudes for per-longitude features
-            extras[name] = np.asarray(fn(as64, plev, job["lon"], job["masks"], job["cfg"], **kw), dtype=np.float64)
+            extras[name] = np.asarray(fn(slabs, plev, job["lon"], job["masks"], job["cfg"], **kw), dtype=np.float64)
     # per time step layout notes (e.g. provisional_data), joined into the rows' flags
     return {"stats": stats, "extras": extras, "notes": {"time": D.merge_notes(notes)}}
 

@@ -12,7 +12,6 @@ import numpy as np
 
 from circtrack.constants import CP_DRY, GRAVITY, LATENT_HEAT_VAPORIZATION
 from circtrack.kernels.extrema import window_extremum
-from circtrack.kernels.vertical import at_level
 
 
 def zonal_covariance(a, b, mask=None):
@@ -50,15 +49,27 @@ def zonal_covariance(a, b, mask=None):
 
 
 def slab_at_level(arr, p, target, *, tolerance):
-    """``arr (..., L, J, I)`` at pressure ``target`` -> ``(..., J, I)``, or None outside the levels.
+    """``arr (..., L, J, I)`` at pressure ``target`` -> ``(..., J, I)`` in float64, or None outside the levels.
 
     Nearest level within ``tolerance``, else linear in log-pressure between the bracketing levels
-    (:func:`circtrack.kernels.vertical.at_level`)."""
+    (the rule of :func:`circtrack.kernels.vertical.at_level`). Only the one or two levels used are
+    converted to float64 (``arr`` may be a float32 field of every level): the same numbers as
+    converting the whole field first, without the copy."""
     if p is None:
         return None
-    moved = np.moveaxis(np.asarray(arr), -1, -3)            # (..., I, L, J)
-    out = at_level(moved, p, target, tolerance=tolerance)   # (..., I, J)
-    return None if out is None else np.moveaxis(out, -2, -1)
+    p = np.asarray(p, dtype=float)
+    k = int(np.argmin(np.abs(p - target)))
+    if abs(p[k] - target) <= tolerance:
+        return np.asarray(arr[..., k, :, :], dtype=np.float64)
+    if target < p.min() or target > p.max():
+        return None
+    order = np.argsort(p)
+    j = int(np.searchsorted(p[order], target)) - 1
+    a, b = order[j], order[j + 1]
+    t = (np.log(target) - np.log(p[a])) / (np.log(p[b]) - np.log(p[a]))
+    fa = np.asarray(arr[..., a, :, :], dtype=np.float64)
+    fb = np.asarray(arr[..., b, :, :], dtype=np.float64)
+    return fa + t * (fb - fa)
 
 
 def layer_weights(p):
