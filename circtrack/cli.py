@@ -19,7 +19,7 @@ def main(debug):
 
 
 def _run_track(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-               repeated_times=None):
+               repeated_times=None, profile=False):
     from circtrack import config as C
     from circtrack import engine, output as O
     from circtrack.cluster import scheduler_context
@@ -35,16 +35,26 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
     secs = [engine.parse_sector(s) for s in sectors]
     O.check_output_path(output)
     prog = engine.Progress(quiet=quiet)
-    with scheduler_context(workers, scheduler, cfg):
-        outcome = engine.track(list(paths), cfg, metric_ids=ids, label=label, sectors=secs,
-                               overrides=parse_vars(variables), progress=prog, on_bad_file=on_bad_file)
-    O.write(outcome, output, cfg, argv=["circtrack", *sys.argv[1:]])
+    from circtrack.engine import profile as PR
+    PR.enable(profile)
+    try:
+        with scheduler_context(workers, scheduler, cfg):
+            outcome = engine.track(list(paths), cfg, metric_ids=ids, label=label, sectors=secs,
+                                   overrides=parse_vars(variables), progress=prog, on_bad_file=on_bad_file)
+        with PR.timed(PR.STAGES, "write CSV and provenance"):
+            O.write(outcome, output, cfg, argv=["circtrack", *sys.argv[1:]])
+        if profile:
+            click.echo(PR.table(), err=True)
+    finally:
+        PR.enable(False)
     prog.done(len(outcome.columns["metric"]))
     return outcome
 
 
 @main.command()
 @track_options
+@click.option("--profile", is_flag=True,
+              help="Print to stderr where the time went: each stage, each part of the reduce tasks, each family.")
 @guarded
 def track(**kw):
     """Compute circulation indices from PATH... (files, directories, globs, or - for a list on stdin)."""

@@ -23,6 +23,7 @@ from dataclasses import dataclass, field
 import dask
 import numpy as np
 
+from circtrack.engine import profile
 from circtrack.engine.locate import file_stat, skip_or_raise
 from circtrack.engine.prepare import FileInfo, MissingRoles, prepare_file
 from circtrack.engine.reduce import reduce_chunk
@@ -280,7 +281,8 @@ class RunPlan:
         inf = self.infos[k]
         return {"path": inf.path, "cfg": self.cfg, "readers": inf.readers, "t0": a, "t1": b,
                 "masks": self.masks_of[k], "lon": np.asarray(inf.detected.lon, float),
-                "lat": np.sort(np.asarray(inf.detected.lat, float)), "reducers": self.plan.reducers}
+                "lat": np.sort(np.asarray(inf.detected.lat, float)), "reducers": self.plan.reducers,
+                "profile": profile.enabled()}
 
     def tasks(self):
         """The dask.delayed reduce calls of every chunk; building them reads nothing."""
