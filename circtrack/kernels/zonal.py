@@ -37,6 +37,9 @@ def zonal_covariance(a, b, mask=None):
     b = np.asarray(b, dtype=np.float64)
     if mask is not None:
         a, b = a[..., mask], b[..., mask]
+    fast = _covariance_all_valid(a, b)
+    if fast is not None:
+        return fast
     ok = np.isfinite(a) & np.isfinite(b)
     n = ok.sum(axis=-1)
     a0 = np.where(ok, a, 0.0)
@@ -47,6 +50,26 @@ def zonal_covariance(a, b, mask=None):
         cov = np.where(ok, (a0 - ma[..., None]) * (b0 - mb[..., None]), 0.0).sum(axis=-1) / n
     cov = np.where(n > 0, cov, np.nan)
     return cov, n / max(a.shape[-1], 1)
+
+
+def _covariance_all_valid(a, b):
+    """:func:`zonal_covariance` when every value is finite (the usual case above the ground), else
+    None: the same operations in the same order without the masking passes, so the same numbers.
+    Finite row sums tell that no value is NaN or infinite (a NaN or inf makes its row sum non-finite)."""
+    a = np.ascontiguousarray(a)
+    b = np.ascontiguousarray(b)
+    sa = a.sum(axis=-1)
+    sb = b.sum(axis=-1)
+    if not (np.isfinite(sa).all() and np.isfinite(sb).all()):
+        return None
+    n = a.shape[-1]
+    if n == 0:
+        return None
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ma = sa / n
+        mb = sb / n
+        cov = ((a - ma[..., None]) * (b - mb[..., None])).sum(axis=-1) / n
+    return cov, np.ones(cov.shape)
 
 
 def slab_at_level(arr, p, target, *, tolerance):
@@ -142,17 +165,20 @@ def fourier_amplitudes(y, lon, wavenumbers):
     lam = np.deg2rad(np.mod(np.asarray(lon, float), 360.0))
     order = np.argsort(lam, kind="stable")       # sum in one longitude order whatever the file's convention
     lam = lam[order]
-    y = np.asarray(y, dtype=np.float64)[..., order]
+    y = np.asarray(y, dtype=np.float64)
+    # longitudes already in order (the usual grid): no reordered copy; same numbers either way
+    y = np.ascontiguousarray(y) if np.array_equal(order, np.arange(order.size)) else y[..., order]
     gaps = np.diff(np.concatenate([lam, [lam[0] + 2 * np.pi]]))          # to the next point, cyclic
     w = 0.5 * (gaps + np.roll(gaps, 1))
     ks = np.asarray(wavenumbers, dtype=float)
     cos = np.cos(ks[:, None] * lam[None, :]) * w[None, :]                # (K, I)
     sin = np.sin(ks[:, None] * lam[None, :]) * w[None, :]
-    y0 = np.nan_to_num(y, nan=0.0)
+    complete = np.isfinite(y).all(axis=-1)
+    y0 = y if complete.all() else np.nan_to_num(y, nan=0.0)     # nothing to replace: no copy
     a = y0 @ cos.T / np.pi
     b = y0 @ sin.T / np.pi
     amp = np.hypot(a, b)
-    return np.where(np.isfinite(y).all(axis=-1)[..., None], amp, np.nan)
+    return np.where(complete[..., None], amp, np.nan)
 
 
 def per_longitude_peak(y, lat, hemi, window, *, min_fraction):
