@@ -24,6 +24,7 @@ import dask
 import numpy as np
 
 from circtrack.engine import profile
+from circtrack.engine.layouts import LayoutCache
 from circtrack.engine.locate import file_stat, skip_or_raise
 from circtrack.engine.prepare import FileInfo, MissingRoles, prepare_file
 from circtrack.engine.reduce import reduce_chunk
@@ -86,9 +87,20 @@ def prepare_inputs(files, plan, cfg, overrides, policy):
     """Every file prepared (prepare.py), split variables joined, the bad-file policy applied and the
     inputs checked to fit together. Returns ``(infos, skipped)``."""
     infos, skipped, partial = [], [], []
+    layouts = LayoutCache(cfg)         # files of one layout: a header read each, one detection
     for p in files:
         try:
-            infos.append(prepare_file(p, plan, cfg, overrides))
+            shared = layouts.shared(p)
+            if isinstance(shared, MissingRoles):
+                raise shared
+            if shared is None:
+                try:
+                    shared = prepare_file(p, plan, cfg, overrides)
+                except MissingRoles as e:
+                    layouts.remember(p, e)
+                    raise
+                layouts.remember(p, shared)
+            infos.append(shared)
         except MissingRoles as e:
             partial.append(e)          # joined below with files holding its other variables
         except InputError as e:
