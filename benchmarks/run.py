@@ -1,8 +1,9 @@
 #!/usr/bin/env python
 """Benchmark harness: circtrack vs plain netCDF4/numpy, xarray.open_mfdataset and (optionally) cdo.
 
-    python benchmarks/run.py [--months N] [--res 0.5] [--compress zlib|none|both]
-                             [--workdir DIR] [--repeat 1] [--scaling]
+    python benchmarks/run.py [--months N] [--res 0.5] [--compress zlib|none|both] [--sets uv|full|both]
+                             [--workdir DIR] [--repeat K] [--scaling] [--many-files N] [--before DIR]
+                             [--quick] [--profile]
 
 See benchmarks/README.md.  Nothing here is a test; it only measures and prints.
 """
@@ -202,41 +203,64 @@ BASELINE_B = textwrap.dedent('''
 ''')
 
 
-def circtrack_cmd():
-    """The circtrack entry point next to this interpreter (the venv's), else the one on PATH."""
-    ct = shutil.which("circtrack", path=str(Path(sys.executable).parent) + os.pathsep + os.environ.get("PATH", ""))
-    return [ct] if ct else [sys.executable, "-c", "import sys; from circtrack.cli import main; sys.exit(main())"]
+REPO = Path(__file__).resolve().parents[1]
+BEFORE = None            # --before DIR: a checkout of circtrack timed side by side with this one
+QUICK = False            # --quick: leave out baseline B and the dask.distributed rows
+
+
+def circtrack_cmd(code=None):
+    """``python -m circtrack.cli`` with the circtrack of ``code`` (default: this checkout) first on
+    the path, as an environment for :func:`measure`."""
+    env = {"PYTHONPATH": str(code or REPO)}
+    return [sys.executable, "-m", "circtrack.cli"], env
 
 
 def approaches(files, outdir):
+    """(name, command, extra environment) per approach; the circtrack rows run the default metric
+    set (what ``track`` does without --metrics), the 4-metric subset is an extra row."""
     files = [str(f) for f in files]
     py = sys.executable
-    ct_cmd = circtrack_cmd()
+    ct, env = circtrack_cmd()
     out = []
-    out.append(("baseline A: netCDF4 + numpy, file by file", [py, "-c", BASELINE_A, *files]))
-    out.append(("baseline B: xarray open_mfdataset + mean", [py, "-c", BASELINE_B, *files]))
-    out.append(("circtrack track (default: worker processes)",
-                ct_cmd + ["track", *files, "-o", str(outdir / "track_threads.csv"), "--metrics", METRICS, "-q"]))
+    out.append(("baseline A: netCDF4 + numpy, file by file", [py, "-c", BASELINE_A, *files], {}))
+    if not QUICK:
+        out.append(("baseline B: xarray open_mfdataset + mean", [py, "-c", BASELINE_B, *files], {}))
+    out.append(("circtrack track, default metrics (worker processes)",
+                ct + ["track", *files, "-o", str(outdir / "track_default.csv"), "-q"], env))
     one = Path(outdir) / "one_process.toml"
     one.write_text("[run]\nprocesses = 1\n")
-    out.append(("circtrack track, 1 worker process (run.processes = 1)",
-                ct_cmd + ["track", *files, "-o", str(outdir / "track_p1.csv"), "--metrics", METRICS, "-q",
-                          "-c", str(one)]))
-    out.append(("circtrack track --workers 1",
-                ct_cmd + ["track", *files, "-o", str(outdir / "track_w1.csv"), "--metrics", METRICS, "-q",
-                          "--workers", "1"]))
-    out.append(("circtrack track --workers 2",
-                ct_cmd + ["track", *files, "-o", str(outdir / "track_w2.csv"), "--metrics", METRICS, "-q",
-                          "--workers", "2"]))
+    out.append(("circtrack track, default metrics, 1 worker process",
+                ct + ["track", *files, "-o", str(outdir / "track_p1.csv"), "-q", "-c", str(one)], env))
+    out.append(("circtrack track --metrics (4 metrics)",
+                ct + ["track", *files, "-o", str(outdir / "track_4.csv"), "--metrics", METRICS, "-q"], env))
+    if BEFORE:
+        bct, benv = circtrack_cmd(BEFORE)
+        out.append((f"before ({BEFORE}): default metrics (worker processes)",
+                    bct + ["track", *files, "-o", str(outdir / "before_default.csv"), "-q"], benv))
+        out.append((f"before ({BEFORE}): default metrics, 1 worker process",
+                    bct + ["track", *files, "-o", str(outdir / "before_p1.csv"), "-q", "-c", str(one)], benv))
+    if not QUICK:
+        out.append(("circtrack track --workers 1",
+                    ct + ["track", *files, "-o", str(outdir / "track_w1.csv"), "-q", "--workers", "1"], env))
+        out.append(("circtrack track --workers 2",
+                    ct + ["track", *files, "-o", str(outdir / "track_w2.csv"), "-q", "--workers", "2"], env))
     cdo = shutil.which("cdo") if WITH_CDO else None
     if cdo:
         script = "set -e\n" + "\n".join(
             f'{cdo} -s zonmean "{f}" "{outdir}/cdo_zm_{i}.nc"' for i, f in enumerate(files))
-        out.append(("cdo zonmean per file", ["bash", "-c", script]))
+        out.append(("cdo zonmean per file", ["bash", "-c", script], {}))
     return out
 
 
-def measure(cmd, log_path):
+def profile_table(files, outdir):
+    """``circtrack track --profile`` once: where the time of the default run goes (stderr table)."""
+    ct, env = circtrack_cmd()
+    proc = subprocess.run(ct + ["track", *map(str, files), "-o", str(outdir / "profile.csv"), "-q", "--profile"],
+                          capture_output=True, text=True, env={**os.environ, **env})
+    return proc.stderr.strip()
+
+
+def measure(cmd, log_path, env=None):
     """Wall time, max RSS of the largest single process (wait4 / time -v) and sampled peak of the
     summed RSS of the whole process tree (matters for --workers, where workers are separate processes)."""
     import psutil
@@ -248,7 +272,7 @@ def measure(cmd, log_path):
 
     with open(log_path, "w") as log:
         t0 = time.perf_counter()
-        proc = subprocess.Popen(full, stdout=log, stderr=subprocess.PIPE, text=True)
+        proc = subprocess.Popen(full, stdout=log, stderr=subprocess.PIPE, text=True, env={**os.environ, **(env or {})})
 
         def sample():
             nonlocal peak_tree
@@ -292,21 +316,29 @@ def measure(cmd, log_path):
 
 
 def run_config(files, outdir, nbytes, repeat, log):
-    rows = []
-    for name, cmd in approaches(files, outdir):
-        best = None
-        for r in range(repeat):
+    """Every approach ``repeat`` times, alternating (round after round), so that load from other
+    processes on the machine falls on all of them alike; the median wall time is reported, with
+    the largest RSS seen."""
+    import statistics
+
+    plan = approaches(files, outdir)
+    runs = {name: [] for name, _, _ in plan}
+    for r in range(repeat):
+        for name, cmd, env in plan:
+            if runs[name] and runs[name][-1]["rc"] != 0:
+                continue
             slug = "".join(c if c.isalnum() else "_" for c in name)[:40]
-            m = measure(cmd, outdir / f"{slug}.{r}.log")
-            log(f"  {name}: rc={m['rc']} wall={m['wall']:.1f}s maxrss={m['maxrss'] / 1e9:.2f}GB "
-                f"tree={m['tree'] / 1e9:.2f}GB")
-            if m["rc"] != 0:
-                best = m
-                break
-            if best is None or m["wall"] < best["wall"]:
-                best = {**m, "maxrss": max(m["maxrss"], (best or m)["maxrss"]),
-                        "tree": max(m["tree"], (best or m)["tree"])}
-        rows.append((name, best))
+            m = measure(cmd, outdir / f"{slug}.{r}.log", env)
+            log(f"  [{r + 1}/{repeat}] {name}: rc={m['rc']} wall={m['wall']:.1f}s maxrss={m['maxrss'] / 1e9:.2f}GB "
+                f"tree={m['tree'] / 1e9:.2f}GB load={os.getloadavg()[0]:.1f}")
+            runs[name].append(m)
+    rows = []
+    for name, ms in runs.items():
+        if ms[-1]["rc"] != 0:
+            rows.append((name, ms[-1]))
+            continue
+        rows.append((name, {"rc": 0, "wall": statistics.median(m["wall"] for m in ms),
+                            "maxrss": max(m["maxrss"] for m in ms), "tree": max(m["tree"] for m in ms)}))
     base = rows[0][1]["wall"] if rows and rows[0][1]["rc"] == 0 else None
     table = []
     for name, m in rows:
@@ -334,21 +366,31 @@ def main(argv=None):
     ap.add_argument("--res", type=float, default=0.5)
     ap.add_argument("--compress", choices=["zlib", "none", "both"], default="both")
     ap.add_argument("--workdir", default=os.path.join(tempfile.gettempdir(), "circtrack-bench"))
-    ap.add_argument("--repeat", type=int, default=1, help="runs per approach; the fastest is reported")
+    ap.add_argument("--repeat", type=int, default=1,
+                    help="rounds of runs, alternating between approaches; the median is reported")
+    ap.add_argument("--sets", choices=["uv", "full", "both"], default="both",
+                    help="u+v files, the full set (ua, va, ta, zg, hus, ps: every family), or both")
     ap.add_argument("--scaling", action="store_true",
                     help="also compare circtrack peak RSS for 1 month vs --months months")
     ap.add_argument("--many-files", type=int, default=0, metavar="N",
-                    help="also time N small one-day files (uncompressed, --many-res grid)")
-    ap.add_argument("--many-res", type=float, default=5.0)
+                    help="also time N small one-day files (--many-res grid, --many-compress)")
+    ap.add_argument("--many-res", type=float, default=2.0)
+    ap.add_argument("--many-compress", choices=["zlib", "none"], default="zlib")
     ap.add_argument("--skip-large", action="store_true", help="only the --many-files case")
     ap.add_argument("--no-cdo", action="store_true", help="leave out cdo zonmean even when cdo is installed")
+    ap.add_argument("--quick", action="store_true", help="leave out baseline B and the --workers rows")
+    ap.add_argument("--before", metavar="DIR", default=None,
+                    help="another circtrack checkout (e.g. main) timed side by side with this one")
+    ap.add_argument("--profile", action="store_true",
+                    help="also print where the default run's time goes (circtrack track --profile) per table")
     a = ap.parse_args(argv)
-    global WITH_CDO
+    global WITH_CDO, QUICK, BEFORE
     WITH_CDO = not a.no_cdo
+    QUICK = a.quick
+    BEFORE = str(Path(a.before).resolve()) if a.before else None
 
     workdir = Path(a.workdir).resolve()
-    repo = Path(__file__).resolve().parents[1]
-    if repo in workdir.parents or workdir == repo:
+    if REPO in workdir.parents or workdir == REPO:
         ap.error("--workdir must be outside the repository")
     workdir.mkdir(parents=True, exist_ok=True)
 
@@ -356,6 +398,7 @@ def main(argv=None):
         print(msg, file=sys.stderr, flush=True)
 
     comps = ["zlib", "none"] if a.compress == "both" else [a.compress]
+    sets = {"uv": [False], "full": [True], "both": [False, True]}[a.sets]
     if a.skip_large:
         comps = []
     import platform
@@ -366,54 +409,64 @@ def main(argv=None):
               f"python {platform.python_version()}, numpy {numpy.__version__}, xarray {xarray.__version__}, "
               f"dask {dask.__version__}, netCDF4 {netCDF4.__version__}, cdo: {shutil.which('cdo') or 'not found'}",
               "",
-              f"months={a.months}, res={a.res:g} deg, levels={len(PLEV)}, daily, ua+va float32, "
-              f"chunks=({TIME_CHUNK}, 1, lat, lon), repeat={a.repeat} (fastest kept), warm page cache.",
+              f"months={a.months}, res={a.res:g} deg, levels={len(PLEV)}, daily, float32, "
+              f"chunks=({TIME_CHUNK}, 1, lat, lon), repeat={a.repeat} (alternating rounds, median), warm page cache"
+              + (f", before = {BEFORE}" if BEFORE else "") + ".",
               ""]
-    for comp in comps:
-        log(f"[{comp}] data in {data_dir(workdir, a.res, comp)}")
-        files = generate(workdir, a.res, comp, a.months, log)
-        nbytes = payload_bytes(files)
-        ondisk = sum(f.stat().st_size for f in files)
-        outdir = workdir / "runs" / f"res{a.res:g}-{comp}-{a.months}m"
-        outdir.mkdir(parents=True, exist_ok=True)
-        # warm the page cache so every approach sees the same state
-        for f in files:
-            with open(f, "rb") as fh:
-                while fh.read(1 << 24):
-                    pass
-        table = run_config(files, outdir, nbytes, a.repeat, log)
-        report += [f"## compression: {comp}",
-                   "",
-                   f"{len(files)} files, {nbytes / 1e6:.0f} MB of ua+va values, {ondisk / 1e6:.0f} MB on disk "
-                   f"(ratio {nbytes / ondisk:.2f}). Logs: {outdir}",
-                   "",
-                   markdown(table), ""]
 
-        if a.scaling:
-            rows = []
-            for n in sorted({1, a.months}):
-                m = measure(circtrack_cmd() + ["track", *map(str, files[:n]), "-o",
-                             str(outdir / f"scaling_{n}.csv"), "--metrics", METRICS, "-q"],
-                            outdir / f"scaling_{n}.log")
-                log(f"  scaling {n} month(s): rc={m['rc']} wall={m['wall']:.1f}s maxrss={m['maxrss'] / 1e9:.2f}GB")
-                rows.append((n, m))
-            r1 = rows[0][1]["maxrss"]
-            report += [f"### memory vs record length ({comp}, circtrack track, default worker processes)", "",
-                       markdown([(str(n), f"{m['wall']:.1f}" if m["rc"] == 0 else f"FAILED rc={m['rc']}",
-                                  f"{m['maxrss'] / 1e9:.2f}", f"{m['maxrss'] / r1:.2f}") for n, m in rows],
-                                head=("months", "wall s", "peak RSS GB", "RSS ratio to 1 month")), ""]
+    def one_table(title, files, outdir, nbytes, extra=""):
+        load0 = os.getloadavg()
+        table = run_config(files, outdir, nbytes, a.repeat, log)
+        load1 = os.getloadavg()
+        lines = [title, "", f"{extra}Logs: {outdir}. Load average (1 min) before/after: {load0[0]:.1f} / {load1[0]:.1f}.",
+                 "", markdown(table), ""]
+        if a.profile:
+            lines += ["Where the time goes (`circtrack track --profile`, one run):", "", "```",
+                      profile_table(files, outdir), "```", ""]
+        return lines
+
+    for full in sets:
+        for comp in comps:
+            what = "full set (ua, va, ta, zg, hus, ps)" if full else "ua + va"
+            log(f"[{comp}, {what}] data in {data_dir(workdir, a.res, comp, full)}")
+            files = generate(workdir, a.res, comp, a.months, log, full=full)
+            nbytes = payload_bytes(files)
+            ondisk = sum(f.stat().st_size for f in files)
+            outdir = workdir / "runs" / f"res{a.res:g}-{comp}{'-full' if full else ''}-{a.months}m"
+            outdir.mkdir(parents=True, exist_ok=True)
+            for f in files:           # warm the page cache so every approach sees the same state
+                with open(f, "rb") as fh:
+                    while fh.read(1 << 24):
+                        pass
+            report += one_table(f"## {what}, compression: {comp}", files, outdir, nbytes,
+                                f"{len(files)} files, {nbytes / 1e6:.0f} MB of values, {ondisk / 1e6:.0f} MB on disk "
+                                f"(ratio {nbytes / ondisk:.2f}). ")
+            if a.scaling:
+                rows = []
+                ct, env = circtrack_cmd()
+                for n in sorted({1, a.months}):
+                    m = measure(ct + ["track", *map(str, files[:n]), "-o", str(outdir / f"scaling_{n}.csv"), "-q"],
+                                outdir / f"scaling_{n}.log", env)
+                    log(f"  scaling {n} month(s): rc={m['rc']} wall={m['wall']:.1f}s tree={m['tree'] / 1e9:.2f}GB")
+                    rows.append((n, m))
+                r1 = rows[0][1]["tree"] or 1
+                report += [f"### memory vs record length ({what}, {comp}, default metrics, worker processes)", "",
+                           markdown([(str(n), f"{m['wall']:.1f}" if m["rc"] == 0 else f"FAILED rc={m['rc']}",
+                                      f"{m['maxrss'] / 1e9:.2f}", f"{m['tree'] / 1e9:.2f}", f"{m['tree'] / r1:.2f}")
+                                     for n, m in rows],
+                                    head=("months", "wall s", "peak RSS GB (largest proc)", "peak RSS GB (tree sum)",
+                                          "tree ratio to 1 month")), ""]
 
     if a.many_files:
-        log(f"[many] {a.many_files} one-day files at {a.many_res:g} deg")
-        files = generate_many(workdir, a.many_files, a.many_res, log)
+        log(f"[many] {a.many_files} one-day files at {a.many_res:g} deg, {a.many_compress}")
+        files = generate_many(workdir, a.many_files, a.many_res, log, comp=a.many_compress)
         nbytes = payload_bytes(files)
-        outdir = workdir / "runs" / f"many{a.many_files}-res{a.many_res:g}"
+        outdir = workdir / "runs" / f"many{a.many_files}-res{a.many_res:g}-{a.many_compress}"
         outdir.mkdir(parents=True, exist_ok=True)
         for f in files:
             f.read_bytes()
-        table = run_config(files, outdir, nbytes, a.repeat, log)
-        report += [f"## many small files: {len(files)} one-day files, {a.many_res:g} deg, uncompressed", "",
-                   f"{nbytes / 1e6:.0f} MB of ua+va values. Logs: {outdir}", "", markdown(table), ""]
+        report += one_table(f"## many small files: {len(files)} one-day files, {a.many_res:g} deg, "
+                            f"{a.many_compress}", files, outdir, nbytes, f"{nbytes / 1e6:.0f} MB of ua+va values. ")
 
     text = "\n".join(report)
     (workdir / "results.md").write_text(text + "\n")
