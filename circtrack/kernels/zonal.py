@@ -55,9 +55,8 @@ def zonal_covariance(a, b, mask=None):
 def _covariance_all_valid(a, b):
     """:func:`zonal_covariance` when every value is finite (the usual case above the ground), else
     None: the same operations in the same order without the masking passes, so the same numbers.
-    Finite row sums tell that no value is NaN or infinite (a NaN or inf makes its row sum non-finite)."""
-    a = np.ascontiguousarray(a)
-    b = np.ascontiguousarray(b)
+    Finite row sums tell that no value is NaN or infinite (a NaN or inf makes its row sum non-finite).
+    The arrays keep their memory layout (as ``np.where`` would), so the sums add in the same order."""
     sa = a.sum(axis=-1)
     sb = b.sum(axis=-1)
     if not (np.isfinite(sa).all() and np.isfinite(sb).all()):
@@ -165,9 +164,7 @@ def fourier_amplitudes(y, lon, wavenumbers):
     lam = np.deg2rad(np.mod(np.asarray(lon, float), 360.0))
     order = np.argsort(lam, kind="stable")       # sum in one longitude order whatever the file's convention
     lam = lam[order]
-    y = np.asarray(y, dtype=np.float64)
-    # longitudes already in order (the usual grid): no reordered copy; same numbers either way
-    y = np.ascontiguousarray(y) if np.array_equal(order, np.arange(order.size)) else y[..., order]
+    y = np.asarray(y, dtype=np.float64)[..., order]
     gaps = np.diff(np.concatenate([lam, [lam[0] + 2 * np.pi]]))          # to the next point, cyclic
     w = 0.5 * (gaps + np.roll(gaps, 1))
     ks = np.asarray(wavenumbers, dtype=float)
