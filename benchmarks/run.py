@@ -231,8 +231,9 @@ def approaches(files, outdir):
     one.write_text("[run]\nprocesses = 1\n")
     out.append(("circtrack track, default metrics, 1 worker process",
                 ct + ["track", *files, "-o", str(outdir / "track_p1.csv"), "-q", "-c", str(one)], env))
-    out.append(("circtrack track --metrics (4 metrics)",
-                ct + ["track", *files, "-o", str(outdir / "track_4.csv"), "--metrics", METRICS, "-q"], env))
+    if not QUICK:
+        out.append(("circtrack track --metrics (4 metrics)",
+                    ct + ["track", *files, "-o", str(outdir / "track_4.csv"), "--metrics", METRICS, "-q"], env))
     if BEFORE:
         bct, benv = circtrack_cmd(BEFORE)
         out.append((f"before ({BEFORE}): default metrics (worker processes)",
@@ -305,14 +306,18 @@ def measure(cmd, log_path, env=None):
         log.write("\n--- stderr ---\n" + err)
 
     maxrss = None
+    cpu = 0.0
     if use_time:
         for line in err.splitlines():
             if "Maximum resident set size" in line:
                 maxrss = int(line.rsplit(":", 1)[1]) * 1024
+            if "User time (seconds)" in line or "System time (seconds)" in line:
+                cpu += float(line.rsplit(":", 1)[1])
     if maxrss is None:
         import resource
         maxrss = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss * 1024  # upper bound
-    return dict(rc=proc.returncode, wall=wall, maxrss=maxrss, tree=peak_tree)
+    # cpu: user + system seconds of the process and the children it waited for (worker processes)
+    return dict(rc=proc.returncode, wall=wall, maxrss=maxrss, tree=peak_tree, cpu=cpu)
 
 
 def run_config(files, outdir, nbytes, repeat, log):
@@ -338,20 +343,25 @@ def run_config(files, outdir, nbytes, repeat, log):
             rows.append((name, ms[-1]))
             continue
         rows.append((name, {"rc": 0, "wall": statistics.median(m["wall"] for m in ms),
+                            "cpu": statistics.median(m["cpu"] for m in ms),
                             "maxrss": max(m["maxrss"] for m in ms), "tree": max(m["tree"] for m in ms)}))
-    base = rows[0][1]["wall"] if rows and rows[0][1]["rc"] == 0 else None
+    ok0 = rows and rows[0][1]["rc"] == 0
+    base = rows[0][1]["wall"] if ok0 else None
+    base_cpu = rows[0][1]["cpu"] if ok0 else None
     table = []
     for name, m in rows:
         if m["rc"] != 0:
-            table.append((name, f"FAILED rc={m['rc']}", "", "", "", ""))
+            table.append((name, f"FAILED rc={m['rc']}", "", "", "", "", "", ""))
             continue
         ratio = f"{m['wall'] / base:.2f}" if base else ""
-        table.append((name, f"{m['wall']:.1f}", ratio, f"{nbytes / 1e6 / m['wall']:.0f}",
+        cratio = f"{m['cpu'] / base_cpu:.2f}" if base_cpu else ""
+        table.append((name, f"{m['wall']:.1f}", ratio, f"{m['cpu']:.1f}", cratio, f"{nbytes / 1e6 / m['wall']:.0f}",
                       f"{m['maxrss'] / 1e9:.2f}", f"{m['tree'] / 1e9:.2f}"))
     return table
 
 
-HEAD = ("approach", "wall s", "ratio to A", "input MB/s", "peak RSS GB (largest proc)", "peak RSS GB (tree sum)")
+HEAD = ("approach", "wall s", "ratio to A", "CPU s", "CPU ratio to A", "input MB/s", "peak RSS GB (largest proc)",
+        "peak RSS GB (tree sum)")
 
 
 def markdown(table, head=HEAD):
@@ -378,7 +388,8 @@ def main(argv=None):
     ap.add_argument("--many-compress", choices=["zlib", "none"], default="zlib")
     ap.add_argument("--skip-large", action="store_true", help="only the --many-files case")
     ap.add_argument("--no-cdo", action="store_true", help="leave out cdo zonmean even when cdo is installed")
-    ap.add_argument("--quick", action="store_true", help="leave out baseline B and the --workers rows")
+    ap.add_argument("--quick", action="store_true",
+                    help="leave out baseline B, the 4-metric row and the --workers rows")
     ap.add_argument("--before", metavar="DIR", default=None,
                     help="another circtrack checkout (e.g. main) timed side by side with this one")
     ap.add_argument("--profile", action="store_true",
