@@ -155,22 +155,32 @@ def _decode_times(head, tname):
 
 
 def _relabel(outcome, first_path, path, times):
-    """A deep copy of ``outcome`` with this file's path and time steps."""
+    """A copy of ``outcome`` with this file's path and time steps (the coordinate arrays are shared:
+    nothing changes them after detection; the dictionaries and readers are copied)."""
     from circtrack.engine.prepare import MissingRoles
     info = outcome.info if isinstance(outcome, MissingRoles) else outcome
-    new = copy.deepcopy(info)
-    new.path = path
-    new.detected.path = path
-    new.detected.times = times
-    for reader in list(new.readers.values()):
-        _relabel_reader(reader, path, times.size)
+    det = copy.copy(info.detected)
+    for name, value in vars(det).items():
+        if isinstance(value, dict):
+            setattr(det, name, copy.deepcopy(value) if name in ("hybrid", "streams") else dict(value))
+    det.path = path
+    det.times = times
+    new = copy.copy(info)
+    new.path, new.detected = path, det
+    new.readers = {r: _relabel_reader(x, path, times.size) for r, x in info.readers.items()}
+    new.plev = dict(info.plev)
     if isinstance(outcome, MissingRoles):
         return MissingRoles(str(outcome).replace(first_path, path), new, list(outcome.missing))
     return new
 
 
 def _relabel_reader(reader, path, ntime):
-    reader.path = path
-    reader.ntime = ntime
-    if reader.hybrid and reader.hybrid.get("ps") is not None:
-        _relabel_reader(reader.hybrid["ps"], path, ntime)
+    new = copy.copy(reader)
+    new.path = path
+    new.ntime = ntime
+    new.selection = dict(reader.selection)
+    if reader.hybrid is not None:
+        new.hybrid = dict(reader.hybrid)
+        if new.hybrid.get("ps") is not None:
+            new.hybrid["ps"] = _relabel_reader(new.hybrid["ps"], path, ntime)
+    return new
