@@ -257,7 +257,7 @@ def profile_table(files, outdir):
     """``circtrack track --profile`` once: where the time of the default run goes (stderr table)."""
     ct, env = circtrack_cmd()
     proc = subprocess.run(ct + ["track", *map(str, files), "-o", str(outdir / "profile.csv"), "-q", "--profile"],
-                          capture_output=True, text=True, env={**os.environ, **env})
+                          capture_output=True, text=True, env={**os.environ, **env}, cwd=str(outdir))
     return proc.stderr.strip()
 
 
@@ -273,7 +273,10 @@ def measure(cmd, log_path, env=None):
 
     with open(log_path, "w") as log:
         t0 = time.perf_counter()
-        proc = subprocess.Popen(full, stdout=log, stderr=subprocess.PIPE, text=True, env={**os.environ, **(env or {})})
+        # cwd: the runs directory, never a checkout (``python -m`` puts the cwd first on sys.path,
+        # before PYTHONPATH, which would run that checkout's circtrack in every row)
+        proc = subprocess.Popen(full, stdout=log, stderr=subprocess.PIPE, text=True, env={**os.environ, **(env or {})},
+                                cwd=str(Path(log_path).parent))
 
         def sample():
             nonlocal peak_tree
