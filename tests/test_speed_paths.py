@@ -218,7 +218,12 @@ def test_rows_identical_in_worker_processes(tmp_path):
 
 # --------------------------------------------------------------------------- files of one layout
 def one_day_files(tmp_path, n, **kw):
-    return [write(full_set(1, members=1, seed=k, start=k), tmp_path / f"day{k:03d}.nc") for k in range(n)]
+    out = []
+    for k in range(n):
+        ds = full_set(1, members=1, seed=k, start=k)
+        ds.attrs.update(history=f"written at step {k}", tracking_id=f"id-{k}")    # differ per file, as usual
+        out.append(write(ds, tmp_path / f"day{k:03d}.nc"))
+    return out
 
 
 def counting_prepare(monkeypatch):

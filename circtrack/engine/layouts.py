@@ -7,7 +7,7 @@ not a netCDF-4/HDF5 file, data streams, times that this shortcut would decode di
 doubt). Thousands of one-day files then cost one header read each instead of an xarray open.
 
 Two files share a layout when their headers agree on everything but the time steps: the file
-format, global attributes, every variable's name, dimensions, type and attributes, every dimension
+format, global attributes (but for their history, tracking id and dates), every variable's name, dimensions, type and attributes, every dimension
 size but the time axis's, and the values of every variable without the time dimension (coordinates,
 level coefficients). The time steps are decoded from the raw values with the same CF decoder the
 full open uses; the first file of a layout checks that this gives exactly the times its full
@@ -21,6 +21,9 @@ import os
 
 import numpy as np
 
+# global attributes that differ from file to file and that detection never reads (it reads the
+# member and model names, title and institution: those stay in the key)
+VOLATILE = {"history", "tracking_id", "creation_date", "date_created", "date_modified", "date_metadata_modified"}
 SMALL = 1 << 16          # two-dimensional variables up to this many values (e.g. cell bounds) are compared by value
 
 
@@ -90,7 +93,7 @@ def _header(path, cfg):
                 variables[name] = {"dims": var.dimensions, "dtype": str(var.dtype), "attrs": attrs,
                                    "attr_values": values, "shape": var.shape, "var": var}
             dims = tuple((d, len(v), v.isunlimited()) for d, v in nc.dimensions.items())
-            key = (nc.data_model, tuple((a, _text(nc.getncattr(a))) for a in nc.ncattrs()),
+            key = (nc.data_model, tuple((a, _text(nc.getncattr(a))) for a in nc.ncattrs() if a not in VOLATILE),
                    tuple((d, u) for d, _, u in dims),
                    tuple((n, v["dims"], v["dtype"], v["attrs"]) for n, v in variables.items()))
             # values: every 1-D variable (coordinates, time) and small 2-D ones (bounds); data fields
