@@ -1,8 +1,9 @@
 #!/usr/bin/env python
 """Benchmark harness: circtrack vs plain netCDF4/numpy, xarray.open_mfdataset and (optionally) cdo.
 
-    python benchmarks/run.py [--months N] [--res 0.5] [--compress zlib|none|both]
-                             [--workdir DIR] [--repeat 1] [--scaling] [--object-store]
+    python benchmarks/run.py [--months N] [--res 0.5] [--compress zlib|none|both] [--sets uv|full|both]
+                             [--workdir DIR] [--repeat K] [--scaling] [--many-files N] [--before DIR]
+                             [--quick] [--profile]
 
 See benchmarks/README.md.  Nothing here is a test; it only measures and prints.
 """
@@ -48,23 +49,57 @@ def month_starts(n):
     return out
 
 
-def data_dir(workdir, res, comp):
-    return Path(workdir) / f"res{res:g}" / comp
+def data_dir(workdir, res, comp, full=False):
+    return Path(workdir) / f"res{res:g}" / (f"{comp}-full" if full else comp)
 
 
-def generate(workdir, res, comp, months, log):
-    """One file per month holding ua and va (float32, daily).  Cached: existing files are kept."""
+FULL_VARS = ("ua", "va", "ta", "zg", "hus", "ps")
+
+
+def add_full_set(ds, rng):
+    """ta, zg, hus (on the levels) and ps besides ua and va: every family has its inputs.
+
+    Invented smooth fields: temperature falling with height to an isothermal layer above about
+    200 hPa (so a tropopause is found), geopotential height from the hypsometric equation with a
+    mean temperature, humidity decaying upwards; small noise so compression has work to do."""
+    import numpy as np
+    lat = np.deg2rad(ds["lat"].values)
+    p = ds["plev"].values
+    shape = ds["ua"].shape                                   # (T, L, J, I)
+    ts = 300.0 - 45.0 * np.sin(lat) ** 2                     # (J,)
+    ta = np.maximum(ts[None, :] * (p[:, None] / 1000.0) ** 0.19, 212.0)          # (L, J)
+    zg = (287.0 * 255.0 / 9.81 * np.log(1013.0 / p))[:, None] * np.ones_like(ts)[None, :]   # (L, J)
+    hus = 0.018 * np.cos(lat)[None, :] ** 2 * (p[:, None] / 1000.0) ** 3         # (L, J)
+    dims = ds["ua"].dims
+    for name, base, unit, std, sn in (("ta", ta, "K", 0.2, "air_temperature"),
+                                      ("zg", zg, "m", 2.0, "geopotential_height"),
+                                      ("hus", hus, "1", 1e-5, "specific_humidity")):
+        arr = np.broadcast_to(base[None, :, :, None], shape).astype(np.float32)
+        noise = rng.standard_normal(shape, dtype=np.float32)
+        noise *= np.float32(std)
+        arr = arr + noise
+        if name == "hus":
+            np.maximum(arr, 0.0, out=arr)
+        ds[name] = (dims, arr, {"standard_name": sn, "units": unit})
+    ps = 101300.0 + 50.0 * rng.standard_normal((shape[0],) + shape[2:], dtype=np.float32)
+    ds["ps"] = (("time", "lat", "lon"), ps.astype(np.float32), {"standard_name": "surface_air_pressure", "units": "Pa"})
+    return ds
+
+
+def generate(workdir, res, comp, months, log, full=False):
+    """One file per month holding ua and va (float32, daily), or the full set (``full``: ua, va, ta,
+    zg, hus, ps).  Cached: existing files are kept."""
     import numpy as np
     from circtrack import synthetic
 
-    d = data_dir(workdir, res, comp)
+    d = data_dir(workdir, res, comp, full)
     d.mkdir(parents=True, exist_ok=True)
     lat, lon = grid(res)
     starts = month_starts(months)
     files = []
     for i in range(months):
         t0, t1 = starts[i], starts[i + 1]
-        path = d / f"uv_day_{t0.year:04d}{t0.month:02d}.nc"
+        path = d / f"{'full' if full else 'uv'}_day_{t0.year:04d}{t0.month:02d}.nc"
         files.append(path)
         if path.exists():
             continue
@@ -78,9 +113,12 @@ def generate(workdir, res, comp, months, log):
             noise *= np.float32(NOISE_STD)
             ds[v].values += noise
             del noise
+        if full:
+            ds = add_full_set(ds, rng)
         enc = dict(synthetic.time_encoding())
-        for v in ("ua", "va"):
-            e = {"dtype": "float32", "chunksizes": (min(TIME_CHUNK, ndays), 1, lat.size, lon.size)}
+        for v in [v for v in FULL_VARS if v in ds]:
+            chunks = (min(TIME_CHUNK, ndays), 1, lat.size, lon.size)
+            e = {"dtype": "float32", "chunksizes": chunks if ds[v].ndim == 4 else (chunks[0],) + chunks[2:]}
             if comp == "zlib":
                 e.update(zlib=True, complevel=1, shuffle=True)
             else:
@@ -93,12 +131,12 @@ def generate(workdir, res, comp, months, log):
     return files
 
 
-def generate_many(workdir, n, res, log):
-    """``n`` small files of one day each (uncompressed): the many-small-files case."""
+def generate_many(workdir, n, res, log, comp="none"):
+    """``n`` small files of one day each: the many-small-files case."""
     import numpy as np
     from circtrack import synthetic
 
-    d = Path(workdir) / f"many{n}-res{res:g}"
+    d = Path(workdir) / (f"many{n}-res{res:g}" + ("" if comp == "none" else f"-{comp}"))
     d.mkdir(parents=True, exist_ok=True)
     lat, lon = grid(res)
     t0 = month_starts(1)[0]
@@ -113,19 +151,22 @@ def generate_many(workdir, n, res, log):
             for v in ("ua", "va"):
                 ds[v].values += rng.standard_normal(ds[v].shape).astype(np.float32) * np.float32(NOISE_STD)
             tmp = files[k].with_suffix(".nc.part")
-            ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=dict(synthetic.time_encoding()))
+            enc = dict(synthetic.time_encoding())
+            if comp == "zlib":
+                enc.update({v: {"zlib": True, "complevel": 1, "shuffle": True} for v in ("ua", "va")})
+            ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=enc)
             os.replace(tmp, files[k])
         log(f"  generated {len(missing)} files in {d} ({time.perf_counter() - t_start:.0f} s)")
     return files
 
 
 def payload_bytes(files):
-    """Uncompressed bytes of ua + va in the files (what every approach has to decode)."""
+    """Uncompressed bytes of the data variables in the files (what every approach has to decode)."""
     import netCDF4
     total = 0
     for f in files:
         with netCDF4.Dataset(f) as nc:
-            for v in ("ua", "va"):
+            for v in [v for v in FULL_VARS if v in nc.variables]:
                 var = nc.variables[v]
                 n = 1
                 for s in var.shape:
@@ -141,7 +182,7 @@ BASELINE_A = textwrap.dedent('''
     out = {}
     for f in sys.argv[1:]:
         with netCDF4.Dataset(f) as nc:
-            for name in ("ua", "va"):
+            for name in [v for v in ("ua", "va", "ta", "zg", "hus", "ps") if v in nc.variables]:
                 var = nc.variables[name]
                 var.set_auto_mask(False)
                 var.set_var_chunk_cache(size=1 << 20, nelems=521, preemption=0.75)
@@ -157,129 +198,67 @@ BASELINE_A = textwrap.dedent('''
 BASELINE_B = textwrap.dedent('''
     import sys, xarray as xr
     ds = xr.open_mfdataset(sys.argv[1:], engine="netcdf4", combine="by_coords")
-    zm = ds[["ua", "va"]].mean("lon").compute()
+    zm = ds[[v for v in ("ua", "va", "ta", "zg", "hus", "ps") if v in ds]].mean("lon").compute()
     print(dict(zm.sizes))
 ''')
 
 
-def circtrack_cmd():
-    """The circtrack entry point next to this interpreter (the venv's), else the one on PATH."""
-    ct = shutil.which("circtrack", path=str(Path(sys.executable).parent) + os.pathsep + os.environ.get("PATH", ""))
-    return [ct] if ct else [sys.executable, "-c", "import sys; from circtrack.cli import main; sys.exit(main())"]
+REPO = Path(__file__).resolve().parents[1]
+BEFORE = None            # --before DIR: a checkout of circtrack timed side by side with this one
+QUICK = False            # --quick: leave out baseline B and the dask.distributed rows
+
+
+def circtrack_cmd(code=None):
+    """``python -m circtrack.cli`` with the circtrack of ``code`` (default: this checkout) first on
+    the path, as an environment for :func:`measure`."""
+    env = {"PYTHONPATH": str(code or REPO)}
+    return [sys.executable, "-m", "circtrack.cli"], env
 
 
 def approaches(files, outdir):
+    """(name, command, extra environment) per approach; the circtrack rows run the default metric
+    set (what ``track`` does without --metrics), the 4-metric subset is an extra row."""
     files = [str(f) for f in files]
     py = sys.executable
-    ct_cmd = circtrack_cmd()
+    ct, env = circtrack_cmd()
     out = []
-    out.append(("baseline A: netCDF4 + numpy, file by file", [py, "-c", BASELINE_A, *files]))
-    out.append(("baseline B: xarray open_mfdataset + mean", [py, "-c", BASELINE_B, *files]))
-    out.append(("circtrack track (default: worker processes)",
-                ct_cmd + ["track", *files, "-o", str(outdir / "track_threads.csv"), "--metrics", METRICS, "-q"]))
+    out.append(("baseline A: netCDF4 + numpy, file by file", [py, "-c", BASELINE_A, *files], {}))
+    if not QUICK:
+        out.append(("baseline B: xarray open_mfdataset + mean", [py, "-c", BASELINE_B, *files], {}))
+    out.append(("circtrack track, default metrics (worker processes)",
+                ct + ["track", *files, "-o", str(outdir / "track_default.csv"), "-q"], env))
     one = Path(outdir) / "one_process.toml"
     one.write_text("[run]\nprocesses = 1\n")
-    out.append(("circtrack track, 1 worker process (run.processes = 1)",
-                ct_cmd + ["track", *files, "-o", str(outdir / "track_p1.csv"), "--metrics", METRICS, "-q",
-                          "-c", str(one)]))
-    out.append(("circtrack track --workers 1",
-                ct_cmd + ["track", *files, "-o", str(outdir / "track_w1.csv"), "--metrics", METRICS, "-q",
-                          "--workers", "1"]))
-    out.append(("circtrack track --workers 2",
-                ct_cmd + ["track", *files, "-o", str(outdir / "track_w2.csv"), "--metrics", METRICS, "-q",
-                          "--workers", "2"]))
+    out.append(("circtrack track, default metrics, 1 worker process",
+                ct + ["track", *files, "-o", str(outdir / "track_p1.csv"), "-q", "-c", str(one)], env))
+    if not QUICK:
+        out.append(("circtrack track --metrics (4 metrics)",
+                    ct + ["track", *files, "-o", str(outdir / "track_4.csv"), "--metrics", METRICS, "-q"], env))
+    if BEFORE:
+        bct, benv = circtrack_cmd(BEFORE)
+        out.append((f"before ({BEFORE}): default metrics (worker processes)",
+                    bct + ["track", *files, "-o", str(outdir / "before_default.csv"), "-q"], benv))
+        out.append((f"before ({BEFORE}): default metrics, 1 worker process",
+                    bct + ["track", *files, "-o", str(outdir / "before_p1.csv"), "-q", "-c", str(one)], benv))
+    if not QUICK:
+        out.append(("circtrack track --workers 1",
+                    ct + ["track", *files, "-o", str(outdir / "track_w1.csv"), "-q", "--workers", "1"], env))
+        out.append(("circtrack track --workers 2",
+                    ct + ["track", *files, "-o", str(outdir / "track_w2.csv"), "-q", "--workers", "2"], env))
     cdo = shutil.which("cdo") if WITH_CDO else None
     if cdo:
         script = "set -e\n" + "\n".join(
             f'{cdo} -s zonmean "{f}" "{outdir}/cdo_zm_{i}.nc"' for i, f in enumerate(files))
-        out.append(("cdo zonmean per file", ["bash", "-c", script]))
+        out.append(("cdo zonmean per file", ["bash", "-c", script], {}))
     return out
 
 
-class LocalObjectStore:
-    """moto's S3-compatible server on 127.0.0.1 (a free port), for --object-store; stopped by stop()."""
-
-    def __init__(self):
-        import socket
-
-        import boto3
-
-        with socket.socket() as sock:
-            sock.bind(("127.0.0.1", 0))
-            self.port = sock.getsockname()[1]
-        self.endpoint = f"http://127.0.0.1:{self.port}"
-        self.proc = subprocess.Popen([sys.executable, "-m", "moto.server", "-H", "127.0.0.1", "-p", str(self.port)],
-                                     stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-        deadline = time.monotonic() + 30
-        while True:
-            try:
-                socket.create_connection(("127.0.0.1", self.port), 0.2).close()
-                break
-            except OSError:
-                if self.proc.poll() is not None or time.monotonic() > deadline:
-                    self.stop()
-                    raise SystemExit("moto_server did not start (pip install 'moto[server]')")
-                time.sleep(0.05)
-        self.env = {"AWS_ACCESS_KEY_ID": "bench", "AWS_SECRET_ACCESS_KEY": "bench",
-                    "AWS_ENDPOINT_URL": self.endpoint, "AWS_DEFAULT_REGION": "us-east-1"}
-        self.client = boto3.client("s3", endpoint_url=self.endpoint, region_name="us-east-1",
-                                   aws_access_key_id="bench", aws_secret_access_key="bench")
-
-    def upload(self, bucket, prefix, files):
-        self.client.create_bucket(Bucket=bucket)
-        for f in files:
-            self.client.upload_file(str(f), bucket, f"{prefix}/{Path(f).name}")
-        return f"s3://{bucket}/{prefix}/"
-
-    def cpu_seconds(self):
-        """CPU time the server has used so far (it shares the machine's cores with circtrack)."""
-        import psutil
-
-        t = psutil.Process(self.proc.pid).cpu_times()
-        return t.user + t.system
-
-    def stop(self):
-        if self.proc.poll() is None:
-            self.proc.terminate()
-            self.proc.wait(timeout=10)
-
-
-def object_store_table(files, outdir, nbytes, log):
-    """circtrack track on the files on disk and on the same files in a local S3 server (one run
-    each): wall time, ratio, throughput, peak RSS, and whether the two CSVs are byte-identical."""
-    store = LocalObjectStore()
-    try:
-        t0 = time.perf_counter()
-        url = store.upload("circtrack-bench", outdir.name, files)
-        log(f"  uploaded {len(files)} files to {url} in {time.perf_counter() - t0:.0f} s")
-        ct = circtrack_cmd()
-        disk_csv, s3_csv = outdir / "disk.csv", outdir / "object_store.csv"
-        runs = [("circtrack track, files on disk", ct + ["track", *map(str, files), "-o", str(disk_csv),
-                                                         "--metrics", METRICS, "-q"], None),
-                ("circtrack track, same files from the local S3 server",
-                 ct + ["track", url, "-o", str(s3_csv), "--metrics", METRICS, "-q"], store.env),
-                ("the same, first object only (memory does not grow with the record)",
-                 ct + ["track", url + Path(files[0]).name, "-o", str(outdir / "object_store_1.csv"), "--metrics",
-                       METRICS, "-q"], store.env)]
-        rows = []
-        for name, cmd, env in runs:
-            slug = "".join(c if c.isalnum() else "_" for c in name)[:40]
-            cpu0 = store.cpu_seconds()
-            m = measure(cmd, outdir / f"{slug}.log", env=env)
-            m["server_cpu"] = store.cpu_seconds() - cpu0
-            log(f"  {name}: rc={m['rc']} wall={m['wall']:.1f}s maxrss={m['maxrss'] / 1e9:.2f}GB "
-                f"server CPU {m['server_cpu']:.1f}s")
-            rows.append((name, m))
-    finally:
-        store.stop()
-    base = rows[0][1]["wall"]
-    nbytes_of = [nbytes, nbytes, nbytes / len(files)]
-    same = disk_csv.exists() and s3_csv.exists() and disk_csv.read_bytes() == s3_csv.read_bytes()
-    table = [(name, f"{m['wall']:.1f}" if m["rc"] == 0 else f"FAILED rc={m['rc']}",
-              f"{m['wall'] / base:.2f}" if k < 2 else "", f"{n / 1e6 / m['wall']:.0f}", f"{m['maxrss'] / 1e9:.2f}",
-              f"{m['tree'] / 1e9:.2f}", f"{m['server_cpu']:.1f}" if k else "")
-             for k, ((name, m), n) in enumerate(zip(rows, nbytes_of))]
-    return table, same
+def profile_table(files, outdir):
+    """``circtrack track --profile`` once: where the time of the default run goes (stderr table)."""
+    ct, env = circtrack_cmd()
+    proc = subprocess.run(ct + ["track", *map(str, files), "-o", str(outdir / "profile.csv"), "-q", "--profile"],
+                          capture_output=True, text=True, env={**os.environ, **env}, cwd=str(outdir))
+    return proc.stderr.strip()
 
 
 def measure(cmd, log_path, env=None):
@@ -294,8 +273,10 @@ def measure(cmd, log_path, env=None):
 
     with open(log_path, "w") as log:
         t0 = time.perf_counter()
-        proc = subprocess.Popen(full, stdout=log, stderr=subprocess.PIPE, text=True,
-                                env={**os.environ, **env} if env else None)
+        # cwd: the runs directory, never a checkout (``python -m`` puts the cwd first on sys.path,
+        # before PYTHONPATH, which would run that checkout's circtrack in every row)
+        proc = subprocess.Popen(full, stdout=log, stderr=subprocess.PIPE, text=True, env={**os.environ, **(env or {})},
+                                cwd=str(Path(log_path).parent))
 
         def sample():
             nonlocal peak_tree
@@ -328,45 +309,62 @@ def measure(cmd, log_path, env=None):
         log.write("\n--- stderr ---\n" + err)
 
     maxrss = None
+    cpu = 0.0
     if use_time:
         for line in err.splitlines():
             if "Maximum resident set size" in line:
                 maxrss = int(line.rsplit(":", 1)[1]) * 1024
+            if "User time (seconds)" in line or "System time (seconds)" in line:
+                cpu += float(line.rsplit(":", 1)[1])
     if maxrss is None:
         import resource
         maxrss = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss * 1024  # upper bound
-    return dict(rc=proc.returncode, wall=wall, maxrss=maxrss, tree=peak_tree)
+    # cpu: user + system seconds of the process and the children it waited for (worker processes)
+    return dict(rc=proc.returncode, wall=wall, maxrss=maxrss, tree=peak_tree, cpu=cpu)
 
 
 def run_config(files, outdir, nbytes, repeat, log):
-    rows = []
-    for name, cmd in approaches(files, outdir):
-        best = None
-        for r in range(repeat):
+    """Every approach ``repeat`` times, alternating (round after round), so that load from other
+    processes on the machine falls on all of them alike; the median wall time is reported, with
+    the largest RSS seen."""
+    import statistics
+
+    plan = approaches(files, outdir)
+    runs = {name: [] for name, _, _ in plan}
+    for r in range(repeat):
+        for name, cmd, env in plan:
+            if runs[name] and runs[name][-1]["rc"] != 0:
+                continue
             slug = "".join(c if c.isalnum() else "_" for c in name)[:40]
-            m = measure(cmd, outdir / f"{slug}.{r}.log")
-            log(f"  {name}: rc={m['rc']} wall={m['wall']:.1f}s maxrss={m['maxrss'] / 1e9:.2f}GB "
-                f"tree={m['tree'] / 1e9:.2f}GB")
-            if m["rc"] != 0:
-                best = m
-                break
-            if best is None or m["wall"] < best["wall"]:
-                best = {**m, "maxrss": max(m["maxrss"], (best or m)["maxrss"]),
-                        "tree": max(m["tree"], (best or m)["tree"])}
-        rows.append((name, best))
-    base = rows[0][1]["wall"] if rows and rows[0][1]["rc"] == 0 else None
+            m = measure(cmd, outdir / f"{slug}.{r}.log", env)
+            log(f"  [{r + 1}/{repeat}] {name}: rc={m['rc']} wall={m['wall']:.1f}s maxrss={m['maxrss'] / 1e9:.2f}GB "
+                f"tree={m['tree'] / 1e9:.2f}GB load={os.getloadavg()[0]:.1f}")
+            runs[name].append(m)
+    rows = []
+    for name, ms in runs.items():
+        if ms[-1]["rc"] != 0:
+            rows.append((name, ms[-1]))
+            continue
+        rows.append((name, {"rc": 0, "wall": statistics.median(m["wall"] for m in ms),
+                            "cpu": statistics.median(m["cpu"] for m in ms),
+                            "maxrss": max(m["maxrss"] for m in ms), "tree": max(m["tree"] for m in ms)}))
+    ok0 = rows and rows[0][1]["rc"] == 0
+    base = rows[0][1]["wall"] if ok0 else None
+    base_cpu = rows[0][1]["cpu"] if ok0 else None
     table = []
     for name, m in rows:
         if m["rc"] != 0:
-            table.append((name, f"FAILED rc={m['rc']}", "", "", "", ""))
+            table.append((name, f"FAILED rc={m['rc']}", "", "", "", "", "", ""))
             continue
         ratio = f"{m['wall'] / base:.2f}" if base else ""
-        table.append((name, f"{m['wall']:.1f}", ratio, f"{nbytes / 1e6 / m['wall']:.0f}",
+        cratio = f"{m['cpu'] / base_cpu:.2f}" if base_cpu else ""
+        table.append((name, f"{m['wall']:.1f}", ratio, f"{m['cpu']:.1f}", cratio, f"{nbytes / 1e6 / m['wall']:.0f}",
                       f"{m['maxrss'] / 1e9:.2f}", f"{m['tree'] / 1e9:.2f}"))
     return table
 
 
-HEAD = ("approach", "wall s", "ratio to A", "input MB/s", "peak RSS GB (largest proc)", "peak RSS GB (tree sum)")
+HEAD = ("approach", "wall s", "ratio to A", "CPU s", "CPU ratio to A", "input MB/s", "peak RSS GB (largest proc)",
+        "peak RSS GB (tree sum)")
 
 
 def markdown(table, head=HEAD):
@@ -381,23 +379,32 @@ def main(argv=None):
     ap.add_argument("--res", type=float, default=0.5)
     ap.add_argument("--compress", choices=["zlib", "none", "both"], default="both")
     ap.add_argument("--workdir", default=os.path.join(tempfile.gettempdir(), "circtrack-bench"))
-    ap.add_argument("--repeat", type=int, default=1, help="runs per approach; the fastest is reported")
+    ap.add_argument("--repeat", type=int, default=1,
+                    help="rounds of runs, alternating between approaches; the median is reported")
+    ap.add_argument("--sets", choices=["uv", "full", "both"], default="both",
+                    help="u+v files, the full set (ua, va, ta, zg, hus, ps: every family), or both")
     ap.add_argument("--scaling", action="store_true",
                     help="also compare circtrack peak RSS for 1 month vs --months months")
     ap.add_argument("--many-files", type=int, default=0, metavar="N",
-                    help="also time N small one-day files (uncompressed, --many-res grid)")
-    ap.add_argument("--many-res", type=float, default=5.0)
+                    help="also time N small one-day files (--many-res grid, --many-compress)")
+    ap.add_argument("--many-res", type=float, default=2.0)
+    ap.add_argument("--many-compress", choices=["zlib", "none"], default="zlib")
     ap.add_argument("--skip-large", action="store_true", help="only the --many-files case")
     ap.add_argument("--no-cdo", action="store_true", help="leave out cdo zonmean even when cdo is installed")
-    ap.add_argument("--object-store", action="store_true",
-                    help="only time circtrack track from a local S3 server (moto) against the same files on disk")
+    ap.add_argument("--quick", action="store_true",
+                    help="leave out baseline B, the 4-metric row and the --workers rows")
+    ap.add_argument("--before", metavar="DIR", default=None,
+                    help="another circtrack checkout (e.g. main) timed side by side with this one")
+    ap.add_argument("--profile", action="store_true",
+                    help="also print where the default run's time goes (circtrack track --profile) per table")
     a = ap.parse_args(argv)
-    global WITH_CDO
+    global WITH_CDO, QUICK, BEFORE
     WITH_CDO = not a.no_cdo
+    QUICK = a.quick
+    BEFORE = str(Path(a.before).resolve()) if a.before else None
 
     workdir = Path(a.workdir).resolve()
-    repo = Path(__file__).resolve().parents[1]
-    if repo in workdir.parents or workdir == repo:
+    if REPO in workdir.parents or workdir == REPO:
         ap.error("--workdir must be outside the repository")
     workdir.mkdir(parents=True, exist_ok=True)
 
@@ -405,6 +412,7 @@ def main(argv=None):
         print(msg, file=sys.stderr, flush=True)
 
     comps = ["zlib", "none"] if a.compress == "both" else [a.compress]
+    sets = {"uv": [False], "full": [True], "both": [False, True]}[a.sets]
     if a.skip_large:
         comps = []
     import platform
@@ -415,63 +423,64 @@ def main(argv=None):
               f"python {platform.python_version()}, numpy {numpy.__version__}, xarray {xarray.__version__}, "
               f"dask {dask.__version__}, netCDF4 {netCDF4.__version__}, cdo: {shutil.which('cdo') or 'not found'}",
               "",
-              f"months={a.months}, res={a.res:g} deg, levels={len(PLEV)}, daily, ua+va float32, "
-              f"chunks=({TIME_CHUNK}, 1, lat, lon), repeat={a.repeat} (fastest kept), warm page cache.",
+              f"months={a.months}, res={a.res:g} deg, levels={len(PLEV)}, daily, float32, "
+              f"chunks=({TIME_CHUNK}, 1, lat, lon), repeat={a.repeat} (alternating rounds, median), warm page cache"
+              + (f", before = {BEFORE}" if BEFORE else "") + ".",
               ""]
-    for comp in comps:
-        log(f"[{comp}] data in {data_dir(workdir, a.res, comp)}")
-        files = generate(workdir, a.res, comp, a.months, log)
-        nbytes = payload_bytes(files)
-        ondisk = sum(f.stat().st_size for f in files)
-        outdir = workdir / "runs" / f"res{a.res:g}-{comp}-{a.months}m"
-        outdir.mkdir(parents=True, exist_ok=True)
-        # warm the page cache so every approach sees the same state
-        for f in files:
-            with open(f, "rb") as fh:
-                while fh.read(1 << 24):
-                    pass
-        if a.object_store:
-            table, same = object_store_table(files, outdir, nbytes, log)
-            report += [f"## object storage vs disk, compression: {comp}", "",
-                       f"{len(files)} files, {nbytes / 1e6:.0f} MB of ua+va values, {ondisk / 1e6:.0f} MB on disk; "
-                       f"one run each; CSVs byte-identical: {'yes' if same else 'NO'}. Logs: {outdir}", "",
-                       markdown(table, head=("approach", "wall s", "ratio to disk", "input MB/s",
-                                             "peak RSS GB (largest proc)", "peak RSS GB (tree sum)",
-                                             "S3 server CPU s")), ""]
-            continue
-        table = run_config(files, outdir, nbytes, a.repeat, log)
-        report += [f"## compression: {comp}",
-                   "",
-                   f"{len(files)} files, {nbytes / 1e6:.0f} MB of ua+va values, {ondisk / 1e6:.0f} MB on disk "
-                   f"(ratio {nbytes / ondisk:.2f}). Logs: {outdir}",
-                   "",
-                   markdown(table), ""]
 
-        if a.scaling:
-            rows = []
-            for n in sorted({1, a.months}):
-                m = measure(circtrack_cmd() + ["track", *map(str, files[:n]), "-o",
-                             str(outdir / f"scaling_{n}.csv"), "--metrics", METRICS, "-q"],
-                            outdir / f"scaling_{n}.log")
-                log(f"  scaling {n} month(s): rc={m['rc']} wall={m['wall']:.1f}s maxrss={m['maxrss'] / 1e9:.2f}GB")
-                rows.append((n, m))
-            r1 = rows[0][1]["maxrss"]
-            report += [f"### memory vs record length ({comp}, circtrack track, default worker processes)", "",
-                       markdown([(str(n), f"{m['wall']:.1f}" if m["rc"] == 0 else f"FAILED rc={m['rc']}",
-                                  f"{m['maxrss'] / 1e9:.2f}", f"{m['maxrss'] / r1:.2f}") for n, m in rows],
-                                head=("months", "wall s", "peak RSS GB", "RSS ratio to 1 month")), ""]
+    def one_table(title, files, outdir, nbytes, extra=""):
+        load0 = os.getloadavg()
+        table = run_config(files, outdir, nbytes, a.repeat, log)
+        load1 = os.getloadavg()
+        lines = [title, "", f"{extra}Logs: {outdir}. Load average (1 min) before/after: {load0[0]:.1f} / {load1[0]:.1f}.",
+                 "", markdown(table), ""]
+        if a.profile:
+            lines += ["Where the time goes (`circtrack track --profile`, one run):", "", "```",
+                      profile_table(files, outdir), "```", ""]
+        return lines
+
+    for full in sets:
+        for comp in comps:
+            what = "full set (ua, va, ta, zg, hus, ps)" if full else "ua + va"
+            log(f"[{comp}, {what}] data in {data_dir(workdir, a.res, comp, full)}")
+            files = generate(workdir, a.res, comp, a.months, log, full=full)
+            nbytes = payload_bytes(files)
+            ondisk = sum(f.stat().st_size for f in files)
+            outdir = workdir / "runs" / f"res{a.res:g}-{comp}{'-full' if full else ''}-{a.months}m"
+            outdir.mkdir(parents=True, exist_ok=True)
+            for f in files:           # warm the page cache so every approach sees the same state
+                with open(f, "rb") as fh:
+                    while fh.read(1 << 24):
+                        pass
+            report += one_table(f"## {what}, compression: {comp}", files, outdir, nbytes,
+                                f"{len(files)} files, {nbytes / 1e6:.0f} MB of values, {ondisk / 1e6:.0f} MB on disk "
+                                f"(ratio {nbytes / ondisk:.2f}). ")
+            if a.scaling:
+                rows = []
+                ct, env = circtrack_cmd()
+                for n in sorted({1, a.months}):
+                    m = measure(ct + ["track", *map(str, files[:n]), "-o", str(outdir / f"scaling_{n}.csv"), "-q"],
+                                outdir / f"scaling_{n}.log", env)
+                    log(f"  scaling {n} month(s): rc={m['rc']} wall={m['wall']:.1f}s tree={m['tree'] / 1e9:.2f}GB")
+                    rows.append((n, m))
+                r1 = rows[0][1]["tree"] or 1
+                report += [f"### memory vs record length ({what}, {comp}, default metrics, worker processes)", "",
+                           markdown([(str(n), f"{m['wall']:.1f}" if m["rc"] == 0 else f"FAILED rc={m['rc']}",
+                                      f"{m['maxrss'] / 1e9:.2f}", f"{m['tree'] / 1e9:.2f}", f"{m['tree'] / r1:.2f}")
+                                     for n, m in rows],
+                                    head=("months", "wall s", "peak RSS GB (largest proc)", "peak RSS GB (tree sum)",
+                                          "tree ratio to 1 month")), ""]
 
     if a.many_files:
-        log(f"[many] {a.many_files} one-day files at {a.many_res:g} deg")
-        files = generate_many(workdir, a.many_files, a.many_res, log)
+        log(f"[many] {a.many_files} one-day files at {a.many_res:g} deg, {a.many_compress}")
+        files = generate_many(workdir, a.many_files, a.many_res, log, comp=a.many_compress)
         nbytes = payload_bytes(files)
-        outdir = workdir / "runs" / f"many{a.many_files}-res{a.many_res:g}"
+        outdir = workdir / "runs" / f"many{a.many_files}-res{a.many_res:g}-{a.many_compress}"
         outdir.mkdir(parents=True, exist_ok=True)
         for f in files:
             f.read_bytes()
-        table = run_config(files, outdir, nbytes, a.repeat, log)
-        report += [f"## many small files: {len(files)} one-day files, {a.many_res:g} deg, uncompressed", "",
-                   f"{nbytes / 1e6:.0f} MB of ua+va values. Logs: {outdir}", "", markdown(table), ""]
+        report += one_table(f"## many small files: {len(files)} one-day files, {a.many_res:g} deg, "
+                            f"{a.many_compress}", files, outdir, nbytes, f"{nbytes / 1e6:.0f} MB of ua+va values. ")
 
     text = "\n".join(report)
     (workdir / "results.md").write_text(text + "\n")

@@ -20,7 +20,8 @@ def main(debug):
 
 
 def _run_track(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-               repeated_times=None, units=(), levels=(), fail_on_empty=False, anonymous=False, cache_dir=None):
+               repeated_times=None, units=(), levels=(), fail_on_empty=False, anonymous=False, cache_dir=None,
+               profile=False):
     from circtrack import config as C
     from circtrack import engine, guards as G, output as O
     from circtrack.cluster import scheduler_context
@@ -43,11 +44,19 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
     G.refuse_outputs_among_inputs(outputs, files)
     stamps = G.input_stamps(files, cfg)
     prog = engine.Progress(quiet=quiet)
-    with scheduler_context(workers, scheduler, cfg):
-        outcome = engine.track(files, cfg, metric_ids=ids, label=label, sectors=secs,
-                               overrides=parse_vars(variables), progress=prog, on_bad_file=on_bad_file)
-    G.refuse_changed_inputs(stamps, cfg)
-    O.write(outcome, output, cfg, argv=["circtrack", *sys.argv[1:]])
+    from circtrack.engine import profile as PR
+    PR.enable(profile)
+    try:
+        with scheduler_context(workers, scheduler, cfg):
+            outcome = engine.track(files, cfg, metric_ids=ids, label=label, sectors=secs,
+                                   overrides=parse_vars(variables), progress=prog, on_bad_file=on_bad_file)
+        G.refuse_changed_inputs(stamps, cfg)
+        with PR.timed(PR.STAGES, "write CSV and provenance"):
+            O.write(outcome, output, cfg, argv=["circtrack", *sys.argv[1:]])
+        if profile:
+            click.echo(PR.table(), err=True)
+    finally:
+        PR.enable(False)
     prog.done(len(outcome.columns["metric"]))
     from circtrack import summary
     summary.report(summary.of_outcome(outcome), click.echo, fail_on_empty)   # also with --quiet
@@ -56,6 +65,8 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
 
 @main.command()
 @track_options
+@click.option("--profile", is_flag=True,
+              help="Print to stderr where the time went: each stage, each part of the reduce tasks, each family.")
 @guarded
 def track(**kw):
     """Compute circulation indices from PATH... (files, directories, globs, or - for a list on stdin)."""

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from circtrack.engine import profile
 from circtrack.metrics.common import Fields
 from circtrack.registry import hemispheres
 
@@ -61,7 +62,8 @@ class Detector:
             for fam in self.rp.plan.families:
                 if sname != "zonal" and not fam.sectors:
                     continue
-                results = fam.compute(fields, self.cfg)
+                with profile.timed("families (parent)", fam.name):
+                    results = fam.compute(fields, self.cfg)
                 for m in fam.metrics:
                     if m.id in self.wanted:
                         self._append(tidx, eidx, sname, m, results[m.id])

@@ -17,6 +17,7 @@ import threading
 
 import numpy as np
 
+from circtrack.engine import profile
 from circtrack.engine.reduce import close_thread_cached, reduce_chunks
 from circtrack.engine.times import iso_time
 from circtrack.errors import InputError
@@ -98,6 +99,8 @@ class BatchReader:
             raise InputError(f"{involved[0]}: reading data failed ({msg}) for time steps {iso_time(rp.times[t0])}.."
                              f"{iso_time(rp.times[t1 - 1])} in {', '.join(involved)}; one of these files is damaged: "
                              "re-copy it or leave it out")
+        for r in results:
+            profile.add_task_timing(r.pop("timing", None))
         cache.update(zip(need, results))
         for d, p in mine:
             if rp.provisional[d] and not rp.provisional[p]:

@@ -23,6 +23,8 @@ from dataclasses import dataclass, field
 import dask
 import numpy as np
 
+from circtrack.engine import profile
+from circtrack.engine.layouts import LayoutCache
 from circtrack.engine.locate import file_stat, skip_or_raise
 from circtrack.engine.prepare import FileInfo, MissingRoles, prepare_file
 from circtrack.engine.reduce import reduce_chunk
@@ -85,9 +87,20 @@ def prepare_inputs(files, plan, cfg, overrides, policy):
     """Every file prepared (prepare.py), split variables joined, the bad-file policy applied and the
     inputs checked to fit together. Returns ``(infos, skipped)``."""
     infos, skipped, partial = [], [], []
+    layouts = LayoutCache(cfg)         # files of one layout: a header read each, one detection
     for p in files:
         try:
-            infos.append(prepare_file(p, plan, cfg, overrides))
+            shared = layouts.shared(p)
+            if isinstance(shared, MissingRoles):
+                raise shared
+            if shared is None:
+                try:
+                    shared = prepare_file(p, plan, cfg, overrides)
+                except MissingRoles as e:
+                    layouts.remember(p, e)
+                    raise
+                layouts.remember(p, shared)
+            infos.append(shared)
         except MissingRoles as e:
             partial.append(e)          # joined below with files holding its other variables
         except InputError as e:
@@ -301,7 +314,8 @@ class RunPlan:
         return {"path": inf.path, "cfg": self.cfg, "readers": inf.readers, "t0": a, "t1": b,
                 "masks": self.masks_of[k], "lon": np.asarray(inf.detected.lon, float),
                 "lat": np.sort(np.asarray(inf.detected.lat, float)), "reducers": self.plan.reducers,
-                "check": a == 0, "units": inf.detected.units}   # plausibility: on each file's first chunk
+                "check": a == 0, "units": inf.detected.units,
+                "profile": profile.enabled()}   # plausibility: on each file's first chunk
 
     def tasks(self):
         """The dask.delayed reduce calls of every chunk; building them reads nothing."""

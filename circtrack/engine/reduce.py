@@ -132,6 +132,7 @@ def reduce_chunk(job):
     Returns ``{"stats": {role: (t, *extra, [L], J, S, 2)}, "extras": {name: (t, *extra, ..., S)},
     "notes": {"time": (t,) str}}``.
     """
+    clock = _Clock(job.get("profile"))
     slabs, notes = {}, []
     # variables may come from several files with the same time steps (one variable per file)
     paths = list(dict.fromkeys([job["path"]] + [r.path for r in job["readers"].values()]))
@@ -140,15 +141,19 @@ def reduce_chunk(job):
         try:
             for role, reader in job["readers"].items():
                 raw = _open_cached(reader.path, job["cfg"], keep=len(paths), raw=True)
+                clock.lap("open files")
                 arr = reader.read_fast(raw, job["t0"], job["t1"]) if raw is not None else None
                 if arr is not None:
                     slabs[role] = arr
                     notes.append(np.full(arr.shape[0], "", dtype=object))
+                    clock.lap(f"read {role}")
                     continue
                 if reader.path not in opened:
                     opened[reader.path] = _open_cached(reader.path, job["cfg"], keep=len(paths))
+                    clock.lap("open files")
                 slabs[role], note = reader.read_noted(opened[reader.path], job["t0"], job["t1"])
                 notes.append(note)
+                clock.lap(f"read {role}")
         except Exception:
             # a damaged file: drop the handles so a retry reopens them, and let the caller name the file
             for p in paths:
@@ -156,16 +161,39 @@ def reduce_chunk(job):
             raise
     if job.get("check"):           # values in their physical range (inputs/plausible.py): first time step only
         check_slabs(job["readers"], slabs, job.get("units", {}))
-    stats = {role: _zonal_block(a, job["masks"]) for role, a in slabs.items()}
+    stats = {}
+    for role, a in slabs.items():
+        stats[role] = _zonal_block(a, job["masks"])
+        clock.lap(f"zonal means {role}")
     extras = {}
     if job["reducers"]:
-        as64 = {r: a.astype(np.float64, copy=False) for r, a in slabs.items()}
+        # the slabs as read (the file's float type, e.g. float32, every level): each reducer converts
+        # only what it uses to float64 (e.g. one level), never a whole field
         plev = {r: rd.plev for r, rd in job["readers"].items()}
         for name, fn in job["reducers"].items():
             kw = {"lat": job["lat"]} if _wants_lat(fn) else {}     # latitudes for per-longitude features
-            extras[name] = np.asarray(fn(as64, plev, job["lon"], job["masks"], job["cfg"], **kw), dtype=np.float64)
+            extras[name] = np.asarray(fn(slabs, plev, job["lon"], job["masks"], job["cfg"], **kw), dtype=np.float64)
+            clock.lap(f"reducer {name}")
     # per time step layout notes (e.g. provisional_data), joined into the rows' flags
-    return {"stats": stats, "extras": extras, "notes": {"time": D.merge_notes(notes)}}
+    out = {"stats": stats, "extras": extras, "notes": {"time": D.merge_notes(notes)}}
+    if clock.parts is not None:
+        out["timing"] = clock.parts
+    return out
+
+
+class _Clock:
+    """Seconds per part of a task (``--profile``); does nothing when ``on`` is false."""
+
+    def __init__(self, on):
+        self.parts = {} if on else None
+        self.t = _time.perf_counter() if on else 0.0
+
+    def lap(self, name):
+        if self.parts is None:
+            return
+        now = _time.perf_counter()
+        self.parts[name] = self.parts.get(name, 0.0) + now - self.t
+        self.t = now
 
 
 def reduce_chunks(jobs):

@@ -14,6 +14,7 @@ from __future__ import annotations
 import numpy as np
 
 from circtrack.engine import plan as P
+from circtrack.engine import profile
 from circtrack.engine.features import Detector
 from circtrack.engine.gather import BatchReader
 from circtrack.engine.locate import locate
@@ -24,6 +25,8 @@ from circtrack.engine.reduce import close_cached
 from circtrack.engine.rows import merge_members, outcome
 from circtrack.engine.sectors import masks_per_input, merge_sectors
 from circtrack.errors import UsageError
+
+STAGES = profile.STAGES
 
 
 def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None,
@@ -83,21 +86,25 @@ class Run:
         self.progress = progress = progress or Progress(quiet=True)
         overrides = {**cfg.get("variables", {}), **(overrides or {})}
         sectors = merge_sectors(sectors, cfg)
-        files = locate(paths, stdin=stdin, cfg=cfg)
+        with profile.timed(STAGES, "locate files"):
+            files = locate(paths, stdin=stdin, cfg=cfg)
         policy = on_bad_file or cfg["run"]["on_bad_file"]
         self.left_out = []                 # default metrics left out: (family, ids, missing roles)
         if metric_ids is None:
-            metric_ids = available_metrics(files, cfg, overrides, policy, self.left_out)
+            with profile.timed(STAGES, "choose metrics (detect first file)"):
+                metric_ids = available_metrics(files, cfg, overrides, policy, self.left_out)
         plan = P.Plan.make(metric_ids, cfg, sectors)
         for role in all_levels:            # e.g. the cross-section: [u] on every level, not just 200/850 hPa
             plan.roles[role] = None
-        infos, skipped = P.prepare_inputs(files, plan, cfg, overrides, policy)
+        with profile.timed(STAGES, "open and detect every file"):
+            infos, skipped = P.prepare_inputs(files, plan, cfg, overrides, policy)
         progress.line(f"{len(infos)} file(s), metrics: {', '.join(plan.metric_ids)}")
-        axis = P.time_axis(infos, cfg, only_times, time_step_days)
-        layout = P.task_layout(infos, cfg, axis["times_all"].size)
-        masks_of = masks_per_input(infos, sectors)
-        partial_run = only_times is not None or time_step_days is not None
-        rest = P.batches_and_lowpass(cfg, axis["times"], plan, infos, partial_run)
+        with profile.timed(STAGES, "plan (time axis, tasks)"):
+            axis = P.time_axis(infos, cfg, only_times, time_step_days)
+            layout = P.task_layout(infos, cfg, axis["times_all"].size)
+            masks_of = masks_per_input(infos, sectors)
+            partial_run = only_times is not None or time_step_days is not None
+            rest = P.batches_and_lowpass(cfg, axis["times"], plan, infos, partial_run)
         self.record = P.RunPlan(cfg=cfg, plan=plan, sectors=sectors, infos=infos, skipped=skipped,
                                 masks_of=masks_of, **axis, **layout, **rest)
 
@@ -141,11 +148,17 @@ class Run:
         runner = Runner(self.cfg, len(rp.needed_chunks()))   # only_times: no worker pool for a chunk or two
         reader = BatchReader(rp, runner)
         try:
-            for bi, reduced in reader.in_order(ahead=2 if rp.lowpass else 1):
+            batches = reader.in_order(ahead=2 if rp.lowpass else 1)
+            while True:
+                with profile.timed(STAGES, "wait for reduced batches"):
+                    bi, reduced = next(batches, (None, None))
+                if bi is None:
+                    break
                 t0, t1 = rp.batches[bi]
                 step_notes[t0:t1] = reduced[bi]["notes"]
-                lowpassed = rp.lowpass.apply(reduced, bi, rp.batches) if rp.lowpass else {}
-                detector.batch(reduced[bi], lowpassed, t0, t1)
+                with profile.timed(STAGES, "low-pass filter and families"):
+                    lowpassed = rp.lowpass.apply(reduced, bi, rp.batches) if rp.lowpass else {}
+                    detector.batch(reduced[bi], lowpassed, t0, t1)
                 self.progress.step(t1, nt)
         except BaseException:
             runner.close(interrupted=True)       # stop the workers first, so a waiting prefetch returns
@@ -157,4 +170,5 @@ class Run:
             runner.close()
             close_cached()
         self.step_notes = step_notes
-        return outcome(rp, detector.cols, step_notes, self.label)
+        with profile.timed(STAGES, "rows"):
+            return outcome(rp, detector.cols, step_notes, self.label)

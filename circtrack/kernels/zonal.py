@@ -12,7 +12,7 @@ import numpy as np
 
 from circtrack.constants import CP_DRY, GRAVITY, LATENT_HEAT_VAPORIZATION
 from circtrack.kernels.extrema import window_extremum
-from circtrack.kernels.vertical import at_level, layer_weights
+from circtrack.kernels.vertical import layer_weights
 
 
 def zonal_covariance(a, b, mask=None):
@@ -37,6 +37,9 @@ def zonal_covariance(a, b, mask=None):
     b = np.asarray(b, dtype=np.float64)
     if mask is not None:
         a, b = a[..., mask], b[..., mask]
+    fast = _covariance_all_valid(a, b)
+    if fast is not None:
+        return fast
     ok = np.isfinite(a) & np.isfinite(b)
     n = ok.sum(axis=-1)
     a0 = np.where(ok, a, 0.0)
@@ -49,16 +52,47 @@ def zonal_covariance(a, b, mask=None):
     return cov, n / max(a.shape[-1], 1)
 
 
+def _covariance_all_valid(a, b):
+    """:func:`zonal_covariance` when every value is finite (the usual case above the ground), else
+    None: the same operations in the same order without the masking passes, so the same numbers.
+    Finite row sums tell that no value is NaN or infinite (a NaN or inf makes its row sum non-finite).
+    The arrays keep their memory layout (as ``np.where`` would), so the sums add in the same order."""
+    sa = a.sum(axis=-1)
+    sb = b.sum(axis=-1)
+    if not (np.isfinite(sa).all() and np.isfinite(sb).all()):
+        return None
+    n = a.shape[-1]
+    if n == 0:
+        return None
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ma = sa / n
+        mb = sb / n
+        cov = ((a - ma[..., None]) * (b - mb[..., None])).sum(axis=-1) / n
+    return cov, np.ones(cov.shape)
+
+
 def slab_at_level(arr, p, target, *, tolerance):
-    """``arr (..., L, J, I)`` at pressure ``target`` -> ``(..., J, I)``, or None outside the levels.
+    """``arr (..., L, J, I)`` at pressure ``target`` -> ``(..., J, I)`` in float64, or None outside the levels.
 
     Nearest level within ``tolerance``, else linear in log-pressure between the bracketing levels
-    (:func:`circtrack.kernels.vertical.at_level`)."""
+    (the rule of :func:`circtrack.kernels.vertical.at_level`). Only the one or two levels used are
+    converted to float64 (``arr`` may be a float32 field of every level): the same numbers as
+    converting the whole field first, without the copy."""
     if p is None:
         return None
-    moved = np.moveaxis(np.asarray(arr), -1, -3)            # (..., I, L, J)
-    out = at_level(moved, p, target, tolerance=tolerance)   # (..., I, J)
-    return None if out is None else np.moveaxis(out, -2, -1)
+    p = np.asarray(p, dtype=float)
+    k = int(np.argmin(np.abs(p - target)))
+    if abs(p[k] - target) <= tolerance:
+        return np.asarray(arr[..., k, :, :], dtype=np.float64)
+    if target < p.min() or target > p.max():
+        return None
+    order = np.argsort(p)
+    j = int(np.searchsorted(p[order], target)) - 1
+    a, b = order[j], order[j + 1]
+    t = (np.log(target) - np.log(p[a])) / (np.log(p[b]) - np.log(p[a]))
+    fa = np.asarray(arr[..., a, :, :], dtype=np.float64)
+    fb = np.asarray(arr[..., b, :, :], dtype=np.float64)
+    return fa + t * (fb - fa)
 
 
 def humidity_filled_aloft(q, t):
@@ -136,11 +170,12 @@ def fourier_amplitudes(y, lon, wavenumbers):
     ks = np.asarray(wavenumbers, dtype=float)
     cos = np.cos(ks[:, None] * lam[None, :]) * w[None, :]                # (K, I)
     sin = np.sin(ks[:, None] * lam[None, :]) * w[None, :]
-    y0 = np.nan_to_num(y, nan=0.0)
+    complete = np.isfinite(y).all(axis=-1)
+    y0 = y if complete.all() else np.nan_to_num(y, nan=0.0)     # nothing to replace: no copy
     a = y0 @ cos.T / np.pi
     b = y0 @ sin.T / np.pi
     amp = np.hypot(a, b)
-    return np.where(np.isfinite(y).all(axis=-1)[..., None], amp, np.nan)
+    return np.where(complete[..., None], amp, np.nan)
 
 
 def per_longitude_peak(y, lat, hemi, window, *, min_fraction):

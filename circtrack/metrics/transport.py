@@ -186,17 +186,20 @@ def energy_reducer(slabs, plev, lon, masks, cfg):
     if levels.size < 2 or not Z.covers_circle(lon):   # the transport crosses the whole latitude circle
         out[..., 4, :] = 0.0
         return out
-    take = {r: (slabs[r] if np.array_equal(idx[r], np.arange(slabs[r].shape[-3])) else np.take(slabs[r], idx[r], axis=-3))
-            for r in ENERGY_ROLES}
-    q, filled = Z.humidity_filled_aloft(take["hus"], take["ta"])
-    e = Z.moist_static_energy(take["ta"], take["zg"], q)
     top, _ = column_rules(cfg)
-    sums = Z.column_sums(take["va"], e, levels * HPA, top)     # four (..., J, I)
-    # the family is zonal only: the full circle (first mask) is reduced, the sectors stay NaN
-    for k in range(4):
-        out[..., k, 0] = sums[k].mean(axis=-1)
-    out[..., 4, 0] = (sums[3] > 0).mean(axis=-1)
-    out[..., 5, 0] = filled.mean(axis=(-3, -1))
+    # one time step at a time: the float64 fields (energy, products) of one step in memory, not of
+    # the whole chunk (four roles on every level); the same numbers, each step is independent
+    for t in range(lead[0]):
+        take = {r: (slabs[r][t] if np.array_equal(idx[r], np.arange(slabs[r].shape[-3]))
+                    else np.take(slabs[r][t], idx[r], axis=-3)) for r in ENERGY_ROLES}
+        q, filled = Z.humidity_filled_aloft(take["hus"], take["ta"])
+        e = Z.moist_static_energy(take["ta"], take["zg"], q)
+        sums = Z.column_sums(take["va"], e, levels * HPA, top)     # four (..., J, I)
+        # the family is zonal only: the full circle (first mask) is reduced, the sectors stay NaN
+        for k in range(4):
+            out[t, ..., k, 0] = sums[k].mean(axis=-1)
+        out[t, ..., 4, 0] = (sums[3] > 0).mean(axis=-1)
+        out[t, ..., 5, 0] = filled.mean(axis=(-3, -1))
     return out
 
 

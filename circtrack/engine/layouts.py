@@ -1,0 +1,189 @@
+"""Files of one layout are detected once: a netCDF header read instead of an open and a detection per file.
+
+In: a file path and the :class:`LayoutCache` of the run. Out: the :class:`FileInfo` (or the
+:class:`MissingRoles` error) of an earlier file of the same layout, re-labelled with this file's
+path and time steps; None when the file has to be opened and detected itself (first of its layout,
+not a netCDF-4/HDF5 file, data streams, times that this shortcut would decode differently, or any
+doubt). Thousands of one-day files then cost one header read each instead of an xarray open.
+
+Two files share a layout when their headers agree on everything but the time steps: the file
+format, global attributes (but for their history, tracking id and dates), every variable's name, dimensions, type and attributes, every dimension
+size but the time axis's, and the values of every variable without the time dimension (coordinates,
+level coefficients). The time steps are decoded from the raw values with the same CF decoder the
+full open uses; the first file of a layout checks that this gives exactly the times its full
+detection found, otherwise the layout is never shared.
+"""
+
+from __future__ import annotations
+
+import copy
+import os
+
+import numpy as np
+
+# global attributes that differ from file to file and that detection never reads (it reads the
+# member and model names, title and institution: those stay in the key)
+VOLATILE = {"history", "tracking_id", "creation_date", "date_created", "date_modified", "date_metadata_modified"}
+SMALL = 1 << 16          # two-dimensional variables up to this many values (e.g. cell bounds) are compared by value
+
+
+class LayoutCache:
+    """The detections of the layouts seen so far in one run (parent process only)."""
+
+    def __init__(self, cfg):
+        self.cfg = cfg
+        self.known = {}          # header key -> (path, outcome, time name, header) or None (never share)
+
+    def shared(self, path):
+        """The outcome of an earlier file with this file's layout, for this file; or None."""
+        head = _header(path, self.cfg)
+        if head is None:
+            return None
+        entry = self.known.get(head["key"])
+        if entry is None:
+            return None
+        first_path, outcome, tname, first_head = entry
+        if not _same_static(head, first_head, tname):
+            return None
+        times = _decode_times(head, tname)
+        if times is None or times.size == 0:
+            return None
+        return _relabel(outcome, first_path, path, times)
+
+    def remember(self, path, outcome):
+        """After a full detection of ``path`` (a FileInfo or a MissingRoles error): share it when safe."""
+        head = _header(path, self.cfg)
+        if head is None or head["key"] in self.known:
+            return
+        info = outcome if not hasattr(outcome, "info") else outcome.info
+        det = info.detected
+        tname = det.coords.get("time")
+        ok = (tname is not None and det.streams is None and tname in head["vars"] and det.times is not None
+              and _extra_dims_static(det, head, tname))
+        if ok:
+            times = _decode_times(head, tname)
+            ok = (times is not None and times.shape == det.times.shape and times.size > 0
+                  and type(times.flat[0]) is type(det.times.flat[0]) and bool(np.all(times == det.times)))
+        self.known[head["key"]] = (path, outcome, tname, head) if ok else None
+
+
+def _extra_dims_static(det, head, tname):
+    """Extra dimensions (e.g. members along a dimension) have coordinates without the time axis."""
+    return all(d in head["vars"] and tname not in head["vars"][d]["dims"] for d in det.extra_dims)
+
+
+def _header(path, cfg):
+    """The layout key and the raw time/static values of a plain netCDF-4 file, or None."""
+    from circtrack.inputs import opening
+    if cfg["run"]["netcdf_engine"] != "netcdf4" or not os.path.isfile(path) or opening._source_for(path) is not None:
+        return None
+    try:
+        with open(path, "rb") as f:
+            if f.read(4) != b"\x89HDF":          # netCDF-4 (HDF5) only: classic files keep the full checks
+                return None
+        import netCDF4
+        with netCDF4.Dataset(path, "r") as nc:
+            if nc.groups:
+                return None
+            variables = {}
+            for name, var in nc.variables.items():
+                var.set_auto_maskandscale(False)
+                values = {a: var.getncattr(a) for a in var.ncattrs()}
+                attrs = tuple((a, _text(x)) for a, x in values.items())
+                variables[name] = {"dims": var.dimensions, "dtype": str(var.dtype), "attrs": attrs,
+                                   "attr_values": values, "shape": var.shape, "var": var}
+            dims = tuple((d, len(v), v.isunlimited()) for d, v in nc.dimensions.items())
+            key = (nc.data_model, tuple((a, _text(nc.getncattr(a))) for a in nc.ncattrs() if a not in VOLATILE),
+                   tuple((d, u) for d, _, u in dims),
+                   tuple((n, v["dims"], v["dtype"], v["attrs"]) for n, v in variables.items()))
+            # values: every 1-D variable (coordinates, time) and small 2-D ones (bounds); data fields
+            # (3 dimensions or more) are not read
+            for name, v in variables.items():
+                size = int(np.prod(v["shape"])) if v["shape"] else 1
+                v["values"] = np.asarray(v["var"][...]) if (len(v["dims"]) <= 1 or (len(v["dims"]) == 2 and size <= SMALL)) else None
+                del v["var"]
+            return {"key": key, "dims": dict((d, n) for d, n, _ in dims), "vars": variables}
+    except (OSError, RuntimeError, ValueError, KeyError, IndexError, TypeError, UnicodeError):
+        return None
+
+
+def _text(value):
+    return repr(value.tolist()) if isinstance(value, np.ndarray) else repr(value)
+
+
+def _same_static(head, first, tname):
+    """Everything but the time steps agrees: sizes of the other dimensions, values without time."""
+    tdims = {d for d in first["vars"][tname]["dims"]}
+    if any(head["dims"].get(d) != n for d, n in first["dims"].items() if d not in tdims):
+        return False
+    for name, v in first["vars"].items():
+        w = head["vars"].get(name)
+        if w is None:
+            return False
+        if tdims & set(v["dims"]):
+            continue
+        if v["values"] is None or w["values"] is None:
+            return False                    # large static fields: not compared, so not shared
+        if v["values"].shape != w["values"].shape or not np.array_equal(v["values"], w["values"],
+                                                                         equal_nan=v["values"].dtype.kind == "f"):
+            return False
+    return True
+
+
+PLAIN_TIME_ATTRS = {"units", "calendar", "standard_name", "long_name", "axis", "bounds", "_FillValue", "missing_value"}
+
+
+def _decode_times(head, tname):
+    """The time steps decoded with cftime for every calendar, as the full open does, or None.
+
+    Only plain time axes (units and calendar, no packing, finite numbers, none equal to a fill
+    value); the first file of a layout checks that this gives exactly what its full open gave."""
+    import cftime
+    v = head["vars"][tname]
+    attrs = v["attr_values"]
+    if v["values"] is None or len(v["dims"]) != 1 or set(attrs) - PLAIN_TIME_ATTRS or "units" not in attrs:
+        return None
+    values = v["values"]
+    if values.dtype.kind not in "if" or not np.all(np.isfinite(values)):
+        return None
+    fills = [np.asarray(attrs[a]).ravel() for a in ("_FillValue", "missing_value") if a in attrs]
+    if any(np.isin(values, f).any() for f in fills):
+        return None
+    try:
+        out = cftime.num2date(values, str(attrs["units"]), calendar=str(attrs.get("calendar", "standard")),
+                              only_use_cftime_datetimes=True)
+    except (ValueError, TypeError, OverflowError):
+        return None
+    return np.asarray(out, dtype=object)
+
+
+def _relabel(outcome, first_path, path, times):
+    """A copy of ``outcome`` with this file's path and time steps (the coordinate arrays are shared:
+    nothing changes them after detection; the dictionaries and readers are copied)."""
+    from circtrack.engine.prepare import MissingRoles
+    info = outcome.info if isinstance(outcome, MissingRoles) else outcome
+    det = copy.copy(info.detected)
+    for name, value in vars(det).items():
+        if isinstance(value, dict):
+            setattr(det, name, copy.deepcopy(value) if name in ("hybrid", "streams") else dict(value))
+    det.path = path
+    det.times = times
+    new = copy.copy(info)
+    new.path, new.detected = path, det
+    new.readers = {r: _relabel_reader(x, path, times.size) for r, x in info.readers.items()}
+    new.plev = dict(info.plev)
+    if isinstance(outcome, MissingRoles):
+        return MissingRoles(str(outcome).replace(first_path, path), new, list(outcome.missing))
+    return new
+
+
+def _relabel_reader(reader, path, ntime):
+    new = copy.copy(reader)
+    new.path = path
+    new.ntime = ntime
+    new.selection = dict(reader.selection)
+    if reader.hybrid is not None:
+        new.hybrid = dict(reader.hybrid)
+        if new.hybrid.get("ps") is not None:
+            new.hybrid["ps"] = _relabel_reader(new.hybrid["ps"], path, ntime)
+    return new

@@ -1,0 +1,292 @@
+"""The fast paths give the same numbers as the straightforward ones.
+
+* reductions: reducers get float32 slabs and convert only the levels they use (reference: a float64
+  copy of every slab first), the covariance and Fourier kernels skip masking and copies when nothing
+  is missing (reference: the masked formulas always) -> identical rows, on data with missing values
+  below the ground, several sectors and ensemble members along a dimension, every family;
+* files of one layout share one detection (reference: every file opened and detected) -> identical
+  rows, and a file of another layout among them is detected by itself;
+* ``track --profile`` prints where the time went and leaves the output unchanged.
+"""
+
+from __future__ import annotations
+
+import functools
+
+import numpy as np
+import pytest
+import xarray as xr
+from click.testing import CliRunner
+
+from circtrack import config as C
+from circtrack import engine, synthetic
+from circtrack.cli import main
+from circtrack.engine import layouts as LY
+from circtrack.engine import plan as P
+from circtrack.engine import prepare as PR
+from circtrack.kernels import vertical as V
+from circtrack.kernels import zonal as Z
+from tests.conftest import csv_rows
+
+LAT = np.arange(-88.0, 88.1, 4.0)
+LON = np.arange(0.0, 360.0, 10.0)
+PLEV = [1000.0, 925.0, 850.0, 700.0, 500.0, 400.0, 300.0, 250.0, 200.0, 150.0, 100.0]
+SECTORS = [("atlantic", 300.0, 20.0), ("pacific", 150.0, 240.0)]
+
+
+# --------------------------------------------------------------------------- references (the plain way)
+def ref_slab_at_level(arr, p, target, *, tolerance):
+    if p is None:
+        return None
+    moved = np.moveaxis(np.asarray(arr, dtype=np.float64), -1, -3)
+    out = V.at_level(moved, p, target, tolerance=tolerance)
+    return None if out is None else np.moveaxis(out, -2, -1)
+
+
+def ref_zonal_covariance(a, b, mask=None):
+    a = np.asarray(a, dtype=np.float64)
+    b = np.asarray(b, dtype=np.float64)
+    if mask is not None:
+        a, b = a[..., mask], b[..., mask]
+    ok = np.isfinite(a) & np.isfinite(b)
+    n = ok.sum(axis=-1)
+    a0 = np.where(ok, a, 0.0)
+    b0 = np.where(ok, b, 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ma = a0.sum(axis=-1) / n
+        mb = b0.sum(axis=-1) / n
+        cov = np.where(ok, (a0 - ma[..., None]) * (b0 - mb[..., None]), 0.0).sum(axis=-1) / n
+    cov = np.where(n > 0, cov, np.nan)
+    return cov, n / max(a.shape[-1], 1)
+
+
+def ref_fourier_amplitudes(y, lon, wavenumbers):
+    lam = np.deg2rad(np.mod(np.asarray(lon, float), 360.0))
+    order = np.argsort(lam, kind="stable")
+    lam = lam[order]
+    y = np.asarray(y, dtype=np.float64)[..., order]
+    gaps = np.diff(np.concatenate([lam, [lam[0] + 2 * np.pi]]))
+    w = 0.5 * (gaps + np.roll(gaps, 1))
+    ks = np.asarray(wavenumbers, dtype=float)
+    cos = np.cos(ks[:, None] * lam[None, :]) * w[None, :]
+    sin = np.sin(ks[:, None] * lam[None, :]) * w[None, :]
+    y0 = np.nan_to_num(y, nan=0.0)
+    amp = np.hypot(y0 @ cos.T / np.pi, y0 @ sin.T / np.pi)
+    return np.where(np.isfinite(y).all(axis=-1)[..., None], amp, np.nan)
+
+
+CALLS = []
+
+
+def _float64_first(fn):
+    @functools.wraps(fn)                  # keeps the signature (the engine looks for a 'lat' keyword)
+    def wrapped(slabs, *args, **kw):
+        CALLS.append(fn.__name__)
+        return fn({r: np.array(a, dtype=np.float64) for r, a in slabs.items()}, *args, **kw)
+    return wrapped
+
+
+def use_references(monkeypatch):
+    """The engine as it was: float64 copies of every slab, masked kernels always."""
+    monkeypatch.setattr(Z, "slab_at_level", ref_slab_at_level)
+    monkeypatch.setattr(Z, "zonal_covariance", ref_zonal_covariance)
+    monkeypatch.setattr(Z, "fourier_amplitudes", ref_fourier_amplitudes)
+    make = P.Plan.make.__func__
+
+    def plain_make(cls, *a, **k):
+        plan = make(cls, *a, **k)
+        plan.reducers = {n: _float64_first(f) for n, f in plan.reducers.items()}
+        return plan
+
+    monkeypatch.setattr(P.Plan, "make", classmethod(plain_make))
+
+
+# --------------------------------------------------------------------------- data
+def full_set(ntime=4, members=2, seed=0, start=0):
+    """ua, va, ta, zg, hus, ps with members along a dimension and NaN below a mountain range."""
+    rng = np.random.default_rng(seed)
+    t = [synthetic.monthly_times(2000, 1, "noleap")[0].__class__(2000, 1, 1 + start + k, calendar="noleap")
+         for k in range(ntime)]
+    base = synthetic.dataset(LAT, LON, PLEV, t)
+    p = np.asarray(PLEV)
+    shape = (ntime, members, len(PLEV), LAT.size, LON.size)
+    lat = np.deg2rad(LAT)
+    fields = {
+        "ua": np.repeat(base["ua"].values[:, None], members, axis=1),
+        "va": np.repeat(base["va"].values[:, None], members, axis=1),
+        "ta": np.broadcast_to(np.maximum((300 - 45 * np.sin(lat) ** 2)[None, :] * (p[:, None] / 1000) ** 0.19, 212.0)
+                              [None, None, :, :, None], shape),
+        "zg": np.broadcast_to((7460.0 * np.log(1013.0 / p))[None, None, :, None, None], shape),
+        "hus": np.broadcast_to((0.018 * np.cos(lat) ** 2)[None, None, None, :, None]
+                               * ((p / 1000) ** 3)[None, None, :, None, None], shape),
+    }
+    scale = {"ua": 2.0, "va": 1.0, "ta": 1.0, "zg": 5.0, "hus": 1e-4}
+    ground = np.zeros(shape, dtype=bool)                 # a mountain range: 1000/925 hPa below ground
+    ground[:, :, :2, 25:35, 3:9] = True
+    units = {"ua": "m s-1", "va": "m s-1", "ta": "K", "zg": "m", "hus": "1"}
+    sn = {"ua": "eastward_wind", "va": "northward_wind", "ta": "air_temperature", "zg": "geopotential_height",
+          "hus": "specific_humidity"}
+    dims = ("time", "realization", "plev", "lat", "lon")
+    data = {}
+    for name, f in fields.items():
+        a = (f + scale[name] * rng.standard_normal(shape)).astype(np.float32)
+        if name == "hus":
+            a = np.abs(a)
+        a[ground] = np.nan
+        data[name] = (dims, a, {"units": units[name], "standard_name": sn[name]})
+    ps = 101300.0 + 300.0 * rng.standard_normal((ntime, members, LAT.size, LON.size))
+    data["ps"] = (("time", "realization", "lat", "lon"), ps.astype(np.float32),
+                  {"units": "Pa", "standard_name": "surface_air_pressure"})
+    coords = {k: base[k] for k in ("time", "plev", "lat", "lon")}
+    coords["realization"] = ("realization", np.arange(1, members + 1))
+    return xr.Dataset(data, coords=coords)
+
+
+def write(ds, path):
+    ds.to_netcdf(str(path), encoding=synthetic.time_encoding("noleap", "days since 2000-01-01"))
+    return str(path)
+
+
+def sync_cfg():
+    cfg = C.load(None)
+    cfg["run"]["scheduler"] = "sync"
+    cfg["run"]["time_chunk"] = 3               # several tasks per file
+    return cfg
+
+
+def rows(paths, cfg, sectors=()):
+    return csv_rows(engine.track([str(p) for p in paths], cfg, label="x", sectors=list(sectors)))
+
+
+# --------------------------------------------------------------------------- kernels
+def test_slab_at_level_converts_only_the_levels_it_uses_with_the_same_numbers():
+    rng = np.random.default_rng(1)
+    arr = rng.standard_normal((3, 2, 5, 7, 12)).astype(np.float32)
+    arr[0, 1, 2, 3, :4] = np.nan
+    p = np.array([100.0, 250.0, 500.0, 850.0, 1000.0])
+    for target in (500.0, 503.0, 300.0, 925.0, 100.0, 1000.0, 50.0, 1100.0):
+        got = Z.slab_at_level(arr, p, target, tolerance=5.0)
+        want = ref_slab_at_level(arr, p, target, tolerance=5.0)
+        if want is None:
+            assert got is None
+            continue
+        assert got.dtype == np.float64 and got.shape == want.shape
+        assert np.array_equal(got, want, equal_nan=True), target
+
+
+def test_covariance_and_fourier_fast_paths_equal_the_masked_formulas():
+    rng = np.random.default_rng(2)
+    lon = np.arange(0.0, 360.0, 7.5)
+    a = rng.standard_normal((4, 9, lon.size)) * 10
+    b = rng.standard_normal((4, 9, lon.size)) * 3 + 1
+    holes = a.copy()
+    holes[1, 2, 5] = np.nan
+    holes[3, :, 7:9] = np.inf
+    band = (lon > 100) & (lon < 200)
+    for x, y, m in ((a, b, None), (a, b, band), (holes, b, None), (b, holes, band), (a.astype(np.float32), b, None)):
+        got, want = Z.zonal_covariance(x, y, m), ref_zonal_covariance(x, y, m)
+        assert np.array_equal(got[0], want[0], equal_nan=True) and np.array_equal(got[1], want[1])
+    for lons in (lon, np.mod(lon + 180.0, 360.0) - 180.0):       # in order, and from -180 (reordered)
+        for y in (a, holes):
+            assert np.array_equal(Z.fourier_amplitudes(y, lons, (1, 2, 3)), ref_fourier_amplitudes(y, lons, (1, 2, 3)),
+                                  equal_nan=True)
+
+
+# --------------------------------------------------------------------------- whole runs
+def test_rows_identical_to_float64_copies_with_missing_data_sectors_and_members(tmp_path, monkeypatch):
+    paths = [write(full_set(4, seed=k, start=4 * k), tmp_path / f"f{k}.nc") for k in range(2)]
+    fast = rows(paths, sync_cfg(), SECTORS)
+    metrics = {r.split(",")[-4] for r in fast}
+    # every family ran, among them those whose reducers changed
+    assert {"eddy_momentum_flux_lat", "planetary_wave_1_amplitude", "jet_waviness",
+            "energy_transport_max_lat"} <= metrics
+    assert any(",atlantic," in r for r in fast) and any(",pacific," in r for r in fast)
+    finite = [r for r in fast if r.split(",")[-3] not in ("NaN", "")]
+    assert len(finite) > len(fast) // 2
+    use_references(monkeypatch)
+    CALLS.clear()
+    assert rows(paths, sync_cfg(), SECTORS) == fast
+    assert {"energy_reducer", "eddy_momentum_reducer", "planetary_wave_reducer", "jet_waviness_reducer"} <= set(CALLS)
+
+
+def test_rows_identical_in_worker_processes(tmp_path):
+    paths = [write(full_set(3, members=1, seed=5), tmp_path / "one.nc")]
+    cfg = C.load(None)
+    cfg["run"]["time_chunk"] = 1
+    assert rows(paths, cfg, SECTORS) == rows(paths, sync_cfg(), SECTORS)
+
+
+# --------------------------------------------------------------------------- files of one layout
+def one_day_files(tmp_path, n, **kw):
+    out = []
+    for k in range(n):
+        ds = full_set(1, members=1, seed=k, start=k)
+        ds.attrs.update(history=f"written at step {k}", tracking_id=f"id-{k}")    # differ per file, as usual
+        out.append(write(ds, tmp_path / f"day{k:03d}.nc"))
+    return out
+
+
+def counting_prepare(monkeypatch):
+    calls = []
+    real = PR.prepare_file
+
+    def counted(path, *a, **k):
+        calls.append(path)
+        return real(path, *a, **k)
+
+    monkeypatch.setattr(P, "prepare_file", counted)
+    return calls
+
+
+def test_one_layout_is_detected_once_with_the_same_rows(tmp_path, monkeypatch):
+    paths = one_day_files(tmp_path, 6)
+    calls = counting_prepare(monkeypatch)
+    shared = rows(paths, sync_cfg())
+    assert calls == [paths[0]]                                    # the others: a header read each
+    run = engine.Run(paths, sync_cfg())
+    monkeypatch.setattr(LY.LayoutCache, "shared", lambda self, path: None)
+    calls.clear()
+    assert rows(paths, sync_cfg()) == shared
+    assert calls == paths
+    alone = engine.Run(paths, sync_cfg())
+    for a, b in zip(run.infos, alone.infos):                        # the detections agree file by file
+        assert a.path == b.path and a.detected.path == b.detected.path
+        assert list(a.detected.times) == list(b.detected.times)
+        assert {r: (x.path, x.ntime, x.selection, x.dims) for r, x in a.readers.items()} == \
+            {r: (x.path, x.ntime, x.selection, x.dims) for r, x in b.readers.items()}
+
+
+def test_another_layout_among_them_is_detected_by_itself(tmp_path, monkeypatch):
+    paths = one_day_files(tmp_path, 4)
+    other = full_set(1, members=1, seed=9, start=10)
+    other["time"].encoding = {}
+    # same variables and shapes, other time units: not the same header, detected itself, same rows
+    other.to_netcdf(tmp_path / "other.nc", encoding={"time": {"units": "hours since 2000-01-01", "calendar": "noleap"}})
+    odd = full_set(1, members=1, seed=3, start=11)
+    odd = odd.assign_coords(lat=odd["lat"].values + 1.0)                # another grid, same header otherwise
+    write(odd, tmp_path / "odd.nc")
+    calls = counting_prepare(monkeypatch)
+    both = paths + [str(tmp_path / "other.nc")]
+    shared = rows(both, sync_cfg())
+    assert calls == [paths[0], str(tmp_path / "other.nc")]
+    monkeypatch.setattr(LY.LayoutCache, "shared", lambda self, path: None)
+    assert rows(both, sync_cfg()) == shared
+    monkeypatch.undo()
+    calls = counting_prepare(monkeypatch)
+    with pytest.raises(engine.InputError if hasattr(engine, "InputError") else Exception, match="latitude grid"):
+        engine.Run(paths + [str(tmp_path / "odd.nc")], sync_cfg())
+    assert str(tmp_path / "odd.nc") in calls
+
+
+# --------------------------------------------------------------------------- --profile
+def test_profile_prints_where_the_time_went_and_changes_nothing(tmp_path):
+    path = write(full_set(2, members=1), tmp_path / "p.nc")
+    plain = CliRunner().invoke(main, ["track", path, "-o", str(tmp_path / "a.csv"), "-q"])
+    prof = CliRunner().invoke(main, ["track", path, "-o", str(tmp_path / "b.csv"), "-q", "--profile"])
+    assert plain.exit_code == 0 and prof.exit_code == 0, prof.output
+    assert (tmp_path / "a.csv").read_text() == (tmp_path / "b.csv").read_text()
+    text = prof.stderr if hasattr(prof, "stderr") else prof.output
+    for part in ("open and detect every file", "wait for reduced batches", "read ua", "zonal means va",
+                 "reducer eddy_momentum_flux", "reducer energy_column_sums", "cells", "energy_transport"):
+        assert part in text, part
+    assert "circtrack profile" not in plain.output
