@@ -132,6 +132,12 @@ class OneLineGroup(click.Group):
             _broken_pipe()
         except click.ClickException as e:      # e.g. a file argument click could not open
             _fail(e.format_message(), e.exit_code)
+        except SystemExit as e:
+            from click.utils import PacifyFlushWrapper
+
+            if e.code == 1 and isinstance(sys.stdout, PacifyFlushWrapper):   # click's own broken-pipe exit
+                _broken_pipe()
+            raise
         try:
             sys.stdout.flush()             # a closed pipe shows here when the output was small
         except BrokenPipeError:

@@ -3,7 +3,8 @@
 Layout
 ------
 * One *page* per metric family (the registry's families: cells, jets, surface winds, ...), at most
-  :data:`MAX_ROWS` panel rows per page (a larger family continues on a second page). A page is
+  :data:`MAX_ROWS` panel rows per page (a larger family continues on a second page); a ``metrics``
+  selection that fits one page is one page. A page is
   9 inches wide and at most about 9.8 inches high (1080 x 1170 pixels at the default 120 dpi).
   A multi-page selection goes into one multi-page PDF, or one PNG/SVG file per page named
   ``OUT-FAMILY.png`` (``OUT-FAMILY-2.png`` for a continued family); one page is written to OUT itself.
@@ -367,7 +368,12 @@ def pages(df, metrics=None, calendar="standard", poleward_positive=True, min_yea
                              key=lambda hs: ({"NH": 0, "SH": 1}.get(hs[0], 2), hs[0], hs[1]))
         colours = {hs: OKABE_ITO[i % len(OKABE_ITO)] for i, hs in enumerate(colour_keys)}
         out = []
-        for fam, ids in _family_order(data["metric"].unique()):
+        families = _family_order(data["metric"].unique())
+        if metrics:      # a --metrics selection that fits one page is one page, whatever the families
+            ids = [m for _, fam_ids in families for m in fam_ids]
+            if len(_panel_rows(data, ids, poleward_positive)) <= MAX_ROWS:
+                families = [("selection", ids)]
+        for fam, ids in families:
             rows = _panel_rows(data, ids, poleward_positive)
             chunks = [rows[i:i + MAX_ROWS] for i in range(0, len(rows), MAX_ROWS)]
             for j, chunk in enumerate(chunks):
@@ -376,7 +382,9 @@ def pages(df, metrics=None, calendar="standard", poleward_positive=True, min_yea
                 if rec["climatology"]:
                     year = rec["years"][0]
                     what = "seasonal cycle, " + ("climatology (year 0)" if year == 0 else f"monthly means of {year}")
-                title = f"{fam.replace('_', ' ')} {what}" + (f" ({j + 1}/{len(chunks)})" if len(chunks) > 1 else "")
+                title = ("" if fam == "selection" else f"{fam.replace('_', ' ')} ") + what
+                title = title[0].upper() + title[1:]
+                title = title + (f" ({j + 1}/{len(chunks)})" if len(chunks) > 1 else "")
                 out.append((name, _page(data, chunk, keys, extras, rec, colours, calendar, min_years,
                                         poleward_positive, title)))
     return out
