@@ -133,9 +133,8 @@ class OneLineGroup(click.Group):
         except click.ClickException as e:      # e.g. a file argument click could not open
             _fail(e.format_message(), e.exit_code)
         except SystemExit as e:
-            from click.utils import PacifyFlushWrapper
-
-            if e.code == 1 and isinstance(sys.stdout, PacifyFlushWrapper):   # click's own broken-pipe exit
+            # click's own broken-pipe exit: status 1 with stdout wrapped so that it stays quiet
+            if e.code == 1 and type(sys.stdout).__name__ == "PacifyFlushWrapper":
                 _broken_pipe()
             raise
         try:

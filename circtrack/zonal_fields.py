@@ -1,0 +1,258 @@
+"""The zonal-mean fields behind the indices, written as CF netCDF (``circtrack zonal-means``).
+
+For every variable the run finds (the roles of the metrics its files can feed), on every pressure
+level of the file: the mean over valid longitudes and the share of valid longitudes, per time step
+(and member, and sector when sectors are given), plus the mass streamfunction computed from the
+northward wind by the very function the cells family uses (``metrics.cells.streamfunction``), so
+its convention, balance and top rule are the engine's. Everything is read by the engine's own
+readers and tasks, batch by batch, and each batch is appended to the file before the next one is
+read: memory is bounded by a batch, not by the record. The file appears atomically (temp file in
+the same directory, fsync, rename).
+
+Layout: dimensions ``time`` (unlimited), extra input dimensions (e.g. ``member``), ``sector`` (only
+with sectors; ``zonal`` first), ``plev`` (hPa, top first; ``plev_ROLE`` when roles differ in levels),
+``lat`` (ascending). Variables ``ROLE`` (CMIP short name), ``ROLE_coverage`` and ``psi``.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+
+import numpy as np
+
+from circtrack.errors import InputError, UsageError
+
+ROLE_ATTRS = {
+    "ua": ("eastward_wind", "m s-1"), "va": ("northward_wind", "m s-1"), "ta": ("air_temperature", "K"),
+    "zg": ("geopotential_height", "m"), "hus": ("specific_humidity", "1"), "ps": ("surface_air_pressure", "Pa"),
+    "uas": ("eastward_wind", "m s-1"), "vas": ("northward_wind", "m s-1"), "psl": ("air_pressure_at_mean_sea_level", "hPa"),
+    "pr": ("precipitation_flux", "kg m-2 s-1"), "evspsbl": ("water_evapotranspiration_flux", "kg m-2 s-1"),
+    "rlut": ("toa_outgoing_longwave_flux", "W m-2"),
+}
+
+
+def _plan(paths, cfg, overrides, sectors, label, on_bad_file, progress):
+    """The engine run reading every role found, on every level, without the in-task reducers."""
+    from circtrack import engine
+
+    # sectors are added after planning: here they apply to every field, also those whose metrics
+    # are defined for the whole circle only (the streamfunction of a sector is a diagnostic too)
+    sectors = list(sectors) + [(k, float(v[0]), float(v[1])) for k, v in cfg.get("sectors", {}).items()
+                               if k not in {s[0] for s in sectors}]
+    cfg = {**cfg, "sectors": {}}
+    probe = engine.Run(paths, cfg, overrides=overrides, label=label, on_bad_file=on_bad_file)
+    roles = list(probe.plan.roles)
+    run = engine.Run(paths, cfg, metric_ids=probe.plan.metric_ids, overrides=overrides, label=label,
+                     on_bad_file=on_bad_file, all_levels=tuple(roles))
+    if progress is not None:
+        run.progress = progress
+    run.plan.reducers = {}             # only the zonal statistics: no eddy covariances, no Fourier sums
+    names = [n for n, _, _ in sectors]
+    if len(set(names)) != len(names):
+        raise UsageError(f"sector name(s) {', '.join(sorted({n for n in names if names.count(n) > 1}))} given "
+                         "twice (--sector or [sectors]); give each band its own name")
+    run.sectors = sectors
+    run.masks_of = [engine.sector_masks(i.detected.lon, sectors) for i in run.infos]
+    for inf, masks in zip(run.infos, run.masks_of):
+        for (name, a, b), m in zip(sectors, masks[1:]):
+            if not m.any():
+                raise UsageError(f"--sector {name}={a:g}:{b:g} holds no grid longitude of {inf.path}; widen the band")
+    return run
+
+
+def _batches(run):
+    """Yield ``(t0, t1, stats)`` per batch, ``stats[role]`` of shape ``(bt, *extra, [L], J, S, 2)``
+    (mean over valid longitudes, share of valid longitudes), reading one batch at a time."""
+    from circtrack import engine
+
+    batch_of_pos, last_use = run._schedule()
+    needed = {int(c) for c in run.chunk_of[run.keep]} | {int(run.chunk_of[d]) for d in run.dropped}
+    runner = engine._Runner(run.cfg, len(needed))
+    cache = {}
+    try:
+        for bi, (t0, t1) in enumerate(run.batches):
+            yield t0, t1, run._reduce_batch(bi, runner, cache, last_use, batch_of_pos)["stats"]
+            run.progress.step(t1, run.times.size)
+    except BaseException:
+        runner.close(interrupted=True)
+        engine.close_cached()
+        raise
+    runner.close()
+    engine.close_cached()
+
+
+def streamfunction_of(stats_va, lat, plev_va, n_extra):
+    """psi ``(bt, *extra, L, J, S)`` from the va statistics, per sector, through the cells family's
+    own function."""
+    from circtrack.metrics.cells import streamfunction
+    from circtrack.metrics.common import Fields
+
+    shape = stats_va.shape                      # (bt, *extra, L, J, S, 2)
+    out = np.empty(shape[:-1], float)
+    lead = shape[:-4]
+    for s in range(shape[-2]):
+        mean = stats_va[..., s, 0].reshape((-1,) + shape[-4:-2])
+        cov = stats_va[..., s, 1].reshape((-1,) + shape[-4:-2])
+        fields = Fields(lat=lat, plev={"va": plev_va}, mean={"va": mean}, coverage={"va": cov})
+        out[..., s] = np.asarray(streamfunction(fields)).reshape(lead + shape[-4:-2])
+    return out
+
+
+class _Writer:
+    """The netCDF file, created on the first batch and appended to along ``time``."""
+
+    def __init__(self, path, run, argv):
+        import netCDF4
+
+        self.run = run
+        self.path = os.path.abspath(path)
+        self.tmp = os.path.join(os.path.dirname(self.path), "." + os.path.basename(self.path) + ".tmp")
+        self.nc = netCDF4.Dataset(self.tmp, "w", format="NETCDF4")
+        self.vars = {}
+        self._define(argv)
+
+    def _define(self, argv):
+        from circtrack import __version__
+
+        run, nc = self.run, self.nc
+        info = run.infos[0]
+        det = info.detected
+        nc.setncatts({
+            "Conventions": "CF-1.8",
+            "title": "zonal means of the variables circtrack found, and the mass streamfunction",
+            "source": str(run.label or _derived_source(run)),
+            "history": " ".join(argv),
+            "circtrack_version": __version__,
+            "input_files": ", ".join(sorted({r.path for i in run.infos for r in i.readers.values()})),
+            "streamfunction": "psi as in 'circtrack track' (metrics.cells.streamfunction; see 'circtrack "
+                              "metrics' for hadley_strength): positive = clockwise with north to the right",
+            "zonal_mean": "mean over the longitudes with valid values; ROLE_coverage is their share",
+        })
+        nc.createDimension("time", None)
+        t = nc.createVariable("time", "f8", ("time",))
+        first = run.times[0] if run.times.size else None
+        self.calendar = str(det.calendar or "standard")
+        self.time_units = f"days since {_iso_units(first)}"
+        t.setncatts({"standard_name": "time", "units": self.time_units, "calendar": self.calendar, "axis": "T"})
+        self.extra = list(det.extra_dims)
+        for name, values in det.extra_dims.items():
+            values = np.asarray(values)
+            nc.createDimension(name, values.size)
+            kind = "str" if values.dtype.kind in "OUS" else values.dtype
+            v = nc.createVariable(name, str if kind == "str" else kind, (name,))
+            v[:] = values.astype(str) if kind == "str" else values
+        self.sector = ["sector"] if run.sectors else []
+        if run.sectors:
+            names = ["zonal"] + [s[0] for s in run.sectors]
+            nc.createDimension("sector", len(names))
+            v = nc.createVariable("sector", str, ("sector",))
+            v[:] = np.array(names, dtype=object)
+            v.long_name = "longitude band: zonal (the whole circle) or the named sector"
+            v.bounds_degrees_east = "; ".join(f"{n}={a:g}:{b:g}" for n, a, b in run.sectors)
+        lat = np.sort(np.asarray(det.lat, float))
+        nc.createDimension("lat", lat.size)
+        v = nc.createVariable("lat", "f8", ("lat",))
+        v[:] = lat
+        v.setncatts({"standard_name": "latitude", "units": "degrees_north", "axis": "Y"})
+        self.lat = lat
+        self._define_roles(info)
+
+    def _define_roles(self, info):
+        nc = self.nc
+        level_sets = {r: tuple(np.asarray(info.plev[r], float)) for r in self.run.plan.roles
+                      if info.plev.get(r) is not None and np.size(info.plev[r])}
+        one = len(set(level_sets.values())) <= 1
+        self.level_dim = {}
+        for role, levels in level_sets.items():
+            dim = "plev" if one else f"plev_{role}"
+            self.level_dim[role] = dim
+            if dim not in nc.dimensions:
+                nc.createDimension(dim, len(levels))
+                v = nc.createVariable(dim, "f8", (dim,))
+                v[:] = np.array(levels)
+                v.setncatts({"standard_name": "air_pressure", "units": "hPa", "positive": "down", "axis": "Z"})
+        self.plev = {r: np.array(v) for r, v in level_sets.items()}
+        lead = ("time", *self.extra, *self.sector)
+        for role in self.run.plan.roles:
+            dims = lead + ((self.level_dim[role],) if role in self.level_dim else ()) + ("lat",)
+            std, units = ROLE_ATTRS.get(role, ("", ""))
+            v = nc.createVariable(role, "f8", dims, zlib=True, complevel=1, fill_value=np.nan)
+            v.setncatts({k: x for k, x in (("standard_name", std), ("units", units),
+                                           ("long_name", f"zonal mean of {role} over valid longitudes"),
+                                           ("cell_methods", "lon: mean (valid points)")) if x})
+            c = nc.createVariable(f"{role}_coverage", "f8", dims, zlib=True, complevel=1, fill_value=np.nan)
+            c.setncatts({"units": "1", "long_name": f"share of longitudes with a valid {role} value"})
+            self.vars[role] = (v, c)
+        if "va" in self.level_dim:
+            dims = lead + (self.level_dim["va"], "lat")
+            p = self.nc.createVariable("psi", "f8", dims, zlib=True, complevel=1, fill_value=np.nan)
+            p.setncatts({"units": "kg s-1", "long_name": "mass streamfunction of the zonal-mean meridional "
+                         "circulation, as computed by circtrack track",
+                         "comment": "psi = 2 pi a cos(lat)/g * integral of [v] dp from the top; the exact "
+                         "convention (column balance, top rule) is that of the cells family"})
+            self.vars["psi"] = (p, None)
+
+    def append(self, t0, t1, stats):
+        import cftime
+
+        self.nc["time"][t0:t1] = cftime.date2num(list(self.run.times[t0:t1]), self.time_units, self.calendar)
+        for role, (v, c) in self.vars.items():
+            if role == "psi":
+                continue
+            a = stats[role]                             # (bt, *extra, [L], J, S, 2)
+            v[t0:t1] = self._order(a[..., 0])
+            c[t0:t1] = self._order(a[..., 1])
+        if "psi" in self.vars:
+            psi = streamfunction_of(stats["va"], self.lat, self.plev["va"], len(self.extra))
+            self.vars["psi"][0][t0:t1] = self._order(psi)
+
+    def _order(self, a):
+        """(bt, *extra, [L], J, S) -> (bt, *extra, [S], [L], J); the sector axis only with sectors."""
+        if self.sector:
+            nlead = 1 + len(self.extra)
+            return np.moveaxis(a, -1, nlead)
+        return a[..., 0]
+
+    def close(self, ok):
+        self.nc.close()
+        if ok:
+            with open(self.tmp, "rb") as f:
+                os.fsync(f.fileno())
+            os.replace(self.tmp, self.path)
+        elif os.path.exists(self.tmp):
+            os.unlink(self.tmp)
+
+
+def _derived_source(run):
+    from circtrack.engine import derive_source
+
+    try:
+        return derive_source([i.path for i in run.infos], dict(run.infos[0].detected.attrs))
+    except Exception:          # the name is a courtesy; never fail a run over it
+        return ""
+
+
+def _iso_units(t):
+    from circtrack.engine import iso_time
+
+    if t is None:
+        return "1970-01-01 00:00:00"
+    text = iso_time(t)
+    return text.replace("T", " ") + ("" if "T" in text else " 00:00:00")
+
+
+def write(paths, out, cfg, *, overrides=None, sectors=(), label=None, on_bad_file=None, progress=None, argv=None):
+    """Write the zonal-mean fields of ``paths`` to the netCDF file ``out``; returns the run."""
+    run = _plan(paths, cfg, overrides, sectors, label, on_bad_file, progress)
+    if not run.times.size:
+        raise InputError(f"{paths[0]}: no time steps to write")
+    writer = _Writer(out, run, argv if argv is not None else ["circtrack", *sys.argv[1:]])
+    ok = False
+    try:
+        for t0, t1, stats in _batches(run):
+            writer.append(t0, t1, stats)
+        ok = True
+    finally:
+        writer.close(ok)
+    return run
