@@ -134,7 +134,7 @@ class OneLineGroup(click.Group):
             _fail(e.format_message(), e.exit_code)
         except SystemExit as e:
             # click's own broken-pipe exit: status 1 with stdout wrapped so that it stays quiet
-            if e.code == 1 and type(sys.stdout).__name__ == "PacifyFlushWrapper":
+            if e.code == 1 and type(sys.stdout).__name__.endswith("PacifyFlushWrapper"):
                 _broken_pipe()
             raise
         try:
