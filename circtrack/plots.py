@@ -107,12 +107,9 @@ def describe_record(data, keys):
 
 def _family_order(metric_ids):
     """[(family, [metric ids])] in catalogue order; metrics the catalogue does not know go last."""
-    try:
-        from circtrack.registry import catalogue
+    from circtrack.metrics import catalogue
 
-        cat = catalogue()
-    except Exception:        # pragma: no cover - a broken registry must not stop a picture
-        cat = {}
+    cat = catalogue()
     order = {m: i for i, m in enumerate(cat)}
     fams = {}
     for mid in sorted(metric_ids, key=lambda m: (order.get(m, len(order)), m)):

@@ -21,7 +21,7 @@ import sys
 
 import numpy as np
 
-from circtrack.errors import InputError, UsageError
+from circtrack.errors import InputError
 
 ROLE_ATTRS = {
     "ua": ("eastward_wind", "m s-1"), "va": ("northward_wind", "m s-1"), "ta": ("air_temperature", "K"),
@@ -35,11 +35,11 @@ ROLE_ATTRS = {
 def _plan(paths, cfg, overrides, sectors, label, on_bad_file, progress):
     """The engine run reading every role found, on every level, without the in-task reducers."""
     from circtrack import engine
+    from circtrack.engine.sectors import masks_per_input
 
     # sectors are added after planning: here they apply to every field, also those whose metrics
     # are defined for the whole circle only (the streamfunction of a sector is a diagnostic too)
-    sectors = list(sectors) + [(k, float(v[0]), float(v[1])) for k, v in cfg.get("sectors", {}).items()
-                               if k not in {s[0] for s in sectors}]
+    sectors = engine.merge_sectors(sectors, cfg)
     cfg = {**cfg, "sectors": {}}
     probe = engine.Run(paths, cfg, overrides=overrides, label=label, on_bad_file=on_bad_file)
     roles = list(probe.plan.roles)
@@ -47,39 +47,11 @@ def _plan(paths, cfg, overrides, sectors, label, on_bad_file, progress):
                      on_bad_file=on_bad_file, all_levels=tuple(roles))
     if progress is not None:
         run.progress = progress
-    run.plan.reducers = {}             # only the zonal statistics: no eddy covariances, no Fourier sums
-    names = [n for n, _, _ in sectors]
-    if len(set(names)) != len(names):
-        raise UsageError(f"sector name(s) {', '.join(sorted({n for n in names if names.count(n) > 1}))} given "
-                         "twice (--sector or [sectors]); give each band its own name")
-    run.sectors = sectors
-    run.masks_of = [engine.sector_masks(i.detected.lon, sectors) for i in run.infos]
-    for inf, masks in zip(run.infos, run.masks_of):
-        for (name, a, b), m in zip(sectors, masks[1:]):
-            if not m.any():
-                raise UsageError(f"--sector {name}={a:g}:{b:g} holds no grid longitude of {inf.path}; widen the band")
+    rp = run.record
+    rp.plan.reducers = {}             # only the zonal statistics: no eddy covariances, no Fourier sums
+    rp.sectors = sectors
+    rp.masks_of = masks_per_input(rp.infos, sectors)
     return run
-
-
-def _batches(run):
-    """Yield ``(t0, t1, stats)`` per batch, ``stats[role]`` of shape ``(bt, *extra, [L], J, S, 2)``
-    (mean over valid longitudes, share of valid longitudes), reading one batch at a time."""
-    from circtrack import engine
-
-    batch_of_pos, last_use = run._schedule()
-    needed = {int(c) for c in run.chunk_of[run.keep]} | {int(run.chunk_of[d]) for d in run.dropped}
-    runner = engine._Runner(run.cfg, len(needed))
-    cache = {}
-    try:
-        for bi, (t0, t1) in enumerate(run.batches):
-            yield t0, t1, run._reduce_batch(bi, runner, cache, last_use, batch_of_pos)["stats"]
-            run.progress.step(t1, run.times.size)
-    except BaseException:
-        runner.close(interrupted=True)
-        engine.close_cached()
-        raise
-    runner.close()
-    engine.close_cached()
 
 
 def streamfunction_of(stats_va, lat, plev_va, n_extra):
@@ -250,7 +222,7 @@ def write(paths, out, cfg, *, overrides=None, sectors=(), label=None, on_bad_fil
     writer = _Writer(out, run, argv if argv is not None else ["circtrack", *sys.argv[1:]])
     ok = False
     try:
-        for t0, t1, stats in _batches(run):
+        for t0, t1, stats in run.zonal_batches():
             writer.append(t0, t1, stats)
         ok = True
     finally:
