@@ -87,7 +87,8 @@ class Run:
         for role in all_levels:            # e.g. the cross-section: [u] on every level, not just 200/850 hPa
             plan.roles[role] = None
         infos, skipped = P.prepare_inputs(files, plan, cfg, overrides, policy)
-        progress.line(f"{len(infos)} file(s), metrics: {', '.join(plan.metric_ids)}")
+        if getattr(progress, "describe_inputs", True):
+            progress.line(f"{len(infos)} file(s), metrics: {', '.join(plan.metric_ids)}")
         axis = P.time_axis(infos, cfg, only_times, time_step_days)
         layout = P.task_layout(infos, cfg, axis["times_all"].size)
         masks_of = masks_per_input(infos, sectors)
