@@ -24,18 +24,25 @@ from circtrack.errors import UsageError
               help="Stop at an unreadable input (default) or skip it and report it.")
 @click.option("--repeated-times", type=click.Choice(["refuse", "keep-first", "keep-last"]), default=None,
               help="A time step found in two files with different values, as for 'track'.")
+@click.option("--workers", type=click.IntRange(1), default=None,
+              help="Start a local dask.distributed cluster of N worker processes, as for 'track'.")
+@click.option("--scheduler", default=None, metavar="ADDRESS", help="Use a running dask.distributed scheduler.")
 @click.option("-q", "--quiet", is_flag=True, help="No progress output.")
 @guarded
-def zonal_means(paths, output, config, variables, label, sectors, on_bad_file, repeated_times, quiet):
+def zonal_means(paths, output, config, variables, label, sectors, on_bad_file, repeated_times, workers, scheduler,
+                quiet):
     """Zonal means of the variables found in PATH..., their longitude coverage and the mass streamfunction
     (as 'track' computes it) as CF netCDF: (time, [member,] [sector,] plev, lat)."""
     from circtrack import config as C
     from circtrack import engine
     from circtrack import zonal_fields
+    from circtrack.cluster import scheduler_context
     from circtrack.output import check_output_path
 
     if not output.lower().endswith((".nc", ".nc4")) or output == "-":
         raise UsageError(f"-o {output}: give a netCDF file name ending in .nc")
+    if workers and scheduler:
+        raise UsageError("--workers and --scheduler exclude each other; give one")
     cfg = C.load(config)
     if repeated_times:
         cfg["run"]["repeated_times"] = repeated_times
@@ -44,8 +51,10 @@ def zonal_means(paths, output, config, variables, label, sectors, on_bad_file, r
     secs = [engine.parse_sector(s) for s in sectors]
     check_output_path(output)
     prog = engine.Progress(quiet=quiet)
-    run = zonal_fields.write(list(paths), output, cfg, overrides=parse_vars(variables), sectors=secs, label=label,
-                             on_bad_file=on_bad_file, progress=prog, argv=["circtrack", *sys.argv[1:]])
+    with scheduler_context(workers, scheduler, cfg):
+        run = zonal_fields.write(list(paths), output, cfg, overrides=parse_vars(variables), sectors=secs,
+                                 label=label, on_bad_file=on_bad_file, progress=prog,
+                                 argv=["circtrack", *sys.argv[1:]])
     if not quiet:
         click.echo(f"circtrack: wrote {os.path.basename(output)}: {run.times.size} time steps, "
                    f"{', '.join(run.plan.roles)}" + (", psi" if "va" in run.plan.roles else ""), err=True)
