@@ -47,7 +47,7 @@ def test_a_missing_package_names_its_pip_install(tmp_path, monkeypatch):
     from tests.conftest import make_dataset
 
     store = tmp_path / "s.zarr"
-    make_dataset(1).to_zarr(store, mode="w")
+    make_dataset(1).to_zarr(store, mode="w", consolidated=False)
     real = builtins.__import__
 
     def no_zarr(name, *a, **k):
