@@ -6,7 +6,8 @@
 
 :func:`track` runs the members of an ensemble given as one file per member one after another
 and merges their rows (``member`` key column). :class:`Run` is one run: constructing it plans
-(reads no data); :meth:`Run.execute` computes; :meth:`Run.zonal_means` gives the reduced fields.
+(reads no data); :meth:`Run.execute` computes; :meth:`Run.zonal_batches` streams the reduced fields
+batch by batch (`circtrack zonal-means`) and :meth:`Run.zonal_means` gathers them for a few time steps.
 """
 
 from __future__ import annotations
