@@ -9,7 +9,8 @@ readers and tasks, batch by batch, and each batch is appended to the file before
 read: memory is bounded by a batch, not by the record. The file appears atomically (temp file in
 the same directory, fsync, rename).
 
-Layout: dimensions ``time`` (unlimited), extra input dimensions (e.g. ``member``), ``sector`` (only
+Layout: dimensions ``time`` (unlimited), ``member`` for members in files of their own (as ``track``
+tells them apart), extra input dimensions (e.g. ``member``), ``sector`` (only
 with sectors; ``zonal`` first), ``plev`` (hPa, top first; ``plev_ROLE`` when roles differ in levels),
 ``lat`` (ascending). Variables ``ROLE`` (CMIP short name), ``ROLE_coverage`` and ``psi``.
 """
@@ -33,18 +34,35 @@ ROLE_ATTRS = {
 
 
 def _plan(paths, cfg, overrides, sectors, label, on_bad_file, progress):
-    """The engine run reading every role found, on every level, without the in-task reducers."""
+    """The engine runs reading every role found, on every level, without the in-task reducers:
+    ``[(member or None, Run)]``, one per member when each member comes in files of its own."""
     from circtrack import engine
-    from circtrack.engine.sectors import masks_per_input
 
     # sectors are added after planning: here they apply to every field, also those whose metrics
     # are defined for the whole circle only (the streamfunction of a sector is a diagnostic too)
     sectors = engine.merge_sectors(sectors, cfg)
     cfg = {**cfg, "sectors": {}}
     probe = engine.Run(paths, cfg, overrides=overrides, label=label, on_bad_file=on_bad_file)
-    roles = list(probe.plan.roles)
-    run = engine.Run(paths, cfg, metric_ids=probe.plan.metric_ids, overrides=overrides, label=label,
-                     on_bad_file=on_bad_file, all_levels=tuple(roles))
+    kw = dict(metric_ids=probe.plan.metric_ids, roles=tuple(probe.plan.roles), overrides=overrides, label=label,
+              on_bad_file=on_bad_file, sectors=sectors, progress=progress)
+    groups = engine.member_groups(probe.infos)
+    if not groups:
+        return [(None, _run(paths, cfg, **kw))]
+    runs = [(m, _run(groups[m], cfg, **kw)) for m in sorted(groups)]
+    first = [engine.iso_time(t) for t in runs[0][1].times]
+    for m, run in runs[1:]:
+        if [engine.iso_time(t) for t in run.times] != first:
+            raise InputError(f"{run.infos[0].path}: member {m} has other time steps than member {runs[0][0]} "
+                             f"({run.times.size} against {len(first)}); give files covering the same period")
+    return runs
+
+
+def _run(paths, cfg, *, metric_ids, roles, overrides, label, on_bad_file, sectors, progress):
+    from circtrack import engine
+    from circtrack.engine.sectors import masks_per_input
+
+    run = engine.Run(paths, cfg, metric_ids=metric_ids, overrides=overrides, label=label,
+                     on_bad_file=on_bad_file, all_levels=roles)
     if progress is not None:
         run.progress = progress
     rp = run.record
@@ -54,7 +72,7 @@ def _plan(paths, cfg, overrides, sectors, label, on_bad_file, progress):
     return run
 
 
-def streamfunction_of(stats_va, lat, plev_va, n_extra):
+def streamfunction_of(stats_va, lat, plev_va):
     """psi ``(bt, *extra, L, J, S)`` from the va statistics, per sector, through the cells family's
     own function."""
     from circtrack.metrics.cells import streamfunction
@@ -74,10 +92,12 @@ def streamfunction_of(stats_va, lat, plev_va, n_extra):
 class _Writer:
     """The netCDF file, created on the first batch and appended to along ``time``."""
 
-    def __init__(self, path, run, argv):
+    def __init__(self, path, run, argv, members=None, inputs=None):
         import netCDF4
 
         self.run = run
+        self.members = members         # one member per file: a 'member' dimension of these labels
+        self.inputs = inputs or sorted({r.path for i in run.infos for r in i.readers.values()})
         self.path = os.path.abspath(path)
         self.tmp = os.path.join(os.path.dirname(self.path), "." + os.path.basename(self.path) + ".tmp")
         self.nc = netCDF4.Dataset(self.tmp, "w", format="NETCDF4")
@@ -96,7 +116,7 @@ class _Writer:
             "source": str(run.label or _derived_source(run)),
             "history": " ".join(argv),
             "circtrack_version": __version__,
-            "input_files": ", ".join(sorted({r.path for i in run.infos for r in i.readers.values()})),
+            "input_files": ", ".join(self.inputs),
             "streamfunction": "psi as in 'circtrack track' (metrics.cells.streamfunction; see 'circtrack "
                               "metrics' for hadley_strength): positive = clockwise with north to the right",
             "zonal_mean": "mean over the longitudes with valid values; ROLE_coverage is their share",
@@ -107,8 +127,12 @@ class _Writer:
         self.calendar = str(det.calendar or "standard")
         self.time_units = f"days since {_iso_units(first)}"
         t.setncatts({"standard_name": "time", "units": self.time_units, "calendar": self.calendar, "axis": "T"})
-        self.extra = list(det.extra_dims)
-        for name, values in det.extra_dims.items():
+        self.extra = (["member"] if self.members else []) + list(det.extra_dims)
+        if self.members and "member" in det.extra_dims:
+            raise InputError(f"{info.path}: members both across files ({', '.join(self.members)}) and inside the "
+                             "files along 'member'; give the files of one of the two kinds")
+        dims = {**({"member": np.array(self.members, dtype=object)} if self.members else {}), **det.extra_dims}
+        for name, values in dims.items():
             values = np.asarray(values)
             nc.createDimension(name, values.size)
             kind = "str" if values.dtype.kind in "OUS" else values.dtype
@@ -165,24 +189,26 @@ class _Writer:
                          "convention (column balance, top rule) is that of the cells family"})
             self.vars["psi"] = (p, None)
 
-    def append(self, t0, t1, stats):
+    def append(self, t0, t1, stats, member=None):
+        """Write batch ``t0:t1`` (of member index ``member`` when members come one per file)."""
         import cftime
 
+        at = (slice(t0, t1),) if member is None else (slice(t0, t1), member)
         self.nc["time"][t0:t1] = cftime.date2num(list(self.run.times[t0:t1]), self.time_units, self.calendar)
         for role, (v, c) in self.vars.items():
             if role == "psi":
                 continue
             a = stats[role]                             # (bt, *extra, [L], J, S, 2)
-            v[t0:t1] = self._order(a[..., 0])
-            c[t0:t1] = self._order(a[..., 1])
+            v[at] = self._order(a[..., 0])
+            c[at] = self._order(a[..., 1])
         if "psi" in self.vars:
-            psi = streamfunction_of(stats["va"], self.lat, self.plev["va"], len(self.extra))
-            self.vars["psi"][0][t0:t1] = self._order(psi)
+            psi = streamfunction_of(stats["va"], self.lat, self.plev["va"])
+            self.vars["psi"][0][at] = self._order(psi)
 
     def _order(self, a):
         """(bt, *extra, [L], J, S) -> (bt, *extra, [S], [L], J); the sector axis only with sectors."""
         if self.sector:
-            nlead = 1 + len(self.extra)
+            nlead = 1 + len(self.extra) - (1 if self.members else 0)
             return np.moveaxis(a, -1, nlead)
         return a[..., 0]
 
@@ -216,14 +242,19 @@ def _iso_units(t):
 
 def write(paths, out, cfg, *, overrides=None, sectors=(), label=None, on_bad_file=None, progress=None, argv=None):
     """Write the zonal-mean fields of ``paths`` to the netCDF file ``out``; returns the run."""
-    run = _plan(paths, cfg, overrides, sectors, label, on_bad_file, progress)
+    runs = _plan(paths, cfg, overrides, sectors, label, on_bad_file, progress)
+    run = runs[0][1]
     if not run.times.size:
         raise InputError(f"{paths[0]}: no time steps to write")
-    writer = _Writer(out, run, argv if argv is not None else ["circtrack", *sys.argv[1:]])
+    members = [m for m, _ in runs] if runs[0][0] is not None else None
+    inputs = sorted({rd.path for _, r in runs for i in r.infos for rd in i.readers.values()})
+    writer = _Writer(out, run, argv if argv is not None else ["circtrack", *sys.argv[1:]], members=members,
+                     inputs=inputs)
     ok = False
     try:
-        for t0, t1, stats in run.zonal_batches():
-            writer.append(t0, t1, stats)
+        for k, (m, r) in enumerate(runs):
+            for t0, t1, stats in r.zonal_batches():
+                writer.append(t0, t1, stats, member=None if m is None else k)
         ok = True
     finally:
         writer.close(ok)

@@ -119,3 +119,24 @@ def test_failures_leave_the_previous_file(moving, tmp_path):
     assert [p.name for p in tmp_path.iterdir() if p.name.endswith(".tmp")] == []
     r = invoke("zonal-means", moving, "-o", tmp_path / "zm.csv")
     assert r.exit_code == 2 and ".nc" in r.output
+
+
+def test_members_in_files_of_their_own(tmp_path):
+    """One member per file (told apart by variant_label, as 'track' does): a 'member' dimension, each
+    member's fields those of its own files."""
+    paths = {}
+    for member, zeros in (("r1i1p1f1", (-60.0, -30.0, 5.0, 28.0, 62.0)), ("r2i1p1f1", (-60.0, -25.0, 5.0, 33.0, 62.0))):
+        ds = make_dataset(2, cell_zeros=zeros)
+        ds.attrs["variant_label"] = member
+        paths[member] = write(ds, tmp_path / f"va_{member}.nc")
+    out = tmp_path / "zm.nc"
+    r = invoke("zonal-means", *paths.values(), "-o", out, "-q")
+    assert r.exit_code == 0, r.output
+    z = opened(out)
+    assert z.psi.dims == ("time", "member", "plev", "lat") and list(z.member.values) == list(paths)
+    for member, path in paths.items():
+        one = tmp_path / f"{member}.nc"
+        assert invoke("zonal-means", path, "-o", one, "-q").exit_code == 0
+        np.testing.assert_array_equal(opened(one).psi, z.psi.sel(member=member))
+        np.testing.assert_array_equal(opened(one).ua, z.ua.sel(member=member))
+    assert "va_r2i1p1f1.nc" in z.attrs["input_files"]
