@@ -24,13 +24,21 @@ import numpy as np
 
 from circtrack.errors import InputError
 
-ROLE_ATTRS = {
-    "ua": ("eastward_wind", "m s-1"), "va": ("northward_wind", "m s-1"), "ta": ("air_temperature", "K"),
-    "zg": ("geopotential_height", "m"), "hus": ("specific_humidity", "1"), "ps": ("surface_air_pressure", "Pa"),
-    "uas": ("eastward_wind", "m s-1"), "vas": ("northward_wind", "m s-1"), "psl": ("air_pressure_at_mean_sea_level", "hPa"),
-    "pr": ("precipitation_flux", "kg m-2 s-1"), "evspsbl": ("water_evapotranspiration_flux", "kg m-2 s-1"),
-    "rlut": ("toa_outgoing_longwave_flux", "W m-2"),
+STANDARD_NAMES = {
+    "ua": "eastward_wind", "va": "northward_wind", "ta": "air_temperature", "zg": "geopotential_height",
+    "hus": "specific_humidity", "ps": "surface_air_pressure", "uas": "eastward_wind", "vas": "northward_wind",
+    "psl": "air_pressure_at_mean_sea_level", "pr": "precipitation_flux",
+    "evspsbl": "water_evapotranspiration_flux", "rlut": "toa_outgoing_longwave_flux",
 }
+
+
+def role_attrs(role):
+    """(standard_name, units, description) of a role: the units are those the readers convert to."""
+    from circtrack.inputs.rules import VARIABLES
+    from circtrack.inputs.units import CANONICAL
+
+    rule = VARIABLES.get(role, {})
+    return STANDARD_NAMES.get(role, ""), CANONICAL.get(rule.get("kind"), ""), rule.get("long", role)
 
 
 def _plan(paths, cfg, overrides, sectors, label, on_bad_file, progress):
@@ -172,10 +180,10 @@ class _Writer:
         lead = ("time", *self.extra, *self.sector)
         for role in self.run.plan.roles:
             dims = lead + ((self.level_dim[role],) if role in self.level_dim else ()) + ("lat",)
-            std, units = ROLE_ATTRS.get(role, ("", ""))
+            std, units, long = role_attrs(role)
             v = nc.createVariable(role, "f8", dims, zlib=True, complevel=1, fill_value=np.nan)
             v.setncatts({k: x for k, x in (("standard_name", std), ("units", units),
-                                           ("long_name", f"zonal mean of {role} over valid longitudes"),
+                                           ("long_name", f"zonal mean of the {long} over valid longitudes"),
                                            ("cell_methods", "lon: mean (valid points)")) if x})
             c = nc.createVariable(f"{role}_coverage", "f8", dims, zlib=True, complevel=1, fill_value=np.nan)
             c.setncatts({"units": "1", "long_name": f"share of longitudes with a valid {role} value"})

@@ -140,3 +140,23 @@ def test_members_in_files_of_their_own(tmp_path):
         np.testing.assert_array_equal(opened(one).psi, z.psi.sel(member=member))
         np.testing.assert_array_equal(opened(one).ua, z.ua.sel(member=member))
     assert "va_r2i1p1f1.nc" in z.attrs["input_files"]
+
+
+def test_surface_fields_and_one_variable_per_file(tmp_path):
+    """A field without levels (sea-level pressure, here in Pa) is written (time, lat) in the units the
+    readers convert to (hPa); files of one variable each are joined as for 'track'."""
+    ds = make_dataset(2)
+    psl = 101325.0 + 1000.0 * np.cos(np.deg2rad(LAT))
+    ds["psl"] = xr.DataArray(np.broadcast_to(psl[None, :, None], (2, LAT.size, LON.size)).astype("float32"),
+                             dims=("time", "lat", "lon"),
+                             attrs={"standard_name": "air_pressure_at_mean_sea_level", "units": "Pa"})
+    (tmp_path / "d").mkdir()
+    write(ds[["ua", "psl"]], tmp_path / "d" / "ua_Amon_X_2000.nc")
+    write(ds[["va"]], tmp_path / "d" / "va_Amon_X_2000.nc")
+    out = tmp_path / "zm.nc"
+    r = invoke("zonal-means", tmp_path / "d", "-o", out, "-q")
+    assert r.exit_code == 0, r.output
+    z = opened(out)
+    assert z.psl.dims == ("time", "lat") and z.psl.attrs["units"] == "hPa"
+    np.testing.assert_allclose(z.psl.isel(time=1), psl.astype(np.float32) / 100.0, rtol=1e-6)
+    assert {"ua", "va", "psi", "psl_coverage"} <= set(z.data_vars)
