@@ -255,15 +255,22 @@ def write(paths, out, cfg, *, overrides=None, sectors=(), label=None, on_bad_fil
     if not run.times.size:
         raise InputError(f"{paths[0]}: no time steps to write")
     members = [m for m, _ in runs] if runs[0][0] is not None else None
+    from circtrack.engine.reduce import NC_LOCK
+
     inputs = sorted({rd.path for _, r in runs for i in r.infos for rd in i.readers.values()})
-    writer = _Writer(out, run, argv if argv is not None else ["circtrack", *sys.argv[1:]], members=members,
-                     inputs=inputs)
+    # netCDF-C/HDF5 are not thread-safe: the next batch may be read in a thread of this process
+    # (scheduler "threads" or "sync") while this one is written, so writes take the readers' lock
+    with NC_LOCK:
+        writer = _Writer(out, run, argv if argv is not None else ["circtrack", *sys.argv[1:]], members=members,
+                         inputs=inputs)
     ok = False
     try:
         for k, (m, r) in enumerate(runs):
             for t0, t1, stats in r.zonal_batches():
-                writer.append(t0, t1, stats, member=None if m is None else k)
+                with NC_LOCK:
+                    writer.append(t0, t1, stats, member=None if m is None else k)
         ok = True
     finally:
-        writer.close(ok)
+        with NC_LOCK:
+            writer.close(ok)
     return run
