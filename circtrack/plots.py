@@ -18,7 +18,8 @@ Layout
 
 What each panel shows depends on the record
 -------------------------------------------
-* Time series (left): the values as a line (daily and sub-daily steps included) against a date
+* Time series (left): the values as a line (daily and sub-daily steps included; over several years
+  faint, with their monthly means over them) against a date
   axis in the data's own calendar (dates for records shorter than three years, whole years
   otherwise); annual means (complete years) as dots; the OLS trend with its AR(1)-adjusted 95 %
   band only when there are at least ``min_years`` annual means, labelled with the slope, n and the
@@ -252,6 +253,10 @@ def _draw_time_series(ax, sub, keys, extras, rec, colours, calendar, min_years, 
             x, y = _values(g, mon, rec["submonthly"])
         ann = _annual(mon)
         main = len(ann) < 2            # no annual means to draw: the values are the main line
+        if rec["submonthly"] and not main and not ensemble:
+            # years of daily data: every step faint, the monthly means over it
+            ax.plot(x, y, "-", color=colour, lw=0.3, alpha=0.2)
+            x, y = mon["t"].to_numpy(), mon["value"].to_numpy()
         ax.plot(x, y, "o-" if len(x) <= 40 else "-", color=colour, ms=3, lw=1.2 if main else 0.6,
                 alpha=1.0 if main else 0.45, label=label if main else None)
         trend = len(ann) >= min_years
