@@ -142,7 +142,7 @@ _STEP_DAYS = {"h": 1 / 24, "D": 1.0, "M": 30.44}
 
 def _date_at(x, calendar):
     y = int(np.floor(x))
-    y0, length = S._year_start_length(y, calendar)
+    y0, length = S.year_start_length(y, calendar)
     return y0 + datetime.timedelta(days=(x - y) * length)
 
 

@@ -146,7 +146,7 @@ def cf_date(year, month, day, calendar, hour=0.0):
 
 
 @lru_cache(maxsize=None)
-def _year_start_length(year, calendar):
+def year_start_length(year, calendar):
     y0, y1 = cf_date(year, 1, 1, calendar), cf_date(year + 1, 1, 1, calendar)
     return y0, (y1 - y0).total_seconds() / 86400.0
 
@@ -158,7 +158,7 @@ def decimal_time(years, months, days, hours, calendar="standard"):
     for i, key in enumerate(zip(years, months, days, hours)):
         if key not in cache:
             y, m, d, h = key
-            y0, length = _year_start_length(int(y), calendar)
+            y0, length = year_start_length(int(y), calendar)
             cache[key] = int(y) + (cf_date(y, m, d, calendar, h) - y0).total_seconds() / 86400.0 / length
         out[i] = cache[key]
     return out
