@@ -147,6 +147,7 @@ def cf_date(year, month, day, calendar, hour=0.0):
 
 @lru_cache(maxsize=None)
 def year_start_length(year, calendar):
+    """1 January of ``year`` (a cftime date) and the length of that year in days, in ``calendar``."""
     y0, y1 = cf_date(year, 1, 1, calendar), cf_date(year + 1, 1, 1, calendar)
     return y0, (y1 - y0).total_seconds() / 86400.0
 
