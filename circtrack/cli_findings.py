@@ -221,6 +221,9 @@ def plot(csv_path, output, metrics, poleward_positive, min_years, calendar, sect
                            ("--var", variables)) if v]
     if used:
         raise UsageError(f"{', '.join(used)}: only with --section DATAFILE")
+    from circtrack.output import check_output_path
+
+    check_output_path(output)
     df = _load(csv_path)
     ids = _metric_ids(metrics, df, csv_path)
     cal = _calendar(csv_path, df, calendar)

@@ -90,6 +90,9 @@ def test_one_page_per_family_fits_a_screen(tmp_path):
     # one family: exactly OUT
     r = invoke("plot", csv, "--metrics", "eddy_jet_lat,eddy_jet_speed", "-o", tmp_path / "jets.png")
     assert r.exit_code == 0 and (tmp_path / "jets.png").exists() and r.stderr == ""
+    # a missing output directory: one line before any work
+    r = invoke("plot", csv, "-o", tmp_path / "missing" / "ov.png")
+    assert r.exit_code == 2 and r.stderr.count("\n") == 1 and "mkdir -p" in r.stderr
 
 
 def test_a_large_family_continues_on_a_second_page():
