@@ -83,12 +83,8 @@ def _run(paths, cfg, *, metric_ids, roles, overrides, label, on_bad_file, sector
 def streamfunction_of(stats_va, lat, plev_va, cfg):
     """psi ``(bt, *extra, L, J, S)`` from the va statistics, per sector, through the cells family's
     own function (with the run's configuration, so its column rules are those of 'track')."""
-    import inspect
-
     from circtrack.metrics.cells import streamfunction
     from circtrack.metrics.common import Fields
-
-    with_cfg = len(inspect.signature(streamfunction).parameters) > 1     # psi(fields, cfg) or psi(fields)
 
     shape = stats_va.shape                      # (bt, *extra, L, J, S, 2)
     out = np.empty(shape[:-1], float)
@@ -97,7 +93,7 @@ def streamfunction_of(stats_va, lat, plev_va, cfg):
         mean = stats_va[..., s, 0].reshape((-1,) + shape[-4:-2])
         cov = stats_va[..., s, 1].reshape((-1,) + shape[-4:-2])
         fields = Fields(lat=lat, plev={"va": plev_va}, mean={"va": mean}, coverage={"va": cov})
-        psi = streamfunction(fields, cfg) if with_cfg else streamfunction(fields)
+        psi = streamfunction(fields, cfg)
         out[..., s] = np.asarray(psi).reshape(lead + shape[-4:-2])
     return out
 
