@@ -173,7 +173,12 @@ def _draw_psi(ax, sec):
     cs = ax.contour(sec.lat, sec.plev_psi, psi, levels=levels, colors="k", linewidths=0.9)
     cs.set_linestyles(["solid" if v > 0 else "dashed" for v in cs.levels])
     ax.clabel(cs, fmt="%g", fontsize=8, inline=True)
-    ax.contour(sec.lat, sec.plev_psi, psi, levels=[0.0], colors=["#444444"], linewidths=2.2)
+    # psi is zero by construction at the top (and, balanced, at the bottom) of the column: rounding
+    # noise there would draw a broken line along the frame, so it is set to an exact 0 there
+    quiet = np.abs(psi) <= 1e-6 * pmax
+    quiet[1:-1] = False
+    ax.contour(sec.lat, sec.plev_psi, np.where(quiet, 0.0, psi), levels=[0.0], colors=["#444444"],
+               linewidths=2.2)
 
 
 def _draw_positions(ax, sec):
