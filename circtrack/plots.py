@@ -377,7 +377,8 @@ def pages(df, metrics=None, calendar="standard", poleward_positive=True, min_yea
                 families = [("selection", ids)]
         for fam, ids in families:
             rows = _panel_rows(data, ids, poleward_positive)
-            chunks = [rows[i:i + MAX_ROWS] for i in range(0, len(rows), MAX_ROWS)]
+            per = -(-len(rows) // -(-len(rows) // MAX_ROWS))      # the pages of a family evenly filled
+            chunks = [rows[i:i + per] for i in range(0, len(rows), per)]
             for j, chunk in enumerate(chunks):
                 name = fam if j == 0 else f"{fam}-{j + 1}"
                 what = "time series"
