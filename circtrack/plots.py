@@ -3,7 +3,7 @@
 Layout
 ------
 * One *page* per metric family (the registry's families: cells, jets, surface winds, ...), at most
-  :data:`MAX_ROWS` panel rows per page (a larger family continues on a second page); a ``metrics``
+  :data:`MAX_ROWS` panel rows per page (a larger family continues on further pages, evenly filled); a ``metrics``
   selection that fits one page is one page. A page is
   9 inches wide and at most about 9.8 inches high (1080 x 1170 pixels at the default 120 dpi).
   A multi-page selection goes into one multi-page PDF, or one PNG/SVG file per page named
