@@ -49,7 +49,13 @@ def zonal_means(paths, output, config, variables, label, sectors, on_bad_file, r
     if on_bad_file:
         cfg["run"]["on_bad_file"] = on_bad_file
     secs = [engine.parse_sector(s) for s in sectors]
-    check_output_path(output)
+    check_output_path(output, beside_names=(), stream_ok=False)
+    from circtrack import guards as G
+    from circtrack.inputs.files import expand
+
+    named = [p for p in paths if p != "-"]              # paths on stdin are read once, by the run
+    if named:
+        G.refuse_outputs_among_inputs([(f"-o {output}", output)], expand(named))
     prog = engine.Progress(quiet=quiet)
     with scheduler_context(workers, scheduler, cfg):
         run = zonal_fields.write(list(paths), output, cfg, overrides=parse_vars(variables), sectors=secs,

@@ -401,34 +401,47 @@ def figure(df, metrics=None, calendar="standard", poleward_positive=False, min_y
     return figs[0][1]
 
 
-def _tmp(path):
-    return os.path.join(os.path.dirname(path), "." + os.path.basename(path) + ".tmp")
+def _render(fig, ext):
+    """The bytes of ``fig`` in format ``ext``; no dates in the metadata, so reruns give the same bytes."""
+    import io
+
+    meta = {"Creator": "circtrack"}
+    if ext == "pdf":
+        meta = {"Creator": "circtrack", "CreationDate": None}
+    elif ext == "svg":
+        meta = {"Creator": "circtrack", "Date": None}
+    buf = io.BytesIO()
+    try:
+        with plt.rc_context(STYLE), warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            fig.savefig(buf, format=ext, metadata=meta)
+    finally:
+        plt.close(fig)
+    return buf.getvalue()
+
+
+def _ext(path):
+    ext = os.path.splitext(path)[1].lower().lstrip(".")
+    if ext not in FORMATS:
+        raise ValueError(f"{path}: unknown figure format '.{ext}'; use .png, .pdf or .svg")
+    return ext
 
 
 def save_figure(fig, path):
-    """Write ``fig`` to ``path`` (format from the extension: png, pdf or svg) atomically and close it;
-    no dates in the metadata, so reruns give the same bytes."""
-    ext = os.path.splitext(path)[1].lower().lstrip(".")
-    if ext not in FORMATS:
-        plt.close(fig)
-        raise ValueError(f"{path}: unknown figure format '.{ext}'; use .png, .pdf or .svg")
-    path = os.path.abspath(path)
-    tmp = _tmp(path)
+    """Write ``fig`` to ``path`` (format from the extension: png, pdf or svg) and close it: rendered
+    in memory, then written like every output (synced temp file and rename; through a symbolic link;
+    straight into a device). No dates in the metadata, so reruns give the same bytes."""
+    from circtrack.output import emit, resolve_target
+
     try:
-        meta = {"Creator": "circtrack"}
-        if ext == "pdf":
-            meta = {"Creator": "circtrack", "CreationDate": None}
-        elif ext == "svg":
-            meta = {"Creator": "circtrack", "Date": None}
-        with plt.rc_context(STYLE), warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            fig.savefig(tmp, format=ext, metadata=meta)
-        os.replace(tmp, path)
-    finally:
+        ext = _ext(path)
+    except ValueError:
         plt.close(fig)
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-    return path
+        raise
+    data = _render(fig, ext)
+    target = resolve_target(path)
+    emit(target, data)
+    return target.path
 
 
 def page_paths(path, names):
@@ -439,37 +452,47 @@ def page_paths(path, names):
     return [f"{stem}-{n}{ext}" for n in names]
 
 
-def _save_pdf(figs, path):
+def _pdf_bytes(figs):
+    """One multi-page PDF of ``figs`` (closed afterwards), in memory."""
+    import io
+
     from matplotlib.backends.backend_pdf import PdfPages
 
-    path = os.path.abspath(path)
-    tmp = _tmp(path)
+    buf = io.BytesIO()
     try:
         with plt.rc_context(STYLE), warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            with PdfPages(tmp, metadata={"Creator": "circtrack", "CreationDate": None}) as pdf:
+            with PdfPages(buf, metadata={"Creator": "circtrack", "CreationDate": None}) as pdf:
                 for f in figs:
                     pdf.savefig(f)
-        os.replace(tmp, path)
     finally:
         for f in figs:
             plt.close(f)
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-    return path
+    return buf.getvalue()
 
 
 def save(df, path, metrics=None, calendar="standard", poleward_positive=True, min_years=S.MIN_TREND_YEARS):
-    """Render the pages to ``path`` (format from the extension: png, pdf or svg), atomically; returns
-    the files written (one for a single page or a PDF, else one per page, see :func:`page_paths`)."""
-    ext = os.path.splitext(path)[1].lower().lstrip(".")
-    if ext not in FORMATS:
-        raise ValueError(f"{path}: unknown figure format '.{ext}'; use .png, .pdf or .svg")
+    """Render the pages to ``path`` (format from the extension: png, pdf or svg); returns the files
+    written: one for a single page or a PDF, else one per page (see :func:`page_paths`), committed
+    together (all or none)."""
+    from circtrack.output import commit, emit, resolve_target
+
+    ext = _ext(path)
     figs = pages(df, metrics=metrics, calendar=calendar, poleward_positive=poleward_positive, min_years=min_years)
-    if ext == "pdf":
-        return [_save_pdf([f for _, f in figs], path)]
-    targets = page_paths(path, [n for n, _ in figs])
-    return [save_figure(f, p) for (_, f), p in zip(figs, targets)]
+    if ext == "pdf" or len(figs) == 1:
+        data = _pdf_bytes([f for _, f in figs]) if ext == "pdf" else _render(figs[0][1], ext)
+        target = resolve_target(path)
+        emit(target, data)
+        return [target.path]
+    targets = [resolve_target(p) for p in page_paths(path, [n for n, _ in figs])]
+    data = [_render(f, ext) for _, f in figs]
+    files = [(t.path, d) for t, d in zip(targets, data) if t.kind == "file"]
+    if files:
+        commit(files)
+    for t, d in zip(targets, data):
+        if t.kind != "file":
+            emit(t, d)
+    return [t.path for t in targets]
 
 
 __all__ = ["pages", "figure", "save", "save_figure", "page_paths", "date_ticks", "describe_record",

@@ -107,7 +107,7 @@ class _Writer:
         self.run = run
         self.members = members         # one member per file: a 'member' dimension of these labels
         self.inputs = inputs or sorted({r.path for i in run.infos for r in i.readers.values()})
-        self.path = os.path.abspath(path)
+        self.path = os.path.realpath(path)          # a symbolic link is written through, as for every output
         self.tmp = os.path.join(os.path.dirname(self.path), "." + os.path.basename(self.path) + ".tmp")
         self.nc = netCDF4.Dataset(self.tmp, "w", format="NETCDF4")
         self.vars = {}

@@ -160,3 +160,14 @@ def test_surface_fields_and_one_variable_per_file(tmp_path):
     assert z.psl.dims == ("time", "lat") and z.psl.attrs["units"] == "hPa"
     np.testing.assert_allclose(z.psl.isel(time=1), psl.astype(np.float32) / 100.0, rtol=1e-6)
     assert {"ua", "va", "psi", "psl_coverage"} <= set(z.data_vars)
+
+
+def test_an_input_is_never_the_output(moving, tmp_path):
+    import shutil
+
+    copy = tmp_path / "copy.nc"
+    shutil.copy(moving, copy)
+    before = copy.read_bytes()
+    r = invoke("zonal-means", copy, "-o", copy)
+    assert r.exit_code == 2 and len(r.output.strip().splitlines()) == 1
+    assert copy.read_bytes() == before
