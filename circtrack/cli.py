@@ -120,8 +120,9 @@ def metrics_cmd(fmt):
 
 
 from circtrack.cli_findings import plot, season, trend  # noqa: E402
+from circtrack.cli_fields import zonal_means  # noqa: E402
 
-for _cmd in (trend, season, plot):
+for _cmd in (trend, season, plot, zonal_means):
     main.add_command(_cmd)
 
 from circtrack.update import make_command as _make_update  # noqa: E402

@@ -143,24 +143,46 @@ _calendar_opt = click.option("--calendar", type=click.Choice(CALENDARS), default
                              help="Calendar of the times (default: from the provenance sidecar, else guessed).")
 
 
+_min_years_opt = click.option(
+    "--min-years", type=click.IntRange(3), default=None, metavar="N",
+    help="Fit a trend only to series of at least N annual (or seasonal) means (default 10).")
+
+
 @click.command()
 @click.argument("csv_path", metavar="CSV")
 @click.option("-o", "--output", default=None, help="Output CSV (default: stdout).")
 @click.option("--poleward-positive", is_flag=True, help="Flip SH latitude metrics so that poleward is positive.")
 @click.option("--metrics", default=None, metavar="ID,...", help="Comma-separated metric ids (default: all).")
+@_min_years_opt
 @_calendar_opt
 @guarded
-def trend(csv_path, output, poleward_positive, metrics, calendar):
-    """Trends per decade (OLS with AR(1)-adjusted CI; Theil-Sen with Mann-Kendall p) per season."""
+def trend(csv_path, output, poleward_positive, metrics, min_years, calendar):
+    """Trends per decade (OLS with AR(1)-adjusted CI; Theil-Sen with Mann-Kendall p) per season.
+
+    Series with fewer than --min-years annual or seasonal means get no rows (a note on stderr says
+    how many); when no series is long enough the command fails with exit status 1."""
     from circtrack import stats as S
 
     (target,) = _outputs(csv_path, ("-o", output))
     df = _load(csv_path)
     ids = _metric_ids(metrics, df, csv_path)
     cal = _calendar(csv_path, df, calendar)
-    tab = _wrap(lambda: S.trends(df, poleward_positive=poleward_positive, calendar=cal, metrics=ids), csv_path)
+    need = min_years or S.MIN_TREND_YEARS
+    short = []
+    tab = _wrap(lambda: S.trends(df, poleward_positive=poleward_positive, calendar=cal, metrics=ids,
+                                 min_years=need, too_short=short), csv_path)
     if tab.empty:
+        if short:
+            longest = max(n for _, n in short)
+            raise InputError(f"{csv_path}: too short for a trend: the longest series has {longest} complete "
+                             f"year(s) or season(s), at least {need} are needed; lower --min-years (3 at least) to "
+                             "fit one anyway, or use 'circtrack season' for the seasonal cycle")
         raise InputError(f"{csv_path}: no complete season or year to fit; trends need whole months of 'ok' data")
+    if short:
+        (k, n) = short[0]
+        click.echo(f"circtrack: note: {len(short)} series with fewer than {need} complete years or seasons left "
+                   f"out (e.g. {' '.join(str(x) for x in k[1:])}: {n}); lower --min-years to include them",
+                   err=True)
     _emit([(target, S.table_to_csv(tab))])
 
 
@@ -199,9 +221,14 @@ def season(csv_path, output, base, anomalies, metrics, calendar):
 
 @click.command()
 @click.argument("csv_path", metavar="CSV", required=False)
-@click.option("-o", "--output", required=True, help="Figure file: .png, .pdf or .svg.")
+@click.option("-o", "--output", required=True,
+              help="Figure file: .png, .pdf or .svg. One page per metric family: a multi-page PDF, or "
+                   "OUT-FAMILY.png/.svg per page when there are several.")
 @click.option("--metrics", default=None, metavar="ID,...", help="Comma-separated metric ids (default: all).")
-@click.option("--poleward-positive", is_flag=True, help="Flip SH latitude metrics so that poleward is positive.")
+@click.option("--poleward-positive/--degrees-north", default=True,
+              help="Latitudes poleward-positive, NH and SH on one axis (default), or in degrees_north with "
+                   "NH and SH on separate axes.")
+@_min_years_opt
 @_calendar_opt
 @click.option("--section", "section", default=None, metavar="DATAFILE",
               help="Instead of a CSV: the latitude-pressure cross-section of one time step of this data file "
@@ -212,10 +239,13 @@ def season(csv_path, output, base, anomalies, metrics, calendar):
 @click.option("-c", "--config", "config", default=None, help="With --section: TOML config, as for 'track'.")
 @click.option("--var", "variables", multiple=True, metavar="ROLE=NAME", help="With --section: as for 'track'.")
 @guarded
-def plot(csv_path, output, metrics, poleward_positive, calendar, section, time, log_pressure, config, variables):
-    """Time series with OLS trend and 95 % band, and the monthly seasonal cycle, per metric; or, with
-    --section DATAFILE, the latitude-pressure cross-section of one time step with the detected positions."""
+def plot(csv_path, output, metrics, poleward_positive, min_years, calendar, section, time, log_pressure, config,
+         variables):
+    """Time series with OLS trend and 95 % band, and the monthly seasonal cycle, per metric, one page per
+    metric family; or, with --section DATAFILE, the latitude-pressure cross-section of one time step with
+    the detected positions."""
     from circtrack import plots
+    from circtrack import stats as S
 
     if csv_path and section:
         raise UsageError(f"give either a CSV ({csv_path}) or --section DATAFILE ({section}), not both")
@@ -225,8 +255,11 @@ def plot(csv_path, output, metrics, poleward_positive, calendar, section, time, 
     if ext not in plots.FORMATS:
         raise UsageError(f"-o {output}: unknown figure format; end the name with .png, .pdf or .svg")
     if section:
-        used = [n for n, v in (("--metrics", metrics), ("--poleward-positive", poleward_positive),
+        used = [n for n, v in (("--metrics", metrics), ("--min-years", min_years),
                                ("--calendar", calendar)) if v]
+        src = click.get_current_context().get_parameter_source("poleward_positive")
+        if src is not None and src.name == "COMMANDLINE":
+            used.append("--poleward-positive/--degrees-north")
         if used:
             raise UsageError(f"{', '.join(used)}: for the time-series plot of a CSV, not for --section")
         _section(section, output, time, log_pressure, config, variables)
@@ -239,7 +272,11 @@ def plot(csv_path, output, metrics, poleward_positive, calendar, section, time, 
     df = _load(csv_path)
     ids = _metric_ids(metrics, df, csv_path)
     cal = _calendar(csv_path, df, calendar)
-    _wrap(lambda: plots.save(df, output, metrics=ids, calendar=cal, poleward_positive=poleward_positive), csv_path)
+    need = min_years or S.MIN_TREND_YEARS
+    written = _wrap(lambda: plots.save(df, output, metrics=ids, calendar=cal, poleward_positive=poleward_positive,
+                                       min_years=need), csv_path)
+    if len(written) > 1:
+        click.echo(f"circtrack: wrote {len(written)} pages: {', '.join(written)}", err=True)
 
 
 def _section(path, output, time, log_pressure, config, variables):

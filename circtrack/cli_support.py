@@ -29,6 +29,52 @@ def _fail(message, code):
     sys.exit(code)
 
 
+# exit status when the reader of standard output goes away (``circtrack metrics | head -1``): the
+# shell's status for a process ended by SIGPIPE, 128 + 13, as 'cat' or 'yes' give; nothing on stderr
+BROKEN_PIPE_EXIT = 141
+
+# optional packages and the 'pip install' that adds each (import name -> what to install)
+INSTALL_HINTS = {
+    "zarr": "pip install zarr",
+    "cfgrib": "pip install 'circtrack[grib]'",
+    "eccodes": "pip install 'circtrack[grib]'",
+    "gribapi": "pip install 'circtrack[grib]'",
+    "dask_jobqueue": "pip install 'circtrack[cluster]'",
+    "h5netcdf": "pip install h5netcdf",
+    "netCDF4": "pip install netCDF4",
+    "matplotlib": "pip install matplotlib",
+    "scipy": "pip install scipy",
+    "distributed": "pip install distributed",
+}
+
+
+def _broken_pipe():
+    """The reader of stdout has gone: end quietly. Point stdout at /dev/null so that Python's own
+    flush at exit does not report the broken pipe again."""
+    import os
+
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError, AttributeError):
+        pass
+    sys.exit(BROKEN_PIPE_EXIT)
+
+
+def _missing_package(e):
+    """One line for a package that is not installed, naming the 'pip install' that adds it."""
+    name = (getattr(e, "name", None) or "").split(".")[0]
+    text = str(e).splitlines()[0] if str(e) else ""
+    if not name:
+        for known in INSTALL_HINTS:
+            if known in text:
+                name = known
+                break
+    if name not in INSTALL_HINTS:
+        return None
+    return f"this needs the package '{name}', which is not installed; install it with: {INSTALL_HINTS[name]}"
+
+
 def _one_line_notes(quiet):
     """Library warnings (numpy, cftime, matplotlib, ...) as one ``circtrack: note:`` line each, once;
     none at all with ``--quiet``. Call inside ``warnings.catch_warnings()``."""
@@ -67,8 +113,17 @@ def guarded(fn):
             _fail(str(e), e.exit_code)
         except KeyboardInterrupt:
             _fail("interrupted; the previous output is untouched", 130)
+        except BrokenPipeError:
+            _broken_pipe()
         except (click.exceptions.Exit, click.ClickException, SystemExit):
             raise
+        except ImportError as e:
+            if debug:
+                traceback.print_exc()
+            hint = _missing_package(e)
+            if hint is None:
+                raise
+            _fail(hint, 1)
         except Exception as e:  # pragma: no cover - the safety net
             if debug:
                 traceback.print_exc()
@@ -162,8 +217,19 @@ class OneLineGroup(click.Group):
             _fail(f"{e.format_message()} (see '{where} --help')", 2)
         except click.exceptions.Abort:
             _fail("interrupted; the previous output is untouched", 130)
+        except BrokenPipeError:
+            _broken_pipe()
         except click.ClickException as e:      # e.g. a file argument click could not open
             _fail(e.format_message(), e.exit_code)
+        except SystemExit as e:
+            # click's own broken-pipe exit: status 1 with stdout wrapped so that it stays quiet
+            if e.code == 1 and type(sys.stdout).__name__.endswith("PacifyFlushWrapper"):
+                _broken_pipe()
+            raise
+        try:
+            sys.stdout.flush()             # a closed pipe shows here when the output was small
+        except BrokenPipeError:
+            _broken_pipe()
         sys.exit(rv if isinstance(rv, int) else 0)
 
 

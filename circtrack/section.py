@@ -11,6 +11,7 @@ and psi from ``metrics.cells.streamfunction`` (``kernels.vertical.mass_streamfun
 from __future__ import annotations
 
 import os
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -108,6 +109,11 @@ def section_data(path, cfg, time=None, overrides=None, label=None):
     # the zonal means behind them, ua and va on every level, first member when there are several
     zm = engine.Run(paths, cfg, metric_ids=METRIC_IDS, overrides=overrides, label=label,
                     only_times={iso}, all_levels=("ua", "va")).zonal_means()
+    for role, what in (("ua", "eastward wind"), ("va", "northward wind")):
+        n = np.size(zm["plev"].get(role, []))
+        if n < 2:
+            raise InputError(f"{path}: the section needs the {what} ({role}) on at least two pressure levels; "
+                             f"the file has {n}; draw it from a file with the whole column")
     mean = {r: a.reshape((-1,) + a.shape[-2:])[:1] for r, a in zm["mean"].items()}
     cov = {r: a.reshape((-1,) + a.shape[-2:])[:1] for r, a in zm["coverage"].items()}
     fields = Fields(lat=zm["lat"], plev=zm["plev"], mean=mean, coverage=cov)
@@ -131,75 +137,133 @@ def _levels(vmax, n=10):
     return lv if lv.size >= 3 else np.linspace(-1, 1, 5)
 
 
+def _nice_below(x):
+    """The largest number of the 1-2-5 series not above ``x`` (x > 0)."""
+    e = 10.0 ** np.floor(np.log10(x))
+    return max(m * e for m in (1.0, 2.0, 5.0) if m * e <= x * (1 + 1e-9))
+
+
+def psi_levels(pmax):
+    """Streamfunction contour levels (positive; the picture uses them with both signs).
+
+    Linear steps of a round size (about a quarter of the strongest cell) for the strong cells, and
+    below the first step the 1-2-5 series down to about 1/40 of the strongest cell, so that a
+    Ferrel cell or a summer Hadley cell a tenth as strong as the winter Hadley cell still gets
+    two or three contours (with linear levels alone it would get none or one)."""
+    if not np.isfinite(pmax) or pmax <= 0:
+        return np.array([])
+    step = _nice_below(pmax / 4.0)
+    strong = np.arange(step, pmax * (1 + 1e-9), step)
+    weak, v = [], _nice_below(step / 2.0)
+    while v >= pmax / 40.0:
+        weak.append(v)
+        v = _nice_below(v * 0.99)
+    return np.array(sorted(weak) + list(strong))
+
+
+def _draw_psi(ax, sec):
+    """psi contours: the levels of :func:`psi_levels` with both signs (dashed negative), and the
+    psi = 0 contour, where the cells meet (the Hadley edge is its crossing of the edge level)."""
+    psi = sec.psi / PSI_UNIT
+    pmax = np.nanmax(np.abs(psi)) if np.isfinite(psi).any() else 0.0
+    if pmax <= 0:
+        return
+    pos = psi_levels(pmax)
+    levels = np.concatenate([-pos[::-1], pos])
+    cs = ax.contour(sec.lat, sec.plev_psi, psi, levels=levels, colors="k", linewidths=0.9)
+    cs.set_linestyles(["solid" if v > 0 else "dashed" for v in cs.levels])
+    ax.clabel(cs, fmt="%g", fontsize=8, inline=True)
+    # psi is zero by construction at the top (and, balanced, at the bottom) of the column: rounding
+    # noise there would draw a broken line along the frame, so it is set to an exact 0 there
+    quiet = np.abs(psi) <= 1e-6 * pmax
+    quiet[1:-1] = False
+    ax.contour(sec.lat, sec.plev_psi, np.where(quiet, 0.0, psi), levels=[0.0], colors=["#444444"],
+               linewidths=2.2)
+
+
+def _draw_positions(ax, sec):
+    """Markers exactly at the engine's rows; returns the legend text per metric."""
+    from circtrack.plots import OKABE_ITO
+
+    found = {m: [] for m in METRIC_IDS}
+    for hemi in ("NH", "SH"):
+        e = sec.value("hadley_edge_lat", hemi)
+        if np.isfinite(e):
+            ax.axvline(e, color=OKABE_ITO[2], lw=2.2, ls=(0, (6, 3)), zorder=4)
+            ax.plot([e], [sec.edge_level_hpa], "o", color=OKABE_ITO[2], ms=9, mec="k", zorder=5)
+        s = sec.value("subtropical_jet_lat", hemi)
+        if np.isfinite(s):
+            ax.plot([s], [sec.upper_level_hpa], "*", color=OKABE_ITO[4], ms=18, mec="k", zorder=5)
+        j = sec.value("eddy_jet_lat", hemi)
+        if np.isfinite(j):
+            ax.plot([j], [sec.lower_level_hpa], "D", color=OKABE_ITO[3], ms=10, mec="k", zorder=5)
+        for m in METRIC_IDS:
+            v, flag = sec.rows.get((m, hemi), (float("nan"), "missing"))
+            found[m].append(f"{hemi} {v:.1f}\u00b0" if np.isfinite(v) else f"{hemi} none ({flag})")
+    return found
+
+
+def _legend(fig, sec, found):
+    from matplotlib.lines import Line2D
+
+    from circtrack.plots import OKABE_ITO
+
+    up, low = sec.upper_level_hpa, sec.lower_level_hpa
+    handles = [
+        Line2D([], [], color="k", lw=0.9, label="mass streamfunction > 0 (clockwise), labels in 1e10 kg s-1"),
+        Line2D([], [], color="k", lw=0.9, ls="dashed", label="mass streamfunction < 0, labels in 1e10 kg s-1"),
+        Line2D([], [], color="#444444", lw=2.2, label="mass streamfunction = 0 (where the cells meet)"),
+        Line2D([], [], color=OKABE_ITO[2], lw=2.2, ls=(0, (6, 3)), marker="o", mec="k",
+               label=f"Hadley cell edge, zero at {sec.edge_level_hpa:g} hPa: {', '.join(found['hadley_edge_lat'])}"),
+        Line2D([], [], color=OKABE_ITO[4], ls="", marker="*", ms=14, mec="k",
+               label=f"subtropical jet, max of [u]{up:g} - [u]{low:g}: {', '.join(found['subtropical_jet_lat'])}"),
+        Line2D([], [], color=OKABE_ITO[3], ls="", marker="D", ms=8, mec="k",
+               label=f"eddy-driven jet, max of [u]{low:g}: {', '.join(found['eddy_jet_lat'])}"),
+    ]
+    # 'outside' with the constrained layout: the legend gets its own band inside the figure, below
+    # the axes, in every mode (linear or logarithmic pressure)
+    fig.legend(handles=handles, loc="outside lower center", ncol=2, frameon=False)
+
+
+def _pressure_axis(ax, sec, log_pressure):
+    top = min(sec.plev_u.min(), sec.plev_psi.min())
+    bottom = max(sec.plev_u.max(), sec.plev_psi.max())
+    if log_pressure:
+        ax.set_yscale("log")
+        ticks = [t for t in (1000, 850, 700, 500, 300, 200, 100, 50, 20, 10, 5, 2, 1) if top <= t <= bottom]
+        ax.set_yticks(ticks)
+        ax.set_yticklabels([f"{t:g}" for t in ticks])
+        ax.minorticks_off()
+    ax.set_ylim(bottom, top)                 # pressure increases downward
+    ax.set_ylabel("pressure (hPa)")
+
+
 def figure(sec, log_pressure=False):
     """The matplotlib Figure of a :class:`Section` (pressure axis downward, hPa)."""
     import matplotlib.pyplot as plt
 
-    from circtrack.plots import OKABE_ITO, STYLE
+    from circtrack.plots import STYLE
 
-    style = {**STYLE, "font.size": 12, "axes.titlesize": 13, "axes.labelsize": 12, "legend.fontsize": 10,
+    style = {**STYLE, "font.size": 11, "axes.titlesize": 11, "axes.labelsize": 11, "legend.fontsize": 9,
              "axes.grid": False}
-    with plt.rc_context(style):
-        fig, ax = plt.subplots(figsize=(10, 6.2))
+    with plt.rc_context(style), warnings.catch_warnings(), np.errstate(all="ignore"):
+        warnings.simplefilter("ignore")
+        fig, ax = plt.subplots(figsize=(10, 6.8), layout="constrained")
         umax = np.nanmax(np.abs(sec.u)) if np.isfinite(sec.u).any() else 1.0
         ulev = _levels(max(umax, 1.0), 12)
         cf = ax.contourf(sec.lat, sec.plev_u, sec.u, levels=ulev, cmap="RdBu_r", extend="both")
         cb = fig.colorbar(cf, ax=ax, pad=0.02)
         cb.set_label("zonal-mean zonal wind [u] (m s-1)")
-        psi = sec.psi / PSI_UNIT
-        pmax = np.nanmax(np.abs(psi)) if np.isfinite(psi).any() else 0.0
-        if pmax > 0:
-            plev = _levels(pmax, 12)
-            plev = plev[plev != 0]
-            cs = ax.contour(sec.lat, sec.plev_psi, psi, levels=plev, colors="k", linewidths=1.0)
-            cs.set_linestyles(["solid" if v > 0 else "dashed" for v in cs.levels])
-            ax.clabel(cs, fmt="%g", fontsize=9, inline=True)
-        found = {m: [] for m in METRIC_IDS}
-        for hemi in ("NH", "SH"):
-            e = sec.value("hadley_edge_lat", hemi)
-            if np.isfinite(e):
-                ax.axvline(e, color=OKABE_ITO[2], lw=2.2, ls=(0, (6, 3)), zorder=4)
-                ax.plot([e], [sec.edge_level_hpa], "o", color=OKABE_ITO[2], ms=9, mec="k", zorder=5)
-            s = sec.value("subtropical_jet_lat", hemi)
-            if np.isfinite(s):
-                ax.plot([s], [sec.upper_level_hpa], "*", color=OKABE_ITO[4], ms=18, mec="k", zorder=5)
-            j = sec.value("eddy_jet_lat", hemi)
-            if np.isfinite(j):
-                ax.plot([j], [sec.lower_level_hpa], "D", color=OKABE_ITO[3], ms=10, mec="k", zorder=5)
-            for m in METRIC_IDS:
-                v, flag = sec.rows.get((m, hemi), (float("nan"), "missing"))
-                found[m].append(f"{hemi} {v:.1f}°" if np.isfinite(v) else f"{hemi} none ({flag})")
-        from matplotlib.lines import Line2D
-        handles = [
-            Line2D([], [], color="k", lw=1.0, label="mass streamfunction > 0, labels in 1e10 kg s-1"),
-            Line2D([], [], color="k", lw=1.0, ls="dashed", label="mass streamfunction < 0, labels in 1e10 kg s-1"),
-            Line2D([], [], color=OKABE_ITO[2], lw=2.2, ls=(0, (6, 3)), marker="o", mec="k",
-                   label=f"Hadley cell edge, zero at {sec.edge_level_hpa:g} hPa: {', '.join(found['hadley_edge_lat'])}"),
-            Line2D([], [], color=OKABE_ITO[4], ls="", marker="*", ms=14, mec="k",
-                   label=f"subtropical jet ({sec.upper_level_hpa:g} hPa): {', '.join(found['subtropical_jet_lat'])}"),
-            Line2D([], [], color=OKABE_ITO[3], ls="", marker="D", ms=8, mec="k",
-                   label=f"eddy-driven jet ({sec.lower_level_hpa:g} hPa): {', '.join(found['eddy_jet_lat'])}"),
-        ]
-        ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(0.0, -0.12), ncol=2, frameon=False)
-        if log_pressure:
-            ax.set_yscale("log")
-            ticks = [t for t in (1000, 850, 700, 500, 300, 200, 100, 50, 20, 10) if
-                     min(sec.plev_u.min(), sec.plev_psi.min()) <= t <= max(sec.plev_u.max(), sec.plev_psi.max())]
-            ax.set_yticks(ticks)
-            ax.set_yticklabels([f"{t:g}" for t in ticks])
-            ax.minorticks_off()
-        top = min(sec.plev_u.min(), sec.plev_psi.min())
-        bottom = max(sec.plev_u.max(), sec.plev_psi.max())
-        ax.set_ylim(bottom, top)                 # pressure increases downward
+        _draw_psi(ax, sec)
+        _legend(fig, sec, _draw_positions(ax, sec))
+        _pressure_axis(ax, sec, log_pressure)
         ax.set_xlim(sec.lat.min(), sec.lat.max())
         ax.set_xlabel("latitude (degrees_north)")
-        ax.set_ylabel("pressure (hPa)")
         who = f"{sec.source}" + (f", {sec.member}" if sec.member else "")
         files = sec.files or [sec.path]
         names = (" + ".join(os.path.basename(f) for f in files) if len(files) <= 3
                  else f"{os.path.basename(sec.path.rstrip('/'))} ({len(files)} files)")
         ax.set_title(f"{names}   {sec.time}   source: {who}", loc="left")
-        fig.tight_layout()
     return fig
 
 

@@ -52,6 +52,11 @@ SEASON_OF_MONTH = {12: "DJF", 1: "DJF", 2: "DJF", 3: "MAM", 4: "MAM", 5: "MAM",
                    6: "JJA", 7: "JJA", 8: "JJA", 9: "SON", 10: "SON", 11: "SON"}
 METHODS = ("ols_ar1", "theil_sen")
 _TIME_RE = re.compile(r"^\s*(-?\d+)-(\d{1,2})-(\d{1,2})")
+_HOUR_RE = re.compile(r"^\s*-?\d+-\d{1,2}-\d{1,2}[T ](\d{1,2})(?::(\d{1,2}))?(?::(\d{1,2}(?:\.\d*)?))?")
+# fewest annual or seasonal means a trend is fitted to: with 3 the OLS slope exists (and, with no
+# autocorrelation, its interval); 'circtrack trend' and 'plot' ask for MIN_TREND_YEARS by default
+FEWEST_FOR_SLOPE = 3
+MIN_TREND_YEARS = 10
 
 
 class StatsInputError(ValueError):
@@ -88,8 +93,16 @@ def parse_times(times):
     return y, m, d
 
 
+def parse_hours(times):
+    """Hour of the day (0 <= h < 24, with minutes and seconds as fractions) from ISO 8601 text;
+    0 for dates without a time of day."""
+    s = pd.Series(np.asarray(times, dtype=str))
+    parts = s.str.extract(_HOUR_RE).astype(float).fillna(0.0)
+    return (parts[0] + parts[1] / 60.0 + parts[2] / 3600.0).to_numpy()
+
+
 def clean(df):
-    """Rows with flag 'ok' and a finite value; value as float, plus year/month/day columns."""
+    """Rows with flag 'ok' and a finite value; value as float, plus year/month/day/hour columns."""
     missing = [c for c in REQUIRED if c not in df.columns]
     if missing:
         raise StatsInputError(f"missing column(s) {', '.join(missing)}")
@@ -97,9 +110,11 @@ def clean(df):
     out["value"] = pd.to_numeric(out["value"], errors="coerce").astype(float)
     out = out[np.isfinite(out["value"].to_numpy())]
     if out.empty:
-        return out.assign(year=pd.Series(dtype=int), month=pd.Series(dtype=int), day=pd.Series(dtype=int))
+        return out.assign(year=pd.Series(dtype=int), month=pd.Series(dtype=int), day=pd.Series(dtype=int),
+                          hour=pd.Series(dtype=float))
     y, m, d = parse_times(out["time"])
     out["year"], out["month"], out["day"] = y, m, d
+    out["hour"] = parse_hours(out["time"])
     return out.reset_index(drop=True)
 
 
@@ -113,12 +128,47 @@ def infer_calendar(times):
 
 # ----------------------------------------------------------------------------- calendar time
 
-@lru_cache(maxsize=None)
-def _month_mid(year, month, calendar):
+def cf_date(year, month, day, calendar, hour=0.0):
+    """A ``cftime.datetime`` (year 0 allowed: climatologies count from it; cftime's note that CF does
+    not define year 0 in some calendars is not shown)."""
+    import warnings
+
     import cftime
 
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        base = cftime.datetime(int(year), int(month), int(day), calendar=calendar, has_year_zero=True)
+    if hour:
+        import datetime
+
+        base = base + datetime.timedelta(hours=float(hour))
+    return base
+
+
+@lru_cache(maxsize=None)
+def year_start_length(year, calendar):
+    """1 January of ``year`` (a cftime date) and the length of that year in days, in ``calendar``."""
+    y0, y1 = cf_date(year, 1, 1, calendar), cf_date(year + 1, 1, 1, calendar)
+    return y0, (y1 - y0).total_seconds() / 86400.0
+
+
+def decimal_time(years, months, days, hours, calendar="standard"):
+    """Decimal year of each time step (day and hour of the day counted) in ``calendar``."""
+    out = np.empty(len(years), float)
+    cache = {}
+    for i, key in enumerate(zip(years, months, days, hours)):
+        if key not in cache:
+            y, m, d, h = key
+            y0, length = year_start_length(int(y), calendar)
+            cache[key] = int(y) + (cf_date(y, m, d, calendar, h) - y0).total_seconds() / 86400.0 / length
+        out[i] = cache[key]
+    return out
+
+
+@lru_cache(maxsize=None)
+def _month_mid(year, month, calendar):
     def dt(y, mo):
-        return cftime.datetime(y, mo, 1, calendar=calendar)
+        return cf_date(y, mo, 1, calendar)
 
     start = dt(year, month)
     nxt = dt(year + (month == 12), month % 12 + 1)
@@ -249,19 +299,25 @@ def theil_sen(t, y, alpha=0.05):
 def poleward_flip(df):
     """Flip SH latitude metrics (units degrees_north) so that poleward is positive."""
     out = df.copy()
-    sel = (out["hemisphere"] == "SH") & (out["units"] == "degrees_north")
+    lat = out["units"] == "degrees_north"
+    sel = (out["hemisphere"] == "SH") & lat
     out.loc[sel, "value"] = -out.loc[sel, "value"]
-    # every hemisphere's latitudes now count poleward from the equator
-    out.loc[out["units"] == "degrees_north", "units"] = "degrees_poleward"
+    # every hemisphere's latitudes now count poleward from the equator; a global latitude (the
+    # boundary between the two Hadley cells) keeps its sign and its units
+    out.loc[lat & out["hemisphere"].isin(["NH", "SH"]), "units"] = "degrees_poleward"
     return out
 
 
-def trends(df, poleward_positive=False, calendar="standard", metrics=None):
+def trends(df, poleward_positive=False, calendar="standard", metrics=None, min_years=FEWEST_FOR_SLOPE,
+           too_short=None):
     """Per key and season: OLS-AR(1) and Theil-Sen/Mann-Kendall trends per decade (tidy table).
 
     ``df`` is the raw CSV table (strings are fine). Slopes and intervals are in the metric's
-    units per decade.
+    units per decade. A series (key and season) with fewer than ``min_years`` annual or seasonal
+    means gets no rows (never below 3, where no slope exists); when ``too_short`` is a list, each
+    such series is appended to it as ``(key tuple, n)``.
     """
+    min_years = max(int(min_years), FEWEST_FOR_SLOPE)
     data = clean(df)
     keys, extras = key_columns(df)
     if metrics:
@@ -275,6 +331,10 @@ def trends(df, poleward_positive=False, calendar="standard", metrics=None):
     for k, g in sea.groupby([*out_keys, "season"], sort=False, dropna=False):
         g = g.sort_values("t")
         t, y = g["t"].to_numpy(), g["value"].to_numpy()
+        if len(t) < min_years:
+            if too_short is not None:
+                too_short.append((k, len(t)))
+            continue
         units = g["units"].iloc[0]
         for method, fit in (("ols_ar1", ols_ar1(t, y)), ("theil_sen", theil_sen(t, y))):
             rows.append([*k, method, 10 * fit["slope"], 10 * fit["ci_low"], 10 * fit["ci_high"],

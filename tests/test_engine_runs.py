@@ -186,7 +186,9 @@ def test_progress_lines_in_logs_and_bar_on_terminals(monkeypatch):
     for done in range(10, 101, 10):
         p.step(done, 100)
     lines = log.getvalue().splitlines()
-    assert [ln.split(" (")[1].split(")")[0] for ln in lines] == ["25 %", "50 %", "75 %"]
+    # a line when a quarter is passed, with the share actually done (issue 16: the quarter's label
+    # used to be printed, e.g. "25 %" at 30/100 and "75 %" at 240/240; the last quarter had no line)
+    assert [ln.split(" (")[1].split(")")[0] for ln in lines] == ["30 %", "50 %", "80 %", "100 %"]
 
     class Tty(io.StringIO):
         def isatty(self):

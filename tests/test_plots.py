@@ -101,7 +101,8 @@ def test_360_day_csv_via_cli(tmp_path):
     pd.DataFrame(rows, columns=COLS).to_csv(p, index=False)
     r = run("trend", p)
     assert r.exit_code == 0, r.output
-    tab = pd.read_csv(__import__("io").StringIO(r.output))
+    # stdout only: the note that the 9 complete DJF seasons are too few (issue 16) goes to stderr
+    tab = pd.read_csv(__import__("io").StringIO(r.stdout))
     ols = tab[(tab.season == "annual") & (tab.method == "ols_ar1")]
     assert ols.slope_per_decade.iloc[0] == pytest.approx(0.5, rel=1e-6)
 
@@ -157,8 +158,13 @@ def test_end_to_end_from_track(tmp_path):
     r = run("track", nc, "-o", csv, "-q", "--metrics", "eddy_jet_lat,eddy_jet_speed")
     assert r.exit_code == 0, r.output
     out = tmp_path / "t.csv"
+    # three years are below the default --min-years (10): refused with one line, exit 1 (issue 16)
     r = run("trend", csv, "-o", out)
+    assert r.exit_code == 1 and "too short for a trend" in r.output and not out.exists()
+    r = run("trend", csv, "-o", out, "--min-years", "3")
     assert r.exit_code == 0, r.output
     tab = pd.read_csv(out)
-    assert set(tab.season) == {"annual", "DJF", "MAM", "JJA", "SON"}
-    assert (tab[tab.season == "annual"].n == 3).all() and (tab[tab.season == "DJF"].n == 2).all()
+    # the two complete DJF seasons are too few for a slope: left out (they used to be all-NaN rows, issue 16)
+    assert set(tab.season) == {"annual", "MAM", "JJA", "SON"}
+    assert (tab[tab.season == "annual"].n == 3).all() and np.isfinite(tab.slope_per_decade).all()
+    assert "DJF" in r.stderr and "fewer than 3" in r.stderr

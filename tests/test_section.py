@@ -188,3 +188,99 @@ def test_one_variable_per_file_and_members(tmp_path):
     k500 = int(np.flatnonzero(sec.plev_psi == 500)[0])
     j = int(np.searchsorted(LAT, 33.0))
     assert sec.psi[k500, j - 1] > 0 > sec.psi[k500, j + 1]     # the drawn psi is that member's too
+
+
+# ---------------------------------------------------------------- issue 16: contours, legend, markers, odd files
+
+@pytest.mark.parametrize("pmax", [0.37, 1.0, 3.7, 12.0, 20.0, 150.0])
+def test_psi_levels_show_a_cell_a_tenth_as_strong(pmax):
+    lv = SEC.psi_levels(pmax)
+    assert np.all(np.diff(lv) > 0) and lv.max() <= pmax * (1 + 1e-9) and lv.min() > 0
+    # a Ferrel or summer Hadley cell of 10 % of the strongest cell crosses at least two contours
+    assert np.count_nonzero(lv <= 0.1 * pmax) >= 2
+    assert lv.size <= 14                                          # still readable
+
+
+@pytest.mark.parametrize("log_pressure", [False, True])
+def test_zero_contour_weak_cells_and_legend_inside(moving_nc, log_pressure):
+    import matplotlib.pyplot as plt
+    from matplotlib.contour import ContourSet
+
+    sec = SEC.section_data(moving_nc, C.load(None), time=TIMES[0])
+    fig = SEC.figure(sec, log_pressure=log_pressure)
+    try:
+        ax = fig.axes[0]
+        sets = [c for c in ax.get_children() if isinstance(c, ContourSet)]
+        psi_sets = [c for c in sets if c is not sets[0]]            # the first one is the [u] shading
+        assert any(list(c.levels) == [0.0] for c in psi_sets)       # psi = 0 drawn
+        # the synthetic Ferrel cells (a few percent of the Hadley cell) get contours of their own
+        levels = np.concatenate([c.levels for c in psi_sets if list(c.levels) != [0.0]])
+        k500 = int(np.flatnonzero(sec.plev_psi == 500)[0])
+        ferrel = (LAT > ZEROS[0, 3]) & (LAT < ZEROS[0, 4])
+        strength = np.abs(sec.psi[k500, ferrel]).max() / SEC.PSI_UNIT
+        assert strength < 0.2 * np.abs(sec.psi).max() / SEC.PSI_UNIT
+        assert np.count_nonzero((levels < 0) & (levels >= -strength)) >= 2
+        # the legend is inside the figure, whatever the axis
+        fig.canvas.draw()
+        box = fig.legends[0].get_window_extent()
+        page = fig.bbox
+        assert box.x0 >= page.x0 - 1 and box.y0 >= page.y0 - 1 and box.x1 <= page.x1 + 1 and box.y1 <= page.y1 + 1
+        assert "mass streamfunction = 0" in [t.get_text() for t in fig.legends[0].get_texts()][2]
+    finally:
+        plt.close(fig)
+
+
+def test_markers_at_the_engine_rows_also_off_the_upper_level_maximum(tmp_path):
+    """A subtropical jet weaker than the eddy-driven jet at 200 hPa: the [u] maximum there is the
+    eddy-driven jet (a secondary maximum for the subtropical jet's definition); the star must sit
+    where the engine finds the subtropical jet (largest [u]200 - [u]850), not on that maximum."""
+    import matplotlib.pyplot as plt
+
+    from tests.conftest import make_dataset, write
+
+    path = write(make_dataset(1, stj=(25.0, -27.0), stj_speed=(8.0, 9.0), edj=(50.0, -52.0), edj_speed=(25.0, 28.0)),
+                 tmp_path / "double.nc")
+    sec = SEC.section_data(path, C.load(None))
+    table, _ = engine_rows(path, metric_ids=SEC.METRIC_IDS)
+    fig = SEC.figure(sec)
+    try:
+        for marker, metric in (("*", "subtropical_jet_lat"), ("D", "eddy_jet_lat"), ("o", "hadley_edge_lat")):
+            engine = sorted(table[(sec.time, h, metric)][0] for h in ("NH", "SH"))
+            assert _markers(fig, marker) == engine
+        k200 = int(np.flatnonzero(sec.plev_u == 200)[0])
+        nh = LAT > 0
+        u200_max = LAT[nh][np.argmax(sec.u[k200, nh])]
+        assert u200_max == pytest.approx(50.0, abs=1.5)              # the [u]200 maximum is the eddy-driven jet
+        assert sec.value("subtropical_jet_lat", "NH") == pytest.approx(25.0, abs=0.5)
+    finally:
+        plt.close(fig)
+
+
+def test_one_level_and_no_v_files_give_one_line(tmp_path):
+    from tests.conftest import make_dataset, write
+
+    ds = make_dataset(1)
+    cases = {"one_level.nc": ds.isel(plev=[5]), "one_level_2d.nc": ds.isel(plev=5),
+             "no_v.nc": ds[["ua"]]}
+    for name, d in cases.items():
+        path = write(d, tmp_path / name)
+        r = invoke("plot", "--section", path, "-o", tmp_path / "s.png")
+        _one_error(r, 1, name)
+        assert "unexpected" not in r.output and "Traceback" not in r.output
+    assert not (tmp_path / "s.png").exists()
+
+
+def test_two_level_guard_in_the_section_itself(moving_nc, monkeypatch):
+    """Should the engine hand over a single level (a file it reads as one level), the section says so."""
+    from circtrack import engine
+
+    real = engine.Run.zonal_means
+
+    def one_level(self):
+        zm = real(self)
+        zm["plev"] = {**zm["plev"], "va": zm["plev"]["va"][:1]}
+        return zm
+
+    monkeypatch.setattr(engine.Run, "zonal_means", one_level)
+    with pytest.raises(SEC.InputError, match="at least two pressure levels"):
+        SEC.section_data(moving_nc, C.load(None))

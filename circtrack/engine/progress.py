@@ -9,9 +9,11 @@ import time as _time
 class Progress:
     """A bar on a terminal, a few plain lines in logs, nothing with --quiet."""
 
-    def __init__(self, quiet=False, stream=None):
+    def __init__(self, quiet=False, stream=None, describe_inputs=True):
         self.stream = stream or sys.stderr
         self.quiet = quiet
+        # False: the caller (update) says itself which files it reads, in its own terms
+        self.describe_inputs = describe_inputs
         self.tty = hasattr(self.stream, "isatty") and self.stream.isatty()
         self.t0 = _time.time()
         self.next_quarter = 1
@@ -30,12 +32,15 @@ class Progress:
             if done >= total:
                 print(file=self.stream)
             return
-        # logs (cron, batch jobs): one plain line per quarter of the record, none for short runs
+        # logs (cron, batch jobs): a plain line when a quarter of the record is passed (at most one
+        # per step, with the share actually done), none for short runs
         elapsed = _time.time() - self.t0
-        while total and done * 4 >= self.next_quarter * total and self.next_quarter < 4:
-            if elapsed >= 2.0:
-                self.line(f"{done}/{total} time steps ({25 * self.next_quarter} %) after {elapsed:.0f} s")
+        crossed = False
+        while total and done * 4 >= self.next_quarter * total and self.next_quarter <= 4:
+            crossed = True
             self.next_quarter += 1
+        if crossed and elapsed >= 2.0:
+            self.line(f"{done}/{total} time steps ({100 * done // total} %) after {elapsed:.0f} s")
 
     def done(self, rows):
         self.line(f"{rows} rows in {(_time.time() - self.t0):.1f} s")

@@ -55,6 +55,7 @@ _OPEN_MAX = 2             # open files per thread of a worker
 # attribute read), and HDF5 serialises inside a process anyway: threads of one process open, read
 # and close under this lock and only reduce in parallel
 _NC_LOCK = threading.RLock()
+NC_LOCK = _NC_LOCK        # for code writing netCDF in this process while a batch is read (zonal-means)
 
 
 def _my_open():

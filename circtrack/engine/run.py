@@ -6,7 +6,8 @@
 
 :func:`track` runs the members of an ensemble given as one file per member one after another
 and merges their rows (``member`` key column). :class:`Run` is one run: constructing it plans
-(reads no data); :meth:`Run.execute` computes; :meth:`Run.zonal_means` gives the reduced fields.
+(reads no data); :meth:`Run.execute` computes; :meth:`Run.zonal_batches` streams the reduced fields
+batch by batch (`circtrack zonal-means`) and :meth:`Run.zonal_means` gathers them for a few time steps.
 """
 
 from __future__ import annotations
@@ -98,7 +99,8 @@ class Run:
             plan.roles[role] = None
         with profile.timed(STAGES, "open and detect every file"):
             infos, skipped = P.prepare_inputs(files, plan, cfg, overrides, policy)
-        progress.line(f"{len(infos)} file(s), metrics: {', '.join(plan.metric_ids)}")
+        if getattr(progress, "describe_inputs", True):
+            progress.line(f"{len(infos)} file(s), metrics: {', '.join(plan.metric_ids)}")
         with profile.timed(STAGES, "plan (time axis, tasks)"):
             axis = P.time_axis(infos, cfg, only_times, time_step_days)
             layout = P.task_layout(infos, cfg, axis["times_all"].size)
@@ -115,6 +117,28 @@ class Run:
             raise AttributeError(name)
         return getattr(record, name)
 
+    def zonal_batches(self):
+        """Yield ``(t0, t1, stats)`` batch by batch: ``stats[role]`` of shape ``(t1 - t0, *extra, [L], J,
+        S, 2)``, the mean of valid longitudes and their share per sector (full circle first), read and
+        reduced exactly as :meth:`execute` does. One batch is held at a time (memory bounded by the
+        batch); progress is reported per batch."""
+        rp = self.record
+        runner = Runner(self.cfg, len(rp.needed_chunks()))
+        reader = BatchReader(rp, runner)
+        try:
+            for bi, reduced in reader.in_order(ahead=1):
+                t0, t1 = rp.batches[bi]
+                yield t0, t1, reduced[bi]["stats"]
+                self.progress.step(t1, rp.times.size)
+        except BaseException:
+            runner.close(interrupted=True)
+            reader.join(timeout=30)
+            close_cached()
+            raise
+        reader.join()
+        runner.close()
+        close_cached()
+
     def zonal_means(self):
         """The full-circle zonal statistics the families see, for the run's time steps.
 
@@ -124,13 +148,7 @@ class Run:
         Meant for a few time steps (``only_times``); it holds them all in memory.
         """
         rp = self.record
-        runner = Runner(self.cfg, len(rp.needed_chunks()))
-        try:
-            reader = BatchReader(rp, runner)
-            parts = [reader.reduce(bi)["stats"] for bi in range(len(rp.batches))]
-        finally:
-            runner.close()
-            close_cached()
+        parts = [stats for _, _, stats in self.zonal_batches()]
         roles = list(rp.plan.roles)
         stats = {r: np.concatenate([p[r] for p in parts], axis=0) if parts else None for r in roles}
         return {"lat": np.sort(rp.infos[0].detected.lat),

@@ -77,6 +77,7 @@ class Update:
     base_prov: dict = field(default_factory=dict)
     processed: list = field(default_factory=list)
     left_out: list = field(default_factory=list)   # default metrics left out for want of a variable
+    read: set = field(default_factory=set)          # every file the engine read (new ones and partners)
 
     @property
     def old_files(self):
@@ -118,9 +119,8 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
         G.refuse_changed_inputs(stamps, u.cfg)
         write_atomically(u.output, text, prov, new_state)
         if not quiet:
-            u.echo(f"circtrack: updated {u.output}: {len(u.processed)} file(s) processed, "
-                   f"{len(u.ab) - len(u.processed)} kept, {len(u.removed)} removed, {len(u.blocks)} time steps",
-                   err=True)
+            u.echo(f"circtrack: updated {u.output}: {_files_summary(u)}; {len(u.read)} file(s) read, "
+                   f"{len(u.need)} of {len(u.blocks)} time steps computed", err=True)
         from circtrack import summary
         summary.report(summary.of_csv(text, u.left_out), u.echo, fail_on_empty)   # also with --quiet
         return new_state
@@ -196,8 +196,8 @@ def diff_inputs(u, files):
     u.files = list(files)
     u.ab = [input_key(p) for p in u.files]
     u.shown = dict(zip(u.ab, u.files))
-    u.records = {a: file_record(a, u.cfg) for a in u.ab}
     old_files, state = u.old_files, u.state
+    u.records = {a: file_record(a, u.cfg, old_files.get(a)) for a in u.ab}
     u.unchanged = [a for a in u.ab if _same_file(old_files.get(a), u.records[a])]
     u.fresh = [a for a in u.ab if a not in u.unchanged]
     u.removed = [a for a in old_files if a not in u.records]
@@ -224,7 +224,8 @@ def read_new_files(u):
     plan = engine.Plan.make(u.ids, u.cfg, u.all_secs)
     u.roles = plan.roles
     old_files = u.old_files
-    u.entries = {a: dict(old_files[a]) for a in u.unchanged}
+    # unchanged files keep their entry; a new mtime (same bytes) is recorded so it is not hashed again
+    u.entries = {a: {**old_files[a], **u.records[a]} for a in u.unchanged}
     u.calendar = (u.state or {}).get("provenance", {}).get("calendar")
     for a in u.fresh:
         partial = False
@@ -285,7 +286,7 @@ def recompute(u):
     when the files the run skipped changed the record's time step."""
     from circtrack.engine.progress import Progress
 
-    prog = Progress(quiet=u.quiet)
+    prog = Progress(quiet=u.quiet, describe_inputs=False)     # the files are described here, in update's terms
     for _attempt in range(2):
         if not u.need:
             break
@@ -318,12 +319,20 @@ def run_engine(u, full, prog):
         ref = u.entries[kept[0]]["times"]
         run_set |= {a for a in kept if u.entries[a]["times"] == ref}
     run_files = [a for a in u.ab if a in run_set]
+    u.read |= set(run_files)
+    prog.line(f"{_files_summary(u)}; reading {len(run_files)} file(s) for {len(u.need)} time step(s)")
     with scheduler_context(u.workers, u.scheduler, u.cfg):
         outcome = engine.track([u.shown[a] for a in run_files], u.cfg, metric_ids=u.ids, label=u.source,
                                sectors=u.secs, overrides=u.overrides_cli, progress=prog, on_bad_file=u.policy,
                                only_times=None if full else u.need,
                                time_step_days=None if full else u.step_days)
     return run_files, outcome
+
+
+def _files_summary(u):
+    """The inputs in the terms both the progress line and the summary use."""
+    return (f"{len(u.fresh)} new or changed file(s), {len(u.unchanged)} unchanged, "
+            f"{len(u.removed)} removed")
 
 
 def merge(u, run_files, outcome):
