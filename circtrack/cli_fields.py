@@ -7,7 +7,7 @@ import sys
 
 import click
 
-from circtrack.cli_support import guarded, parse_vars
+from circtrack.cli_support import apply_storage, apply_units, guarded, parse_vars, storage_options
 from circtrack.errors import UsageError
 
 
@@ -17,6 +17,8 @@ from circtrack.errors import UsageError
 @click.option("-c", "--config", "config", default=None, help="TOML file overriding configs/default.toml.")
 @click.option("--var", "variables", multiple=True, metavar="ROLE=NAME",
               help="Use variable NAME for ROLE (ua va ta zg hus ps uas vas psl pr evspsbl rlut), as for 'track'.")
+@click.option("--units", "units", multiple=True, metavar="ROLE=UNITS", help="As for 'track'.")
+@click.option("--level", "levels", multiple=True, metavar="NAME=HPA", help="As for 'track'.")
 @click.option("--label", default=None, help="Recorded as the file's 'source' attribute.")
 @click.option("--sector", "sectors", multiple=True, metavar="NAME=LON0:LON1",
               help="Also the means over this longitude band (a 'sector' dimension, 'zonal' first).")
@@ -28,9 +30,10 @@ from circtrack.errors import UsageError
               help="Start a local dask.distributed cluster of N worker processes, as for 'track'.")
 @click.option("--scheduler", default=None, metavar="ADDRESS", help="Use a running dask.distributed scheduler.")
 @click.option("-q", "--quiet", is_flag=True, help="No progress output.")
+@storage_options
 @guarded
-def zonal_means(paths, output, config, variables, label, sectors, on_bad_file, repeated_times, workers, scheduler,
-                quiet):
+def zonal_means(paths, output, config, variables, units, levels, label, sectors, on_bad_file, repeated_times, workers,
+                scheduler, quiet, anonymous, cache_dir):
     """Zonal means of the variables found in PATH..., their longitude coverage and the mass streamfunction
     (as 'track' computes it) as CF netCDF: (time, [member,] [sector,] plev, lat)."""
     from circtrack import config as C
@@ -43,7 +46,7 @@ def zonal_means(paths, output, config, variables, label, sectors, on_bad_file, r
         raise UsageError(f"-o {output}: give a netCDF file name ending in .nc")
     if workers and scheduler:
         raise UsageError("--workers and --scheduler exclude each other; give one")
-    cfg = C.load(config)
+    cfg = apply_storage(apply_units(C.load(config), units, levels), anonymous, cache_dir)
     if repeated_times:
         cfg["run"]["repeated_times"] = repeated_times
     if on_bad_file:
@@ -55,7 +58,7 @@ def zonal_means(paths, output, config, variables, label, sectors, on_bad_file, r
 
     named = [p for p in paths if p != "-"]              # paths on stdin are read once, by the run
     if named:
-        G.refuse_outputs_among_inputs([(f"-o {output}", output)], expand(named))
+        G.refuse_outputs_among_inputs([(f"-o {output}", output)], expand(named, cfg=cfg))
     prog = engine.Progress(quiet=quiet)
     with scheduler_context(workers, scheduler, cfg):
         run = zonal_fields.write(list(paths), output, cfg, overrides=parse_vars(variables), sectors=secs,
