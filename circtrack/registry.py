@@ -79,7 +79,7 @@ def register_family(name, *, inputs, levels, sectors=False, metrics, optional_in
 
 def _load():
     # importing the metric modules fills the registry
-    from circtrack.metrics import cells, jets, momentum, surface, transport, tropopause, waves  # noqa: F401
+    from circtrack.metrics import cells, cores, jets, momentum, surface, transport, tropopause, waves  # noqa: F401
 
 
 def catalogue() -> dict[str, Metric]:
