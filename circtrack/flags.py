@@ -14,7 +14,7 @@ FLAGS = {
     "time_step_unknown": "a single time step, so it is unknown whether transient eddies are resolved; eddy and energy flux value kept",
     "cells_out_of_order": "the southern cell's minimum lies north of the northern cell's maximum; boundary is NaN",
     "column_too_short": "the pressure window holds fewer than 3 levels, or the column at the maximum fewer than 3 valid levels, so a jet core cannot be located in the vertical; value is NaN",
-    "core_next_to_missing": "the wind maximum of a jet-core window has a missing neighbour (below ground or a gap), so the true maximum may lie there; value is NaN",
+    "extremum_next_to_missing_data": "a neighbour of the extremum is missing, so the true extremum may lie in the gap; value is NaN",
     "weak_jet_core": "the wind maximum in a jet-core window is weaker than cores.min_core_speed_m_s: no jet; value is NaN",
     "merged_jets": "the subtropical and eddy-driven windows give the same core (one merged jet): reported once, as the subtropical core ('ok;merged_jets'), the eddy-driven core is NaN",
     "provisional_data": "appended after ';' (e.g. 'ok;provisional_data'): the time step comes from a provisional data stream (expver other than 1) because the final one has no data there",

@@ -28,7 +28,7 @@ from circtrack.kernels.extrema import parabola_vertex
 
 # reason codes of find_core (index into REASONS); the flag names are those of circtrack.flags
 OK, AT_EDGE, TOO_LITTLE, COLUMN_SHORT, NEXT_TO_MISSING, WEAK, MERGED = range(7)
-REASONS = ("ok", "extremum_at_window_edge", "too_little_data", "column_too_short", "core_next_to_missing",
+REASONS = ("ok", "extremum_at_window_edge", "too_little_data", "column_too_short", "extremum_next_to_missing_data",
            "weak_jet_core", "merged_jets")
 JETS = ("subtropical", "eddy")
 QUANTITIES = ("lat", "pressure", "speed", "reason")   # per core, in that order
@@ -73,7 +73,7 @@ def find_core(u, x, p, lat_window, p_window, *, min_fraction, min_speed=-np.inf)
         (``column_too_short``); too few finite points (``too_little_data``); no interior local maximum
         and the window's maximum on its edge, so the true one may lie outside (``extremum_at_window_edge``);
         the window's maximum inside but next to a missing point, or in a column with fewer than three
-        valid levels (``core_next_to_missing`` / ``column_too_short``); the core weaker than ``min_speed``.
+        valid levels (``extremum_next_to_missing_data`` / ``column_too_short``); the core weaker than ``min_speed``.
     """
     u = np.asarray(u, dtype=float)
     x = np.asarray(x, dtype=float)

@@ -146,3 +146,35 @@ def compute_geography(fields, cfg):
         out[mid].flag[:] = np.where(enough, "ok", "too_little_data")
     return out
 
+
+
+# --------------------------------------------------------------------------- per-longitude table
+TABLE_NAME = "jet_cores_by_longitude"
+TABLE_METRICS = [f"{jet}_jet_core_{q}" for jet in K.JETS for q in ("lat", "pressure", "speed")]
+
+
+def by_longitude_reducer(slabs, plev, lon, masks, cfg, lat):
+    """In-task, only for ``track --cores-by-longitude``: the cores themselves per longitude (band),
+    ``(T, *extra, 2, 2, 4, B, S)`` (hemisphere x jet x lat/pressure/speed/reason x band); the
+    full circle only (the sectors' entries are NaN). A few numbers per longitude, never the fields."""
+    u = slabs["ua"]
+    cores, _, _ = K.cores_by_longitude(u, lat, plev["ua"], lon, windows(cfg),
+                                       band_width=cfg["cores"]["longitude_band_deg"], **_search(cfg))
+    out = np.full(cores.shape + (len(masks),), np.nan)
+    out[..., 0] = cores
+    return out
+
+
+def band_centres(lon, cfg):
+    """Longitudes (degrees east, 0..360) of the table's bands for a grid's longitudes."""
+    return K.longitude_bands(lon, cfg["cores"]["longitude_band_deg"])[1]
+
+
+def table_rows(cores):
+    """``cores (N, 2, 2, 4, B)`` -> ``{metric: (value (N, 2, B), flag (N, 2, B))}`` for the table."""
+    out = {}
+    for q, jet in enumerate(K.JETS):
+        flags = reason_flags(cores[:, :, q, 3, :])
+        for i, what in enumerate(("lat", "pressure", "speed")):
+            out[f"{jet}_jet_core_{what}"] = (cores[:, :, q, i, :], flags)
+    return out
