@@ -2,7 +2,8 @@
 
 A core is the strongest local maximum of ``u`` inside a latitude-pressure window: a grid point
 strictly inside the window (not on its first or last latitude or level) that is at least as large as
-its eight neighbours. It is refined separately in latitude (the 3-point parabola through the
+its eight neighbours and larger than the points above and below it (a column whose wind does not
+change with height has no core). It is refined separately in latitude (the 3-point parabola through the
 neighbours at the core's level, on the actual latitudes) and in log-pressure (the 3-point parabola
 through the levels above and below at the core's latitude, in ln p). The speed is the value of the
 separable quadratic through those five points,
@@ -99,7 +100,8 @@ def find_core(u, x, p, lat_window, p_window, *, min_fraction, min_speed=-np.inf)
                 continue
             nb = w[..., 1 + dk:nl - 1 + dk, 1 + dj:nj - 1 + dj]
             with np.errstate(invalid="ignore"):
-                cand &= np.isfinite(nb) & (c >= nb)
+                # strictly above the levels over and under it: a column constant with height has no core
+                cand &= np.isfinite(nb) & ((c > nb) if dj == 0 else (c >= nb))
     score = np.where(cand, c, -np.inf).reshape(lead + (-1,))
     best = np.argmax(score, axis=-1)
     has = np.isfinite(np.take_along_axis(score, best[..., None], -1)[..., 0])
