@@ -3,7 +3,7 @@
 The public API is small and never imports click:
 
 - :data:`__version__`
-- :func:`circtrack.registry.catalogue` -- the metric catalogue
+- :func:`circtrack.metrics.catalogue` -- the metric catalogue
 - :func:`circtrack.engine.track` -- run metrics over files, yielding a tidy table
 """
 

@@ -7,7 +7,7 @@ import sys
 import click
 
 from circtrack import __version__
-from circtrack.cli_support import OneLineGroup, _fail, guarded, parse_vars  # noqa: F401
+from circtrack.cli_support import OneLineGroup, _fail, guarded, parse_vars, track_options  # noqa: F401
 from circtrack.errors import UsageError
 
 
@@ -16,31 +16,6 @@ from circtrack.errors import UsageError
 @click.option("--debug", is_flag=True, help="Show tracebacks on errors.")
 def main(debug):
     """circtrack: time series of general-circulation indices from gridded climate data."""
-
-
-def _track_options(fn):
-    opts = [
-        click.argument("paths", nargs=-1, required=True),
-        click.option("-o", "--output", "output", required=True, help="Output CSV path, or - for stdout."),
-        click.option("-c", "--config", "config", default=None, help="TOML file overriding configs/default.toml."),
-        click.option("--var", "variables", multiple=True, metavar="ROLE=NAME",
-                     help="Use variable NAME for ROLE (ua va ta zg hus ps uas vas psl pr evspsbl rlut)."),
-        click.option("--metrics", "metrics", default=None, metavar="ID,...", help="Comma-separated metric ids (default: all)."),
-        click.option("--label", default=None, help="Value of the 'source' column (default: derived from the inputs)."),
-        click.option("--sector", "sectors", multiple=True, metavar="NAME=LON0:LON1",
-                     help="Also compute sector metrics for this longitude band."),
-        click.option("--workers", type=click.IntRange(1), default=None, help="Start a local dask.distributed cluster of N worker processes."),
-        click.option("--scheduler", default=None, metavar="ADDRESS", help="Use a running dask.distributed scheduler."),
-        click.option("--on-bad-file", type=click.Choice(["stop", "skip"]), default=None,
-                     help="Stop at an unreadable input (default) or skip it and report it."),
-        click.option("--repeated-times", type=click.Choice(["refuse", "keep-first", "keep-last"]), default=None,
-                     help="A time step found in two files with different values: refuse (default) or keep the "
-                          "one from the file given first/last."),
-        click.option("-q", "--quiet", is_flag=True, help="No progress output."),
-    ]
-    for o in reversed(opts):
-        fn = o(fn)
-    return fn
 
 
 def _run_track(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
@@ -69,7 +44,7 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
 
 
 @main.command()
-@_track_options
+@track_options
 @guarded
 def track(**kw):
     """Compute circulation indices from PATH... (files, directories, globs, or - for a list on stdin)."""
@@ -95,7 +70,8 @@ def scan(paths, config, variables):
 @guarded
 def metrics_cmd(fmt):
     """List the metric catalogue: id, inputs, units, definition, published source."""
-    from circtrack.registry import catalogue, hemispheres
+    from circtrack.metrics import catalogue
+    from circtrack.registry import hemispheres
 
     cat = catalogue()
     if fmt == "csv":

@@ -1,4 +1,5 @@
-"""What every command shares: one clear error line and exit status, ROLE=NAME parsing.
+"""What every command shares: one clear error line and exit status, ROLE=NAME parsing, and the
+options of `track` and `update`.
 
 Kept apart from circtrack.cli so command modules (findings, update) can import it while cli.py
 imports them, whichever module Python loads first (``python -m circtrack.cli`` included).
@@ -76,3 +77,29 @@ class OneLineGroup(click.Group):
         except click.ClickException as e:      # e.g. a file argument click could not open
             _fail(e.format_message(), e.exit_code)
         sys.exit(rv if isinstance(rv, int) else 0)
+
+
+def track_options(fn):
+    """The options shared by ``track`` and ``update`` (PATH..., -o, -c, --var, --metrics, ...)."""
+    opts = [
+        click.argument("paths", nargs=-1, required=True),
+        click.option("-o", "--output", "output", required=True, help="Output CSV path, or - for stdout."),
+        click.option("-c", "--config", "config", default=None, help="TOML file overriding configs/default.toml."),
+        click.option("--var", "variables", multiple=True, metavar="ROLE=NAME",
+                     help="Use variable NAME for ROLE (ua va ta zg hus ps uas vas psl pr evspsbl rlut)."),
+        click.option("--metrics", "metrics", default=None, metavar="ID,...", help="Comma-separated metric ids (default: all)."),
+        click.option("--label", default=None, help="Value of the 'source' column (default: derived from the inputs)."),
+        click.option("--sector", "sectors", multiple=True, metavar="NAME=LON0:LON1",
+                     help="Also compute sector metrics for this longitude band."),
+        click.option("--workers", type=click.IntRange(1), default=None, help="Start a local dask.distributed cluster of N worker processes."),
+        click.option("--scheduler", default=None, metavar="ADDRESS", help="Use a running dask.distributed scheduler."),
+        click.option("--on-bad-file", type=click.Choice(["stop", "skip"]), default=None,
+                     help="Stop at an unreadable input (default) or skip it and report it."),
+        click.option("--repeated-times", type=click.Choice(["refuse", "keep-first", "keep-last"]), default=None,
+                     help="A time step found in two files with different values: refuse (default) or keep the "
+                          "one from the file given first/last."),
+        click.option("-q", "--quiet", is_flag=True, help="No progress output."),
+    ]
+    for o in reversed(opts):
+        fn = o(fn)
+    return fn

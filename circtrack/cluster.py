@@ -1,7 +1,7 @@
 """Where the reading tasks run when a dask.distributed cluster is asked for.
 
 Without ``--workers``/``--scheduler`` the engine runs its own pool of forked worker processes
-(see engine._Runner). With them, a dask.distributed client is made inside the command and the
+(see engine/pool.py). With them, a dask.distributed client is made inside the command and the
 engine's tasks go to its workers:
 
 * ``--workers N`` and ``[cluster] kind = "local"`` (default): a LocalCluster of N single-threaded

@@ -3,6 +3,9 @@
 A *family* computes several metrics that share work (e.g. the streamfunction feeds the Hadley
 edge, its strength and the cell boundary). Families declare the input roles (CMIP short names)
 and the pressure levels they need, so the engine reads nothing more.
+
+This module holds the records and the decorator only and imports no metric module (they import
+it); :mod:`circtrack.metrics` imports the family modules and assembles the catalogue.
 """
 
 from __future__ import annotations
@@ -77,19 +80,14 @@ def register_family(name, *, inputs, levels, sectors=False, metrics, optional_in
     return wrap
 
 
-def _load():
-    # importing the metric modules fills the registry
-    from circtrack.metrics import cells, cores, jets, momentum, surface, transport, tropopause, waves  # noqa: F401
-
-
-def catalogue() -> dict[str, Metric]:
-    """All metrics by id, in registration order."""
-    _load()
+def registered_metrics() -> dict[str, Metric]:
+    """The metrics registered so far, by id, in registration order (the full catalogue is
+    :func:`circtrack.metrics.catalogue`, which imports every family module first)."""
     return dict(_METRICS)
 
 
-def families() -> dict[str, Family]:
-    _load()
+def registered_families() -> dict[str, Family]:
+    """The families registered so far (see :func:`circtrack.metrics.families`)."""
     return dict(_FAMILIES)
 
 

@@ -4,13 +4,13 @@ from __future__ import annotations
 
 import numpy as np
 
-from circtrack import registry
-from circtrack.engine import iso_time
+from circtrack.engine.times import iso_time
 from circtrack.errors import InputError
 from circtrack.inputs import dataset as D
 from circtrack.inputs import units as U
 from circtrack.inputs.files import expand
 from circtrack.inputs.rules import VARIABLES
+from circtrack.metrics import families
 
 
 def _grid(det):
@@ -107,7 +107,7 @@ def report(paths, cfg, overrides) -> str:
                                  f"units '{other.units.get(role, '')}')")
     lines.append("metrics:")
     missing_roles = set()
-    for fam in registry.families().values():
+    for fam in families().values():
         lacking = [r for r in fam.inputs if r not in joined]
         for m in fam.metrics:
             subs = {r: D.SURFACE_SUBSTITUTES.get(r) for r in lacking}

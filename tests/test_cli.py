@@ -8,7 +8,8 @@ from click.testing import CliRunner
 
 from circtrack.cli import main
 from circtrack.output import sidecar_path
-from circtrack.registry import catalogue, hemispheres
+from circtrack.metrics import catalogue
+from circtrack.registry import hemispheres
 
 HEADER = "source,time,hemisphere,sector,metric,value,units,flag"
 ALL_IDS = ["hadley_edge_lat", "hadley_strength", "cell_boundary_lat", "subtropical_jet_lat",

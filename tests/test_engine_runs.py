@@ -13,6 +13,7 @@ import scipy.signal
 
 from circtrack import config as C
 from circtrack import engine, synthetic
+from circtrack.errors import UsageError
 from circtrack.inputs import dataset as D
 from circtrack.lowpass import filter_valid, lanczos_weights, response
 from tests.conftest import csv_rows, make_dataset, write
@@ -171,7 +172,7 @@ def test_lowpass_refused_for_monthly_steps(tmp_path):
     p = write(make_dataset(4), tmp_path / "m.nc")
     cfg = C.load(None)
     cfg["jets"]["eddy_lowpass_days"] = 10.0
-    with pytest.raises(engine.UsageError, match="low-pass needs time steps shorter than 5 days"):
+    with pytest.raises(UsageError, match="low-pass needs time steps shorter than 5 days"):
         engine.track([p], cfg, metric_ids=["eddy_jet_lat"])
 
 
@@ -179,7 +180,7 @@ def test_progress_lines_in_logs_and_bar_on_terminals(monkeypatch):
     import io
 
     clock = iter(range(0, 1000, 5))
-    monkeypatch.setattr(engine._time, "time", lambda: float(next(clock)))
+    monkeypatch.setattr(engine.progress._time, "time", lambda: float(next(clock)))
     log = io.StringIO()
     p = engine.Progress(stream=log)
     for done in range(10, 101, 10):
@@ -215,7 +216,7 @@ def _pid_after_a_nap(job):
 def test_process_pool_runs_tasks_in_parallel_workers():
     cfg = C.load(None)
     cfg["run"]["processes"] = 2
-    runner = engine._Runner(cfg, 4)
+    runner = engine.Runner(cfg, 4)
     try:
         pids = runner.run(_pid_after_a_nap, [1, 2, 3, 4])
     finally:

@@ -240,3 +240,18 @@ def test_sigkill_at_each_write_phase(tmp_path, monkeypatch, phase):
     assert st["csv_sha256"] == U._sha_text(out.read_text()) and len(st["files"]) == 3
     r = invoke("update", *files, "-o", out, "--label", "L")
     assert r.exit_code == 0 and "nothing new" in r.output
+
+
+def test_skipped_file_line_does_not_advise_the_option_already_given(tmp_path):
+    """update --on-bad-file skip says what track says of a skipped file: no advice to pass the option."""
+    good = monthly(tmp_path, 0)
+    empty = tmp_path / "data" / "mon_99.nc"
+    empty.write_bytes(b"")
+    lines = {}
+    for cmd in ("track", "update"):
+        out = tmp_path / f"{cmd}.csv"
+        r = invoke(cmd, good, empty, "-o", out, "-q", "--label", "L", "--on-bad-file", "skip")
+        assert r.exit_code == 0, r.output
+        lines[cmd] = [ln for ln in r.stderr.splitlines() if "skipped" in ln]
+    assert lines["update"] == lines["track"] and len(lines["track"]) == 1
+    assert "mon_99.nc" in lines["update"][0] and "--on-bad-file" not in lines["update"][0]

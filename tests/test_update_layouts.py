@@ -249,15 +249,15 @@ def test_engine_computes_only_the_asked_time_steps(tmp_path, monkeypatch):
     ids = METRICS.split(",")
     full = O.sorted_lines(engine.track([a, b], cfg, metric_ids=ids, label="L"))
     read = []
-    real = engine.reduce_chunk
+    real = engine.reduce.reduce_chunk
 
     def counting(job):
         read.append((os.path.basename(job["path"]), job["t0"]))
         return real(job)
 
-    monkeypatch.setattr(engine, "reduce_chunk", counting)
+    monkeypatch.setattr(engine.reduce, "reduce_chunk", counting)
     part = engine.track([a, b], cfg, metric_ids=ids, label="L", only_times={"2000-03-15"},
-                        time_step_days=engine._time_step_days(ds["time"].values))
+                        time_step_days=engine.time_step_days(ds["time"].values))
     assert O.sorted_lines(part)[1:] == [ln for ln in full[1:] if ",2000-03-15," in ln]
     assert sorted(read) == [("m_a.nc", 2), ("m_b.nc", 0)]        # March from both files, nothing else
     assert part.provenance["repeated_time_steps_dropped"] == [{"time": "2000-03-15", "path": b, "kept_from": a}]

@@ -1,0 +1,74 @@
+"""Detect features: reduced fields of one batch -> every family's results per sector, as columns.
+
+In: one reduced batch (gather.py), its low-pass filtered means (lowpass.py) and the run's plan.
+Out: appended to :attr:`Detector.cols`, per metric and hemisphere, the time index, the index of
+the extra key (e.g. ensemble member along a dimension), hemisphere, sector, metric, value and
+flag. The families see a :class:`~circtrack.metrics.common.Fields` per sector: N samples = time
+steps x extra keys, the zonal mean and the share of valid longitudes of every role, the
+reducers' extras, the record's time step and the filtered means.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from circtrack.metrics.common import Fields
+from circtrack.registry import hemispheres
+
+COLUMNS = ("t", "e", "hemisphere", "sector", "metric", "value", "flag")
+
+
+class Detector:
+    """Runs the plan's families on batch after batch and collects their results as columns."""
+
+    def __init__(self, rp):
+        self.rp, self.cfg = rp, rp.cfg
+        info0 = rp.infos[0]
+        self.extra = info0.detected.extra_dims
+        self.extra_names = list(self.extra)
+        self.n_extra = int(np.prod([len(v) for v in self.extra.values()])) if self.extra else 1
+        self.sector_names = ["zonal"] + [s[0] for s in rp.sectors]
+        self.lat = np.sort(info0.detected.lat)
+        self.plev = {r: info0.plev[r] for r in rp.plan.roles}
+        self.wanted = set(rp.plan.metric_ids)
+        self.cols = {k: [] for k in COLUMNS}
+
+    def fields(self, reduced, lowpassed, s, bt):
+        """The :class:`Fields` of sector ``s`` for a batch of ``bt`` time steps."""
+        n_lead = 1 + len(self.extra_names)
+
+        def per_sample(a):
+            return a.reshape((bt * self.n_extra,) + a.shape[n_lead:])
+
+        mean = {r: per_sample(a[..., s, 0]) for r, a in reduced["stats"].items()}
+        cov = {r: per_sample(a[..., s, 1]) for r, a in reduced["stats"].items()}
+        ext = {n: per_sample(a[..., s]) for n, a in reduced["extras"].items()}
+        low = {r: per_sample(a[..., s]) for r, a in lowpassed.items()}
+        return Fields(lat=self.lat, plev=self.plev, mean=mean, coverage=cov, sector=self.sector_names[s],
+                      extras=ext, info={"time_step_days": self.rp.step_days, "lowpass": low})
+
+    def batch(self, reduced, lowpassed, t0, t1):
+        """Every family on every sector of the batch of time steps ``t0:t1``."""
+        bt = t1 - t0
+        tidx = np.repeat(np.arange(t0, t1), self.n_extra)
+        eidx = np.tile(np.arange(self.n_extra), bt)
+        for s, sname in enumerate(self.sector_names):
+            fields = self.fields(reduced, lowpassed, s, bt)
+            for fam in self.rp.plan.families:
+                if sname != "zonal" and not fam.sectors:
+                    continue
+                results = fam.compute(fields, self.cfg)
+                for m in fam.metrics:
+                    if m.id in self.wanted:
+                        self._append(tidx, eidx, sname, m, results[m.id])
+
+    def _append(self, tidx, eidx, sname, m, res):
+        cols = self.cols
+        for h, hemi in enumerate(hemispheres(m)):
+            cols["t"].append(tidx)
+            cols["e"].append(eidx)
+            cols["hemisphere"].append(np.full(tidx.size, hemi, dtype=object))
+            cols["sector"].append(np.full(tidx.size, sname, dtype=object))
+            cols["metric"].append(np.full(tidx.size, m.id, dtype=object))
+            cols["value"].append(res.value[:, h])
+            cols["flag"].append(res.flag[:, h].astype(object))

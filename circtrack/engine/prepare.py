@@ -1,0 +1,115 @@
+"""Open and detect: one input file -> a detected description with a reader per role.
+
+In: a file path, the chosen roles and levels (:class:`~circtrack.engine.plan.Plan`), the config and
+``--var`` overrides. Out: a :class:`FileInfo` (the detection of coordinates and variables and a
+picklable :class:`~circtrack.inputs.dataset.RoleReader` per role), or :class:`MissingRoles` when
+the file lacks some roles (plan.py joins it with the files holding them). Each file is opened once
+and closed again; the rules of opening and detection themselves live in circtrack/inputs/.
+Also here: which metrics a run can make without ``--metrics`` (:func:`available_metrics`).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+from circtrack.engine.times import iso_time
+from circtrack.errors import InputError
+from circtrack.inputs import dataset as D
+from circtrack.inputs.files import same_period_siblings
+from circtrack.inputs.rules import VARIABLES
+from circtrack.metrics import families
+
+
+@dataclass
+class FileInfo:
+    path: str
+    detected: D.Detected
+    readers: dict = field(default_factory=dict)    # role -> RoleReader
+    plev: dict = field(default_factory=dict)       # role -> hPa levels
+
+
+def prepare_file(path, plan, cfg, overrides):
+    """Open once for coordinates and readers, then close: workers reopen by path."""
+    ds = D.open_dataset(path, cfg)
+    try:
+        return _prepare_open(ds, path, plan, cfg, overrides)
+    finally:
+        ds.close()
+
+
+def _prepare_open(ds, path, plan, cfg, overrides):
+    det = D.detect(ds, path, overrides)
+    D.require_axes(det)
+    info = FileInfo(path, det)
+    missing = []
+    for role, levels in plan.roles.items():
+        if role not in det.variables:
+            sub = D.lowest_level_substitute(ds, det, role, cfg)
+            if sub is not None:
+                info.readers[role], info.plev[role] = sub, None
+                continue
+            missing.append(role)
+            continue
+        reader, plev = D.standardise(ds, det, role, levels, cfg)
+        info.readers[role] = reader
+        info.plev[role] = plev
+    if missing:
+        role = missing[0]
+        hint = det.problems.get(role) or "no variable matched"
+        raise MissingRoles(f"{path}: {VARIABLES[role]['long']} ({role}) not found ({hint}); "
+                           f"add --var {role}=NAME or '{role} = \"NAME\"' under [variables] in the config "
+                           f"('circtrack scan {path}' lists the variables)", info, missing)
+    return info
+
+
+class MissingRoles(InputError):
+    """A file lacks some roles; files with the same time steps may hold them (one variable per file)."""
+
+    def __init__(self, message, info, missing):
+        super().__init__(message)
+        self.info, self.missing = info, missing
+
+
+def detect_only(path, cfg, overrides):
+    """What a file holds (coordinates, variables), opened and closed again."""
+    ds = D.open_dataset(path, cfg)
+    try:
+        return D.detect(ds, path, overrides)
+    finally:
+        ds.close()
+
+
+def available_metrics(files, cfg, overrides, policy):
+    """Without --metrics: every metric whose inputs the first readable file holds."""
+    for p in files:
+        try:
+            det = detect_only(p, cfg, overrides)
+            D.require_axes(det)
+        except InputError:
+            if policy == "skip":           # reported when the file is prepared
+                continue
+            raise
+        found = set(det.variables)
+        # one variable per file: the files named like this one but for another variable, same time steps
+        for q in same_period_siblings(p, files):
+            try:
+                qd = detect_only(q, cfg, overrides)
+            except InputError:
+                continue
+            if qd.times is not None and det.times is not None and qd.times.size == det.times.size \
+                    and all(iso_time(a) == iso_time(b) for a, b in zip(qd.times, det.times)):
+                found |= set(qd.variables)
+        # a variable named with --var or [variables] that is not there is a mistake, not a reason to
+        # quietly leave out every metric that needs it
+        for role, name in overrides.items():
+            if role in VARIABLES and role not in found:
+                raise InputError(f"{p}: variable '{name}' given for {role} (--var {role}={name} or [variables]) is not "
+                                 f"in the file; 'circtrack scan {p}' lists its variables")
+        ids = [m.id for f in families().values() if set(f.inputs) <= found for m in f.metrics]
+        if not ids:
+            roles = sorted({r for f in families().values() for r in f.inputs})
+            raise InputError(f"{p}: none of the variables the metrics need ({', '.join(roles)}) was found; "
+                             f"run 'circtrack scan {p}' and name them with --var ROLE=NAME")
+        return ids
+    raise InputError(f"{files[0]}: no readable input among {len(files)} file(s)")
+

@@ -1,0 +1,163 @@
+"""Reduce (worker side): one task -> zonal statistics and the families' reducer extras.
+
+In: a plain, picklable job dict (path, cfg, readers, t0, t1, masks, lon, lat, reducers), built by
+:meth:`circtrack.engine.plan.RunPlan.job`. Out: ``{"stats": {role: (t, *extra, [L], J, S, 2)},
+"extras": {name: (t, *extra, ..., S)}, "notes": {"time": (t,) str}}`` -- the mean of valid
+longitudes and the share of valid longitudes per sector (the full circle first), plus what each
+family's reducers return, plus per time step layout notes (e.g. ``provisional_data``).
+
+This module runs inside worker processes: it opens the file itself (through a small per-thread
+cache of open handles), reads the time steps of every role and reduces them. numpy and the input
+readers only; no pandas, no click, nothing about worker pools (see pool.py).
+"""
+
+from __future__ import annotations
+
+import collections
+import os
+import threading
+import time as _time
+
+import numpy as np
+
+from circtrack.inputs import dataset as D
+
+def _zonal_block(block, masks):
+    """Zonal statistics of one chunk ``(..., lon)`` -> ``(..., S, 2)``: mean of valid, valid share.
+
+    One pass for clean data: the plain mean is taken first, and only rows whose mean is not finite
+    (a NaN or inf among their longitudes, e.g. below ground) are redone counting valid points.
+    The first mask is the full circle (``None``).
+    """
+    out = np.empty(block.shape[:-1] + (len(masks), 2), dtype=np.float64)
+    with np.errstate(invalid="ignore", over="ignore"):
+        for s, m in enumerate(masks):
+            part = block if m is None else block[..., m]
+            mean = part.mean(axis=-1, dtype=np.float64)
+            out[..., s, 0] = mean
+            out[..., s, 1] = 1.0
+            bad = ~np.isfinite(mean)
+            if bad.any():
+                rows = part[bad]                              # (n_bad, lon): only the doubtful rows
+                f = np.isfinite(rows)
+                cnt = f.sum(axis=-1)
+                tot = np.where(f, rows, 0.0).sum(axis=-1, dtype=np.float64)
+                out[..., s, 0][bad] = np.where(cnt > 0, tot / np.maximum(cnt, 1), np.nan)
+                out[..., s, 1][bad] = cnt / part.shape[-1]
+    return out
+
+
+_OPEN = {}                # (process id, thread id) -> {path: open dataset}, least recently used first
+_OPEN_LOCK = threading.Lock()
+_OPEN_MAX = 2             # open files per thread of a worker
+# netCDF-C/HDF5 are not thread-safe (xarray locks its data reads, but not every open, close or
+# attribute read), and HDF5 serialises inside a process anyway: threads of one process open, read
+# and close under this lock and only reduce in parallel
+_NC_LOCK = threading.RLock()
+
+
+def _my_open():
+    key = (os.getpid(), threading.get_ident())
+    with _OPEN_LOCK:
+        return _OPEN.setdefault(key, collections.OrderedDict())
+
+
+def _open_cached(path, cfg, keep=_OPEN_MAX, raw=False):
+    """This thread's open handle of ``path`` (threads never share a netCDF handle); ``keep``: how
+    many files the current task needs at once (one per file when variables come in several files).
+    ``raw``: a plain netCDF4.Dataset for the fast read path (None where it does not apply)."""
+    mine = _my_open()
+    key = (path, raw)
+    if key in mine:
+        ds = mine.pop(key)
+    else:
+        with _NC_LOCK:
+            ds = D.open_raw(path, cfg) if raw else D.open_dataset(path, cfg)
+            while len(mine) >= 2 * max(_OPEN_MAX, keep):
+                old = mine.popitem(last=False)[1]
+                if old is not None:
+                    old.close()
+    mine[key] = ds
+    return ds
+
+
+def _forget(path):
+    mine = _my_open()
+    for key in [(path, False), (path, True)]:
+        ds = mine.pop(key, None)
+        if ds is not None:
+            try:
+                ds.close()
+            except Exception:  # noqa: BLE001 - a damaged file may fail to close; it is dropped anyway
+                pass
+
+
+def close_cached():
+    """Close every handle this process holds (all threads; call when no task is running)."""
+    with _OPEN_LOCK:
+        groups = [g for k, g in _OPEN.items() if k[0] == os.getpid()]
+        for k in [k for k in _OPEN if k[0] == os.getpid()]:
+            del _OPEN[k]
+    with _NC_LOCK:
+        for g in groups:
+            while g:
+                ds = g.popitem()[1]
+                if ds is not None:
+                    ds.close()
+
+
+def _wants_lat(fn):
+    """A reducer may take the ascending latitudes as a keyword ``lat`` (e.g. to locate a maximum)."""
+    import inspect
+    return "lat" in inspect.signature(fn).parameters
+
+
+def reduce_chunk(job):
+    """One task: read time steps ``t0:t1`` of every role of one file and reduce them.
+
+    ``job`` is a plain dict (path, cfg, readers, t0, t1, masks, reducers) so it pickles cheaply.
+    Returns ``{"stats": {role: (t, *extra, [L], J, S, 2)}, "extras": {name: (t, *extra, ..., S)},
+    "notes": {"time": (t,) str}}``.
+    """
+    slabs, notes = {}, []
+    # variables may come from several files with the same time steps (one variable per file)
+    paths = list(dict.fromkeys([job["path"]] + [r.path for r in job["readers"].values()]))
+    with _NC_LOCK:     # one netCDF/HDF5 call at a time per process; the reductions below run freely
+        opened = {}
+        try:
+            for role, reader in job["readers"].items():
+                raw = _open_cached(reader.path, job["cfg"], keep=len(paths), raw=True)
+                arr = reader.read_fast(raw, job["t0"], job["t1"]) if raw is not None else None
+                if arr is not None:
+                    slabs[role] = arr
+                    notes.append(np.full(arr.shape[0], "", dtype=object))
+                    continue
+                if reader.path not in opened:
+                    opened[reader.path] = _open_cached(reader.path, job["cfg"], keep=len(paths))
+                slabs[role], note = reader.read_noted(opened[reader.path], job["t0"], job["t1"])
+                notes.append(note)
+        except Exception:
+            # a damaged file: drop the handles so a retry reopens them, and let the caller name the file
+            for p in paths:
+                _forget(p)
+            raise
+    stats = {role: _zonal_block(a, job["masks"]) for role, a in slabs.items()}
+    extras = {}
+    if job["reducers"]:
+        as64 = {r: a.astype(np.float64, copy=False) for r, a in slabs.items()}
+        plev = {r: rd.plev for r, rd in job["readers"].items()}
+        for name, fn in job["reducers"].items():
+            kw = {"lat": job["lat"]} if _wants_lat(fn) else {}     # latitudes for per-longitude features
+            extras[name] = np.asarray(fn(as64, plev, job["lon"], job["masks"], job["cfg"], **kw), dtype=np.float64)
+    # per time step layout notes (e.g. provisional_data), joined into the rows' flags
+    return {"stats": stats, "extras": extras, "notes": {"time": D.merge_notes(notes)}}
+
+
+def reduce_chunks(jobs):
+    """One task over several small chunks (e.g. one-day files), to keep the per-task cost small."""
+    pause = os.environ.get("CIRCTRACK_TASK_PAUSE_S")   # test hook: slow tasks down to interrupt them
+    if pause:
+        _time.sleep(float(pause))
+    return [reduce_chunk(j) for j in jobs]
+
+

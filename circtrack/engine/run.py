@@ -1,0 +1,155 @@
+"""Run: the stages of one ``circtrack track`` tied together; the only place that starts a worker pool.
+
+    PATH...  --locate-->  files  --prepare (open and detect)-->  FileInfo per file
+             --plan-->    RunPlan (inputs joined, time axis and repeats, tasks, batches)
+             --gather/pool/reduce-->  reduced batches  --features-->  columns  --rows-->  Outcome
+
+:func:`track` runs the members of an ensemble given as one file per member one after another
+and merges their rows (``member`` key column). :class:`Run` is one run: constructing it plans
+(reads no data); :meth:`Run.execute` computes; :meth:`Run.zonal_means` gives the reduced fields.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from circtrack.engine import plan as P
+from circtrack.engine.features import Detector
+from circtrack.engine.gather import BatchReader
+from circtrack.engine.locate import locate
+from circtrack.engine.pool import Runner
+from circtrack.engine.prepare import available_metrics
+from circtrack.engine.progress import Progress
+from circtrack.engine.reduce import close_cached
+from circtrack.engine.rows import merge_members, outcome
+from circtrack.engine.sectors import masks_per_input, merge_sectors
+from circtrack.errors import UsageError
+
+
+def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None,
+          progress=None, on_bad_file=None, stdin=None, only_times=None, time_step_days=None):
+    """Run the chosen metrics over all inputs; returns an :class:`Outcome` of tidy rows.
+
+    ``only_times`` (ISO strings) and ``time_step_days`` are for ``circtrack update``: see :class:`Run`.
+    Files of several ensemble members (one member per file, told apart by a global attribute such
+    as ``variant_label``) are run member by member and get a ``member`` key column; otherwise the
+    same time step in two members' files would be a conflicting repeat.
+    """
+    kw = dict(metric_ids=metric_ids, label=label, sectors=sectors, overrides=overrides, progress=progress,
+              on_bad_file=on_bad_file, only_times=only_times, time_step_days=time_step_days)
+    run = Run(paths, cfg, stdin=stdin, **kw)          # plans: coordinates and attributes only
+    groups = P.member_groups(run.infos)
+    if not groups:
+        return run.execute()
+    labels = sorted(groups)
+    return merge_members(labels, [Run(groups[m], cfg, **kw).execute() for m in labels], run.skipped)
+
+
+def check_label(label):
+    """``--label``: refused when it would break the CSV's ``source`` column."""
+    if label is not None and any(ch in label for ch in ',"\n\r'):
+        clean = " ".join(label.replace(",", " ").replace('"', " ").split())
+        raise UsageError(f"--label '{label}': commas, quotes and line breaks would break the CSV's 'source' "
+                         f"column; use e.g. --label '{clean}'")
+    return label
+
+
+class Run:
+    """One run, in two phases.
+
+    Constructing it *plans*: files are opened once for coordinates and closed, readers are built,
+    the time axis across files is settled and the tasks (file, time chunk) are laid out. Nothing is
+    read then. :meth:`tasks` gives the dask.delayed calls (for inspection); :meth:`execute` computes
+    them batch by batch, runs the metric families and returns the tidy :class:`Outcome`.
+
+    For ``circtrack update``: ``only_times`` (a set of ISO time strings) computes only those time
+    steps (repeats among the given files are still resolved and compared for them; other chunks are
+    never read), and ``time_step_days`` replaces the time step the eddy-flux flags see by that of
+    the whole record (of which the given files may be a part). Neither works with the low-pass filter.
+
+    ``all_levels`` (roles) reads those roles on every pressure level, whatever the metrics need; with
+    :meth:`zonal_means` this gives the fields behind a latitude-pressure cross-section.
+    """
+
+    def __init__(self, paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None,
+                 progress=None, on_bad_file=None, stdin=None, only_times=None, time_step_days=None,
+                 all_levels=()):
+        self.cfg = cfg
+        self.label = check_label(label)
+        self.progress = progress = progress or Progress(quiet=True)
+        overrides = {**cfg.get("variables", {}), **(overrides or {})}
+        sectors = merge_sectors(sectors, cfg)
+        files = locate(paths, stdin=stdin)
+        policy = on_bad_file or cfg["run"]["on_bad_file"]
+        if metric_ids is None:
+            metric_ids = available_metrics(files, cfg, overrides, policy)
+        plan = P.Plan.make(metric_ids, cfg, sectors)
+        for role in all_levels:            # e.g. the cross-section: [u] on every level, not just 200/850 hPa
+            plan.roles[role] = None
+        infos, skipped = P.prepare_inputs(files, plan, cfg, overrides, policy)
+        progress.line(f"{len(infos)} file(s), metrics: {', '.join(plan.metric_ids)}")
+        axis = P.time_axis(infos, cfg, only_times, time_step_days)
+        layout = P.task_layout(infos, cfg, axis["times_all"].size)
+        masks_of = masks_per_input(infos, sectors)
+        partial_run = only_times is not None or time_step_days is not None
+        rest = P.batches_and_lowpass(cfg, axis["times"], plan, infos, partial_run)
+        self.record = P.RunPlan(cfg=cfg, plan=plan, sectors=sectors, infos=infos, skipped=skipped,
+                                masks_of=masks_of, **axis, **layout, **rest)
+
+    def __getattr__(self, name):
+        # the plan's fields (times, infos, chunks, skipped, ...) and methods (tasks, job, describe)
+        record = self.__dict__.get("record")
+        if record is None:
+            raise AttributeError(name)
+        return getattr(record, name)
+
+    def zonal_means(self):
+        """The full-circle zonal statistics the families see, for the run's time steps.
+
+        Returns ``{"lat": (J,) ascending, "plev": {role: hPa levels or None}, "mean": {role: (T, *extra,
+        [L], J)}, "coverage": {role: same}, "times": (T,)}``: the mean of valid longitudes and the share
+        of valid longitudes, read and reduced exactly as :meth:`execute` does (same readers and tasks).
+        Meant for a few time steps (``only_times``); it holds them all in memory.
+        """
+        rp = self.record
+        runner = Runner(self.cfg, len(rp.needed_chunks()))
+        try:
+            reader = BatchReader(rp, runner)
+            parts = [reader.reduce(bi)["stats"] for bi in range(len(rp.batches))]
+        finally:
+            runner.close()
+            close_cached()
+        roles = list(rp.plan.roles)
+        stats = {r: np.concatenate([p[r] for p in parts], axis=0) if parts else None for r in roles}
+        return {"lat": np.sort(rp.infos[0].detected.lat),
+                "plev": {r: rp.infos[0].plev[r] for r in roles},
+                "mean": {r: a[..., 0, 0] for r, a in stats.items() if a is not None},
+                "coverage": {r: a[..., 0, 1] for r, a in stats.items() if a is not None},
+                "times": rp.times}
+
+    def execute(self):
+        """Read, reduce and detect batch by batch; returns the tidy :class:`~circtrack.engine.rows.Outcome`."""
+        rp = self.record
+        nt = rp.times.size
+        step_notes = np.full(nt, "", dtype=object)
+        detector = Detector(rp)
+        runner = Runner(self.cfg, len(rp.needed_chunks()))   # only_times: no worker pool for a chunk or two
+        reader = BatchReader(rp, runner)
+        try:
+            for bi, reduced in reader.in_order(ahead=2 if rp.lowpass else 1):
+                t0, t1 = rp.batches[bi]
+                step_notes[t0:t1] = reduced[bi]["notes"]
+                lowpassed = rp.lowpass.apply(reduced, bi, rp.batches) if rp.lowpass else {}
+                detector.batch(reduced[bi], lowpassed, t0, t1)
+                self.progress.step(t1, nt)
+        except BaseException:
+            runner.close(interrupted=True)       # stop the workers first, so a waiting prefetch returns
+            reader.join(timeout=30)
+            close_cached()
+            raise
+        else:
+            reader.join()
+            runner.close()
+            close_cached()
+        self.step_notes = step_notes
+        return outcome(rp, detector.cols, step_notes, self.label)

@@ -1,0 +1,176 @@
+"""The state beside OUT and its small helpers: state and lock paths, file records and checksums,
+the lock, the pause hook for kill tests, stale temp files, CSV blocks per time step, time keys.
+
+In: paths and the text of OUT. Out: plain dicts and strings; nothing here runs the engine.
+"""
+
+from __future__ import annotations
+
+import fcntl
+import glob
+import hashlib
+import json
+import math
+import os
+import sys
+import time
+
+from circtrack.errors import InputError
+
+STATE_VERSION = 2
+CHUNK = 1 << 20
+
+
+# --------------------------------------------------------------------------- small helpers
+def _base(out_path):
+    return out_path[:-4] if out_path.endswith(".csv") else out_path
+
+
+def state_path(out_path):
+    return _base(out_path) + ".state.json"
+
+
+def lock_path(out_path):
+    return _base(out_path) + ".lock"
+
+
+def checksum(path):
+    """SHA-256 of the size, the first and the last MiB (cheap; catches rewrites of the same size)."""
+    if not os.path.isfile(path):
+        return None
+    size = os.path.getsize(path)
+    h = hashlib.sha256(str(size).encode())
+    with open(path, "rb") as f:
+        h.update(f.read(CHUNK))
+        if size > CHUNK:
+            f.seek(max(CHUNK, size - CHUNK))
+            h.update(f.read(CHUNK))
+    return h.hexdigest()
+
+
+def file_record(path):
+    st = os.stat(path)
+    return {"size": st.st_size, "mtime_ns": st.st_mtime_ns, "checksum": checksum(path)}
+
+
+def _same_file(old, new):
+    return old is not None and all(old.get(k) == new[k] for k in ("size", "mtime_ns", "checksum"))
+
+
+def _sha_text(text):
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+def time_key(iso):
+    """ISO text (possibly negative year) -> tuple that sorts chronologically."""
+    neg = iso.startswith("-")
+    s = iso[1:] if neg else iso
+    date, _, clock = s.partition("T")
+    y, m, d = (int(x) for x in date.split("-"))
+    hh, mm, ss = (int(x) for x in clock.split(":")) if clock else (0, 0, 0)
+    return (-y if neg else y, m, d, hh, mm, ss)
+
+
+def params_hash(cfg, metrics, sectors, overrides):
+    blob = json.dumps({"config": cfg, "metrics": metrics, "sectors": [list(s) for s in sectors],
+                       "variables": overrides}, sort_keys=True, default=str)
+    return hashlib.sha256(blob.encode()).hexdigest()
+
+
+PAUSE_ENV = "CIRCTRACK_PAUSE_AT"
+PAUSE_PHASES = ("before-csv-rename", "before-state-write")
+
+
+def _pause_point(phase):
+    """Test hook (see the module docstring): announce the phase and sleep until killed."""
+    if os.environ.get(PAUSE_ENV) == phase:
+        print(f"circtrack: paused at {phase} (pid {os.getpid()})", file=sys.stderr, flush=True)
+        time.sleep(600)
+
+
+def _remove_stale_temps(paths):
+    """Temp files of OUT, its sidecar and state left by a killed run (called with the lock held)."""
+    from circtrack.output import temp_prefix
+
+    for p in paths:
+        p = os.path.abspath(p)
+        for tmp in glob.glob(os.path.join(glob.escape(os.path.dirname(p)), glob.escape(temp_prefix(p)) + "*.tmp")):
+            try:
+                os.unlink(tmp)
+            except FileNotFoundError:
+                pass
+
+
+def acquire_lock(out_path):
+    """Non-blocking exclusive flock on OUT.lock; the lock dies with the process (no stale locks)."""
+    lp = lock_path(out_path)
+    fd = os.open(lp, os.O_RDWR | os.O_CREAT, 0o644)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:
+        os.close(fd)
+        raise InputError(f"another update is running on {out_path}; lock file {lp} is held "
+                         "(wait for it to finish; the lock is released when that process ends)")
+    return fd
+
+
+def _load_state(path):
+    try:
+        with open(path) as f:
+            st = json.load(f)
+    except FileNotFoundError:
+        return None
+    except (OSError, ValueError):
+        return None
+    return st if isinstance(st, dict) and st.get("version") == STATE_VERSION else None
+
+
+def _group_lines(lines, source):
+    """CSV body lines -> {time: [lines]} (all rows of one time step are contiguous in the CSV)."""
+    prefix = source + ","
+    out = {}
+    for ln in lines:
+        if not ln.startswith(prefix):
+            raise InputError(f"row '{ln[:60]}' does not start with the source '{source}'; rerun with --rebuild")
+        t = ln[len(prefix):].split(",", 1)[0]
+        out.setdefault(t, []).append(ln)
+    return out
+
+
+def _record_step_days(holders, entries, calendar):
+    """The time step of the whole record in days, as engine.Run computes it from its time axis
+    (median spacing of the first steps; NaN for a single step), from the ISO times in the state."""
+    import cftime
+    import numpy as np
+
+    from circtrack.engine.times import time_step_days
+
+    ts = sorted((t for t, hs in holders.items() if any(not entries[h].get("skipped") for h in hs)), key=time_key)
+    if len(ts) > 401:
+        ts = ts[:401]
+    try:
+        objs = [cftime.datetime(*time_key(t), calendar=calendar) for t in ts]
+    except (ValueError, TypeError):
+        return None          # a calendar cftime cannot rebuild from the text: the caller recomputes everything
+    return time_step_days(np.array(objs, dtype=object))
+
+
+def _source_paths(ab, entries):
+    """The files engine.derive_source sees in a clean track: complete files in the order given, then
+    the first file of each group joined from one-variable-per-file files (same time steps)."""
+    usable = [a for a in ab if entries[a]["times"] and not entries[a].get("skipped")]
+    usable = usable or [a for a in ab if entries[a]["times"]]
+    firsts = {}
+    for a in usable:
+        if entries[a].get("partial"):
+            firsts.setdefault(tuple(entries[a]["times"]), a)
+    return [a for a in usable if not entries[a].get("partial")] + list(firsts.values())
+
+
+def _step_class(days, cfg):
+    """What the families make of the record's time step (metrics.transport.time_mean_flag): unknown
+    (a single step), longer than eddies.max_time_step_days, or not. Rows change only with this."""
+    if days is None or not math.isfinite(days):
+        return "unknown"
+    return "long" if days > cfg["eddies"]["max_time_step_days"] else "short"
+
