@@ -19,7 +19,7 @@ def main(debug):
 
 
 def _run_track(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-               repeated_times=None):
+               repeated_times=None, cores_by_longitude=None):
     from circtrack import config as C
     from circtrack import engine, output as O
     from circtrack.cluster import scheduler_context
@@ -34,17 +34,38 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
     ids = [m.strip() for m in metrics.split(",") if m.strip()] if metrics else None
     secs = [engine.parse_sector(s) for s in sectors]
     O.check_output_path(output)
+    if cores_by_longitude:
+        _check_side_file(cores_by_longitude, output)
     prog = engine.Progress(quiet=quiet)
     with scheduler_context(workers, scheduler, cfg):
         outcome = engine.track(list(paths), cfg, metric_ids=ids, label=label, sectors=secs,
-                               overrides=parse_vars(variables), progress=prog, on_bad_file=on_bad_file)
+                               overrides=parse_vars(variables), progress=prog, on_bad_file=on_bad_file,
+                               cores_by_longitude=bool(cores_by_longitude))
     O.write(outcome, output, cfg, argv=["circtrack", *sys.argv[1:]])
+    if cores_by_longitude:
+        O.write(outcome.tables["cores_by_longitude"], cores_by_longitude, cfg, argv=["circtrack", *sys.argv[1:]])
     prog.done(len(outcome.columns["metric"]))
     return outcome
 
 
+def _check_side_file(path, output):
+    """``--cores-by-longitude FILE``: a file of its own (not stdout, not OUT)."""
+    import os
+
+    from circtrack import output as O
+
+    if path == "-":
+        raise UsageError("--cores-by-longitude -: give a file name (stdout holds the main rows with -o -)")
+    if output != "-" and os.path.abspath(path) == os.path.abspath(output):
+        raise UsageError(f"--cores-by-longitude {path}: the same file as -o; give another name, e.g. cores_by_lon.csv")
+    O.check_output_path(path)
+
+
 @main.command()
 @track_options
+@click.option("--cores-by-longitude", "cores_by_longitude", default=None, metavar="FILE.csv",
+              help="Also write the jet cores at every longitude (or [cores] longitude_band_deg band) to this tidy "
+                   "CSV, with a lon key column (for maps; 'circtrack plot --cores-strip FILE.csv' draws it).")
 @guarded
 def track(**kw):
     """Compute circulation indices from PATH... (files, directories, globs, or - for a list on stdin)."""

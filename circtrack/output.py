@@ -30,7 +30,8 @@ def sorted_lines(outcome):
     n = len(cols["metric"])
     sort_keys = []
     for k in reversed(keys):
-        sort_keys.append(outcome.time_order if k == "time" else np.asarray(cols[k], dtype=str))
+        sort_keys.append(outcome.time_order if k == "time" else
+                         np.asarray(cols[k], dtype=float) if k == "lon" else np.asarray(cols[k], dtype=str))
     order = np.lexsort(sort_keys) if n else np.array([], dtype=int)
     names = list(cols)
     lines = [",".join(names)]

@@ -17,6 +17,11 @@ JETS = (("subtropical", "subtropical jet core", "o"), ("eddy", "eddy-driven jet 
 SECTION_IDS = [f"{j}_jet_core_{q}" for j, _, _ in JETS for q in ("lat", "pressure", "speed")]
 
 
+SHORT = {"extremum_at_window_edge": "edge", "merged_jets": "merged", "weak_jet_core": "weak",
+         "too_little_data": "no data", "column_too_short": "few levels",
+         "extremum_next_to_missing_data": "gap"}
+
+
 def mark_cores(ax, rows):
     """Mark the cores in ``rows`` ({(metric, hemisphere): (value, flag)}) at (latitude, pressure).
 
@@ -29,15 +34,49 @@ def mark_cores(ax, rows):
         for hemi in ("NH", "SH"):
             lat, flag = rows.get((f"{jet}_jet_core_lat", hemi), (float("nan"), "missing"))
             p = rows.get((f"{jet}_jet_core_pressure", hemi), (float("nan"), ""))[0]
-            speed = rows.get((f"{jet}_jet_core_speed", hemi), (float("nan"), ""))[0]
             if np.isfinite(lat) and np.isfinite(p):
                 ax.plot([lat], [p], marker, color="white", ms=11, mec="k", mew=1.6, zorder=6)
-                said.append(f"{hemi} {lat:.1f}°, {p:.0f} hPa, {speed:.0f} m s-1")
+                said.append(f"{hemi} {lat:.1f}°/{p:.0f} hPa")
             else:
-                said.append(f"{hemi} none ({flag})")
+                said.append(f"{hemi} none ({SHORT.get(flag, flag)})")
         handles.append(Line2D([], [], ls="", marker=marker, color="white", mec="k", mew=1.6, ms=9,
-                              label=f"{name} (max of [u]): {'; '.join(said)}"))
+                              label=f"{name.replace(' jet', '')}: {', '.join(said)}"))
     return handles
+
+
+TABLE_COLUMNS = ("source", "time", "hemisphere", "lon", "metric", "value", "units", "flag")
+
+
+def load_table(path):
+    """Read the per-longitude table written by ``track --cores-by-longitude``; one-line errors."""
+    import os
+
+    import pandas as pd
+
+    hint = "give the file written by 'circtrack track ... --cores-by-longitude FILE.csv'"
+    if not os.path.isfile(path):
+        raise InputError(f"{path}: no such file; {hint}")
+    try:
+        df = pd.read_csv(path, dtype={"time": str, "source": str, "hemisphere": str, "metric": str, "flag": str},
+                         keep_default_na=False, na_values={"value": ["NaN"]})
+    except Exception as e:            # pandas raises several types for unreadable text
+        raise InputError(f"{path}: not a readable CSV ({type(e).__name__}); {hint}")
+    missing = [c for c in TABLE_COLUMNS if c not in df.columns]
+    if missing:
+        raise InputError(f"{path}: not a per-longitude jet-core table (no column {', '.join(missing)}); {hint}")
+    try:
+        df["lon"] = df["lon"].astype(float)
+        df["value"] = df["value"].astype(float)
+    except ValueError:
+        raise InputError(f"{path}: the lon and value columns must hold numbers; {hint}")
+    return df
+
+
+def check_strip_options(strip, given):
+    """``plot --cores-strip``: the options that belong to other pictures are refused."""
+    used = [name for name, value in given.items() if value]
+    if used:
+        raise UsageError(f"{', '.join(used)}: not with --cores-strip {strip} (it takes only -o and --time)")
 
 
 def strip_data(df, time=None):

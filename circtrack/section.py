@@ -15,10 +15,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from circtrack import plots_cores
 from circtrack.errors import InputError, UsageError
 
 # the rows drawn on the section; each family is run exactly as in 'circtrack track'
-METRIC_IDS = ["hadley_edge_lat", "subtropical_jet_lat", "eddy_jet_lat"]
+METRIC_IDS = ["hadley_edge_lat", "subtropical_jet_lat", "eddy_jet_lat"] + plots_cores.SECTION_IDS
 PSI_UNIT = 1e10          # kg s-1 per contour label unit
 
 
@@ -180,6 +181,7 @@ def figure(sec, log_pressure=False):
             Line2D([], [], color=OKABE_ITO[3], ls="", marker="D", ms=8, mec="k",
                    label=f"eddy-driven jet ({sec.lower_level_hpa:g} hPa): {', '.join(found['eddy_jet_lat'])}"),
         ]
+        handles += plots_cores.mark_cores(ax, sec.rows)      # the jet cores (latitude and pressure)
         ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(0.0, -0.12), ncol=2, frameon=False)
         if log_pressure:
             ax.set_yscale("log")
