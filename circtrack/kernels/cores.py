@@ -88,20 +88,18 @@ def find_core(u, x, p, lat_window, p_window, *, min_fraction, min_speed=-np.inf)
         return Core(nan, nan.copy(), nan.copy(), none, none.copy(), np.full(lead, COLUMN_SHORT))
     if j1 - j0 < 3:
         return Core(nan, nan.copy(), nan.copy(), none, none.copy(), np.full(lead, TOO_LITTLE))
-    w = u[..., k0:k1, j0:j1]
+    w = np.ascontiguousarray(u[..., k0:k1, j0:j1])         # one copy of the window; reshapes are views
     fin = np.isfinite(w)
     frac = fin.mean(axis=(-2, -1))
     nl, nj = w.shape[-2:]
     c = w[..., 1:-1, 1:-1]
-    cand = np.isfinite(c)
-    for dk in (-1, 0, 1):
-        for dj in (-1, 0, 1):
-            if dk == 0 and dj == 0:
-                continue
-            nb = w[..., 1 + dk:nl - 1 + dk, 1 + dj:nj - 1 + dj]
-            with np.errstate(invalid="ignore"):
-                # strictly above the levels over and under it: a column constant with height has no core
-                cand &= np.isfinite(nb) & ((c > nb) if dj == 0 else (c >= nb))
+    # neighbours' maxima (NaN propagates, so a missing neighbour makes no candidate): the six to the
+    # sides (>=), and the two above and below (>, a column constant with height has no core)
+    sides = np.maximum(w[..., :, :-2], w[..., :, 2:])                   # (..., nl, nj-2)
+    sides = np.maximum(np.maximum(sides[..., :-2, :], sides[..., 1:-1, :]), sides[..., 2:, :])
+    vert = np.maximum(w[..., :-2, 1:-1], w[..., 2:, 1:-1])
+    with np.errstate(invalid="ignore"):
+        cand = (c >= sides) & (c > vert)
     score = np.where(cand, c, -np.inf).reshape(lead + (-1,))
     best = np.argmax(score, axis=-1)
     has = np.isfinite(np.take_along_axis(score, best[..., None], -1)[..., 0])
@@ -156,29 +154,32 @@ def longitude_bands(lon, width):
     """Group longitudes into bands of ``width`` degrees (0: every longitude its own band).
 
     Returns ``(band, centres)``: ``band (I,)`` the band index of each longitude and ``centres (B,)``
-    each band's centre in degrees east, 0..360. Bands start at 0 degrees east.
+    each band's centre in degrees east, 0..360. Bands start at 0 degrees east; with ``width`` 0 the
+    bands are the longitudes in the grid's order.
     """
     lam = np.mod(np.asarray(lon, float), 360.0)
     if not width or width <= 0:
-        order = np.argsort(lam, kind="stable")
-        band = np.empty(lam.size, int)
-        band[order] = np.arange(lam.size)
-        return band, lam[order]
+        return np.arange(lam.size), lam
     raw = np.floor(lam / float(width)).astype(int)
     used, band = np.unique(raw, return_inverse=True)
     return band.reshape(-1), np.minimum((used + 0.5) * float(width), 360.0)
 
 
 def band_means(a, band, nbands):
-    """Mean over longitudes of each band, ``(..., I)`` -> ``(..., B)``, of the finite values."""
+    """Mean over longitudes of each band, ``(..., I)`` -> ``(..., B)``, of the finite values.
+
+    Bands of one longitude each (``nbands == I``, from :func:`longitude_bands` with width 0) are the
+    longitudes themselves."""
     a = np.asarray(a, float)
+    band = np.asarray(band)
+    if nbands == band.size:
+        return a
+    order = np.argsort(band, kind="stable")
+    a = a[..., order]
+    starts = np.flatnonzero(np.r_[True, np.diff(band[order]) != 0])
     ok = np.isfinite(a)
-    s = np.zeros(a.shape[:-1] + (nbands,))
-    n = np.zeros_like(s)
-    for b in range(nbands):
-        sel = band == b
-        s[..., b] = np.where(ok[..., sel], a[..., sel], 0.0).sum(axis=-1)
-        n[..., b] = ok[..., sel].sum(axis=-1)
+    s = np.add.reduceat(np.where(ok, a, 0.0), starts, axis=-1)
+    n = np.add.reduceat(ok, starts, axis=-1)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(n > 0, s / n, np.nan)
 
@@ -220,6 +221,19 @@ def cores_by_longitude(u, lat, p, lon, windows, *, band_width, min_fraction, min
     of each longitude ``(I,)``.
     """
     band, centres = longitude_bands(lon, band_width)
+    # only the levels and latitudes some window holds (slices before any copy of the field)
+    p = np.asarray(p, float)
+    lat = np.asarray(lat, float)
+    plo = min(w[1][0] for w in windows.values())
+    phi = max(w[1][1] for w in windows.values())
+    ks = np.flatnonzero((p >= plo) & (p <= phi))
+    k0, k1 = (ks[0], ks[-1] + 1) if ks.size else (0, 0)
+    alat = np.abs(lat)
+    js = np.flatnonzero((alat >= min(w[0][0] for w in windows.values())) &
+                        (alat <= max(w[0][1] for w in windows.values())))
+    j0, j1 = (js[0], js[-1] + 1) if js.size else (0, 0)
+    u = np.asarray(u)[..., k0:k1, j0:j1, :]
+    p, lat = p[k0:k1], lat[j0:j1]
     ub = band_means(u, band, centres.size)                     # (..., L, J, B)
     cores = hemisphere_cores(np.moveaxis(ub, -1, -3), lat, p, windows,
                              min_fraction=min_fraction, min_speed=min_speed)   # (..., B, 2, 2, 4)
