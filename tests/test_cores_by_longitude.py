@@ -164,3 +164,30 @@ def test_section_marks_the_cores(tmp_path):
         [pytest.approx((50.0, 300.0), rel=0.03)]
     labels = [t.get_text() for t in ax.get_legend().get_texts()]
     assert any(t.startswith("eddy-driven core: NH 50.0°/") and "SH none (merged)" in t for t in labels)
+
+
+def test_members_along_a_dimension(tmp_path):
+    # two members stacked along 'realization': member 1's eddy-driven core 4 degrees further poleward
+    import cftime
+    import xarray as xr
+
+    from tests.metrics.test_cores import LAT, PLEV
+
+    u = np.stack([field(50.0), field(54.0)])[None].repeat(2, axis=0).astype("float32")   # (time, member, L, J, I)
+    t = np.array([cftime.num2date(i, "days since 2001-01-01", "noleap") for i in range(2)])
+    ds = xr.Dataset({"ua": (("time", "realization", "plev", "lat", "lon"), u,
+                            {"standard_name": "eastward_wind", "units": "m s-1"})},
+                    coords={"time": t, "realization": [1, 2], "plev": ("plev", PLEV, {"units": "hPa", "axis": "Z"}),
+                            "lat": ("lat", LAT, {"units": "degrees_north"}),
+                            "lon": ("lon", LON, {"units": "degrees_east"})})
+    path = str(tmp_path / "members.nc")
+    ds.to_netcdf(path, encoding={"time": {"units": "days since 2001-01-01", "calendar": "noleap"}})
+    out, t, df = table(path)
+    assert "realization" in t.key_columns and "realization" in out.key_columns
+    c = out.columns
+    got = {(c["realization"][i], c["hemisphere"][i]): float(c["value"][i]) for i in range(len(c["metric"]))
+           if c["metric"][i] == "eddy_jet_core_lat" and c["time"][i] == "2001-01-01"}
+    assert got[("1", "NH")] == pytest.approx(50.0, abs=0.1) and got[("2", "NH")] == pytest.approx(54.0, abs=0.1)
+    per = df[(df["metric"] == "eddy_jet_core_lat") & (df["hemisphere"] == "NH")]
+    assert per.groupby("realization")["value"].mean().to_dict() == {"1": pytest.approx(50.0, abs=0.1),
+                                                                    "2": pytest.approx(54.0, abs=0.1)}

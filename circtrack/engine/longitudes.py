@@ -69,7 +69,8 @@ class LongitudeTable:
                 out[name] = np.array([str(x) for x in np.asarray(vals)[g.ravel()]], dtype=object)[flat["e"].astype(int)]
         cat = catalogue()
         out["hemisphere"] = flat["hemisphere"]
-        out["lon"] = np.array([f"{x:g}" for x in flat["lon"].astype(float)], dtype=object)
+        out["lon"] = np.array([np.format_float_positional(round(x, 6), trim="-") for x in flat["lon"].astype(float)],
+                              dtype=object)                          # 357.1875, not 357.188
         out["metric"] = flat["metric"]
         out["value"] = flat["value"].astype(float)
         out["units"] = np.array([cat[m].units for m in flat["metric"]], dtype=object)
