@@ -13,7 +13,7 @@ FLAGS = {
     "time_mean_input": "the input's time step exceeds eddies.max_time_step_days (e.g. monthly means): the eddy and energy fluxes contain only the time-mean flow (mean circulation and stationary eddies), the transient eddies are missing; value kept",
     "time_step_unknown": "a single time step, so it is unknown whether transient eddies are resolved; eddy and energy flux value kept",
     "cells_out_of_order": "the southern cell's minimum lies north of the northern cell's maximum; boundary is NaN",
-    "column_too_short": "the pressure window holds fewer than 3 levels, or the column at the maximum fewer than 3 valid levels, so a jet core cannot be located in the vertical; value is NaN",
+    "column_too_short": "the pressure window holds fewer than 3 levels, or the column at the wind maximum fewer than 3 valid levels or the same wind just above or below it, so a jet core cannot be located in the vertical; value is NaN",
     "extremum_next_to_missing_data": "a neighbour of the extremum is missing, so the true extremum may lie in the gap; value is NaN",
     "weak_jet_core": "the wind maximum in a jet-core window is weaker than cores.min_core_speed_m_s: no jet; value is NaN",
     "merged_jets": "the subtropical and eddy-driven windows give the same core (one merged jet): reported once, as the subtropical core ('ok;merged_jets'), the eddy-driven core is NaN",

@@ -73,8 +73,9 @@ def find_core(u, x, p, lat_window, p_window, *, min_fraction, min_speed=-np.inf)
         Reason codes where no core is reported: fewer than three levels in the pressure window
         (``column_too_short``); too few finite points (``too_little_data``); no interior local maximum
         and the window's maximum on its edge, so the true one may lie outside (``extremum_at_window_edge``);
-        the window's maximum inside but next to a missing point, or in a column with fewer than three
-        valid levels (``extremum_next_to_missing_data`` / ``column_too_short``); the core weaker than ``min_speed``.
+        the window's maximum inside but next to a missing point (``extremum_next_to_missing_data``), in a
+        column with fewer than three valid levels or with the same wind above or below it
+        (``column_too_short``); the core weaker than ``min_speed`` (``weak_jet_core``).
     """
     u = np.asarray(u, dtype=float)
     x = np.asarray(x, dtype=float)
@@ -135,7 +136,16 @@ def _no_core_reason(w, fin):
     k, j = np.divmod(m, nj)
     edge = (k == 0) | (k == nl - 1) | (j == 0) | (j == nj - 1)
     col = np.take_along_axis(np.moveaxis(fin, -1, -2).sum(axis=-1), j[..., None], -1)[..., 0]   # valid levels
-    return np.where(edge, AT_EDGE, np.where(col < MIN_LEVELS, COLUMN_SHORT, NEXT_TO_MISSING))
+    ffin = fin.reshape(lead + (-1,))
+    gap = np.zeros(lead, bool)
+    for dk in (-1, 0, 1):
+        for dj in (-1, 0, 1):
+            kn, jn = np.clip(k + dk, 0, nl - 1), np.clip(j + dj, 0, nj - 1)
+            gap |= ~np.take_along_axis(ffin, (kn * nj + jn)[..., None], -1)[..., 0]
+    # inside, no missing neighbour, yet no local maximum: the wind equals it above or below (it does
+    # not change with height there), so the core cannot be placed in the vertical either
+    return np.where(edge, AT_EDGE, np.where(col < MIN_LEVELS, COLUMN_SHORT, np.where(gap, NEXT_TO_MISSING,
+                                                                                       COLUMN_SHORT)))
 
 
 def hemisphere_columns(lat, hemi):

@@ -105,6 +105,10 @@ def test_too_short_column_and_missing_neighbour():
     short = u.copy()
     short[[3, 5, 6, 7], 12] = np.nan
     assert core(short).reason == K.COLUMN_SHORT
+    # the same wind at the maximum and the level above it: no single core level
+    flat = u.copy()
+    flat[3, 12] = flat[4, 12]
+    assert core(flat).reason == K.COLUMN_SHORT
 
 
 def test_too_little_data_and_weak_cores():
