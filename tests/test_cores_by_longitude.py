@@ -191,3 +191,14 @@ def test_members_along_a_dimension(tmp_path):
     per = df[(df["metric"] == "eddy_jet_core_lat") & (df["hemisphere"] == "NH")]
     assert per.groupby("realization")["value"].mean().to_dict() == {"1": pytest.approx(50.0, abs=0.1),
                                                                     "2": pytest.approx(54.0, abs=0.1)}
+
+
+@pytest.mark.parametrize("line,words", [("longitude_band_deg = -5.0", ["cores.longitude_band_deg", "up to 360"]),
+                                        ("subtropical_pressure_window = [0.0, 400.0]", ["above 0"])])
+def test_bad_core_settings_are_refused_before_reading(tmp_path, line, words):
+    path = write(tmp_path / "jets.nc", field())
+    cfg = tmp_path / "c.toml"
+    cfg.write_text(f"[cores]\n{line}\n")
+    out = tmp_path / "idx.csv"
+    one_error(invoke("track", path, "-o", out, "-c", cfg, "-q"), 2, *words)
+    assert not out.exists()

@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from circtrack.errors import UsageError
 from circtrack.kernels import cores as K
 from circtrack.registry import Metric, Result, register_family
 
@@ -89,7 +90,18 @@ def _search(cfg):
 
 
 def _levels(cfg):
-    return {"ua": None}            # every level: the core's pressure is sought in the data's own levels
+    """Every level of ua (the core's pressure is sought in the data's own levels). Called while the
+    run is planned, so the ``[cores]`` values are checked here, before any data is read."""
+    c = cfg["cores"]
+    if c["longitude_band_deg"] < 0 or c["longitude_band_deg"] > 360:
+        raise UsageError(f"cores.longitude_band_deg = {c['longitude_band_deg']!r} in the config: give 0 (every "
+                         "longitude) or a band width in degrees up to 360")
+    for jet in K.JETS:
+        lo, hi = c[f"{jet}_pressure_window"]
+        if lo <= 0:
+            raise UsageError(f"cores.{jet}_pressure_window = [{lo!r}, {hi!r}] in the config: pressures are hPa "
+                             "above 0, e.g. [100.0, 400.0]")
+    return {"ua": None}
 
 
 def reason_flags(code):
