@@ -112,7 +112,7 @@ def section_data(path, cfg, time=None, overrides=None, label=None):
     mean = {r: a.reshape((-1,) + a.shape[-2:])[:1] for r, a in zm["mean"].items()}
     cov = {r: a.reshape((-1,) + a.shape[-2:])[:1] for r, a in zm["coverage"].items()}
     fields = Fields(lat=zm["lat"], plev=zm["plev"], mean=mean, coverage=cov)
-    psi = streamfunction(fields)[0]
+    psi = streamfunction(fields, cfg)[0]
     u = fields.masked("ua", cfg)[0]
     return Section(path=path, source=str(c["source"][0]) if len(c["source"]) else "", time=iso,
                    lat=np.asarray(zm["lat"], float), plev_u=np.asarray(zm["plev"]["ua"], float), u=u,

@@ -1,7 +1,11 @@
 """Synthetic circulations with answers known in closed form, for tests, demos and benchmarks.
 
 The mass streamfunction is prescribed as ``psi(lat, p, t) = S(lat, t) P(p)`` with
-``S = A cos(lat)^2 exp(-(lat/30)^2) prod_i (lat - z_i)`` and ``P = sin(pi p / p_s)``, so the zeros of psi at any level
+``S = A cos(lat)^2 exp(-(lat/30)^2) prod_i (lat - z_i)`` and ``P = sin^2(pi (p - p_t) / (p_s - p_t))`` between
+``p_t`` (``top_hpa``, 50 hPa) and the surface, ``P = 0`` above: the circulation lives below ``p_t`` and psi vanishes at
+both ends of that column with ``[v]`` going smoothly to 0 at ``p_t`` (no flow above, no net mass flux: the column
+rules of kernels/vertical.py hold for data from ``p_t`` down, and nearly so for data whose top is a little lower,
+e.g. 100 hPa, where 2.7 % of the peak is above the data). The zeros of psi at any level
 are exactly the chosen latitudes ``z_i`` (southern Ferrel edge, southern Hadley edge, cell
 boundary, northern Hadley edge, northern Ferrel edge). The northward wind follows from
 ``[v] = g / (2 pi a cos(lat)) dpsi/dp``; any vertical quadrature of ``[v]`` returns a multiple of
@@ -28,7 +32,7 @@ DEFAULTS = dict(
     hadley_peak=1.0e11,                            # kg s-1, |psi| scale of the NH Hadley cell
     stj=(30.0, -32.0), stj_speed=(30.0, 35.0), stj_width=6.0,
     edj=(45.0, -50.0), edj_speed=(12.0, 15.0), edj_width=10.0,
-    wave_amplitude=5.0, wavenumber=3, surface_hpa=1000.0,
+    wave_amplitude=5.0, wavenumber=3, surface_hpa=1000.0, top_hpa=50.0,
 )
 
 
@@ -66,7 +70,9 @@ def fields(lat, lon, plev_hpa, ntime=1, **params):
     norm = np.where(nh, np.abs(s_full), 0).max(axis=1, keepdims=True)
     amp = np.broadcast_to(np.asarray(p["hadley_peak"], float), (ntime,))[:, None] / norm
     ps = p["surface_hpa"] * 100.0
-    dpdp = np.pi / ps * np.cos(np.pi * plev * 100.0 / ps)                 # dP/dp per Pa, (L,)
+    pt = p["top_hpa"] * 100.0                                            # the top of the circulation, Pa
+    arg = np.pi * (plev * 100.0 - pt) / (ps - pt)
+    dpdp = np.where(plev * 100.0 > pt, np.pi / (ps - pt) * np.sin(2.0 * arg), 0.0)   # dP/dp per Pa, (L,)
     v_zm = (GRAVITY / (2 * np.pi * EARTH_RADIUS)) * (amp * shape_c)[:, None, :] * dpdp[None, :, None]
 
     def hemi_param(name):

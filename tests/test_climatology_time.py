@@ -66,3 +66,22 @@ def test_undecodable_time_is_still_one_clear_error(tmp_path):
     with pytest.raises(InputError) as e:
         engine.track([path], config.load(), metric_ids=["surface_wind_zero_lat"])
     assert str(tmp_path / "bad.cdf") in str(e.value) and "time" in str(e.value)
+
+
+def test_reopening_for_year_zero_keeps_the_engine_arguments(monkeypatch):
+    # the second open (without time decoding) must pass the engine arguments of the first, e.g.
+    # cfgrib's index path in our cache directory (never beside the data)
+    import xarray as xr
+
+    from circtrack.inputs import times as T
+    seen = []
+
+    def refuses(path, **kwargs):
+        seen.append(kwargs)
+        raise ValueError("cannot be reopened here")
+    monkeypatch.setattr(xr, "open_dataset", refuses)
+    extra = {"backend_kwargs": {"indexpath": "/cache/circtrack/grib-index/x.idx"}}
+    with pytest.raises(InputError):
+        T.reopen_undecoded("x.grib", "cfgrib", extra, config.load(), None,
+                           "unable to decode time units 'hours since 0000-01-01' with calendar 'standard'")
+    assert seen and all(kw.get("backend_kwargs") == extra["backend_kwargs"] for kw in seen)

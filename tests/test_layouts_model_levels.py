@@ -13,6 +13,7 @@ from circtrack.inputs import dataset as D
 from circtrack.inputs.model_levels import column_pressure, interpolate_log_p, parse_formula_terms
 from tests.conftest import CALENDAR
 from tests.layout_helpers import LAT, LON, PLEV, assert_rows_close, baseline, make_dataset, run_cfg, write
+from tests.metrics.test_surface_fallback import WIND, _with_surface_wind
 
 P0 = 100000.0
 
@@ -118,8 +119,13 @@ def test_hybrid_levels_with_varying_surface_pressure(tmp_path, base):
     err = np.nanmax(np.abs(arr - exact), axis=(0, 2, 3))                 # per target level, m s-1
     assert err[0] < 0.02 and err[2] < 0.02                               # log-p interpolation of a smooth profile
     assert err[1] < 0.5      # 850 hPa: the invented subtropical jet's profile has a kink there (clip at 850 hPa)
-    out = run_cfg(path, metric_ids=metrics)
-    two = run_cfg(write(make_dataset(2), tmp_path / "two.nc"), metric_ids=metrics)   # same number of steps
+    # reading is checked here, not the column balance: 1000 hPa lies below the ground at 11 of 36
+    # longitudes, where the invented wave in v has no zero mean over the rest, and removing the
+    # column's net flux (cells.balance) carries that residual up to 500 hPa (the Ferrel zero moves
+    # 0.3 deg; tests/kernels/test_vertical.py checks the balance itself)
+    cfg["cells"]["balance"] = "none"
+    out = run_cfg(path, cfg=cfg, metric_ids=metrics)
+    two = run_cfg(write(make_dataset(2), tmp_path / "two.nc"), cfg=cfg, metric_ids=metrics)   # same number of steps
     # positions to 0.15 deg and amounts to 1 % (the 850 hPa kink moves the half-maximum points a little)
     assert_rows_close(O.sorted_lines(out)[1:], O.sorted_lines(two)[1:], atol_lat=0.15, rtol=0.01, atol=1e-3)
 
@@ -158,3 +164,22 @@ def test_hybrid_levels_without_surface_pressure_is_one_clear_error(tmp_path):
         run_cfg(tmp_path / "no_ps.nc", metric_ids=["eddy_jet_lat"])
     msg = str(e.value)
     assert "\n" not in msg and "no_ps.nc" in msg and "surface pressure 'ps'" in msg and "same file" in msg
+
+
+def test_lowest_model_level_stands_in_for_uas(tmp_path):
+    # a file on hybrid levels without uas: the lowest model level of ua (the one nearest the ground
+    # in every column, whatever the surface pressure) stands in for the near-surface wind, as the
+    # lowest pressure level does on pressure levels. The surface at 950 hPa lies above the 1000 hPa
+    # reference pressure of that level everywhere, so interpolating to 1000 hPa would leave nothing.
+    ds, _ = _with_surface_wind(make_dataset(2))
+    ps = np.full((2, LAT.size, LON.size), 95000.0)
+    path = _hybrid_file(tmp_path / "h.nc", ds["ua"].values, ds["va"].values, ps, PLEV * 100.0, "a*p0", False)
+    out = run_cfg(path, metric_ids=WIND)
+    plain = run_cfg(write(ds, tmp_path / "levels.nc"), metric_ids=WIND)
+    assert O.sorted_lines(out)[1:] == O.sorted_lines(plain)[1:]
+    c = out.columns
+    for metric, want in (("surface_wind_zero_lat", 30.0), ("polar_easterly_edge_lat", 60.0)):
+        got = c["value"][(c["metric"] == metric) & (c["hemisphere"] == "NH")]
+        assert got.size and np.allclose(got, want, atol=0.05), (metric, got)
+    why = out.provenance["inputs"][0]["found_by"]["uas"]
+    assert "lowest model level of ua" in why and "'ua'" in why

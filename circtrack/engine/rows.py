@@ -18,6 +18,7 @@ from circtrack.engine.locate import file_stat
 from circtrack.engine.plan import MEMBER_ATTRIBUTES
 from circtrack.engine.times import iso_time
 from circtrack.errors import InputError
+from circtrack.flags import note_summary
 from circtrack.metrics import catalogue
 
 
@@ -68,6 +69,8 @@ def outcome(rp, cols, step_notes, label):
         out["flag"] = np.where(row_notes != "", flat["flag"].astype(str).astype(object) + ";" + row_notes,
                                flat["flag"])
     prov = provenance(rp, iso, notes, extra_names)
+    # notes the metrics added to their flags (e.g. unbalanced_column, with its size): where they occur
+    prov["flag_notes"] = note_summary(out["time"], out["hemisphere"], out["metric"], out["flag"], out["value"])
     return Outcome(out, ["source", "time", *extra_names, "hemisphere", "sector", "metric"], prov, flat["t"])
 
 
@@ -134,5 +137,6 @@ def merge_members(labels, outs, skipped=()):
                            "time_span": o.provenance["time_span"], "time_steps": o.provenance["time_steps"],
                            "inputs": [i["path"] for i in o.provenance["inputs"]]} for m, o in zip(labels, outs)}
     prov["extra_key_columns"] = ["member"] + list(first.provenance.get("extra_key_columns", []))
+    prov["flag_notes"] = note_summary(cols["time"], cols["hemisphere"], cols["metric"], cols["flag"], cols["value"])
     return Outcome(cols, keys, prov, rank)
 

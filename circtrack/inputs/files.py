@@ -8,8 +8,9 @@ import sys
 from pathlib import Path
 
 from circtrack.errors import InputError
+from circtrack.inputs.opening import DATA_SUFFIXES
 
-SUFFIXES = (".nc", ".nc4", ".netcdf", ".cdf", ".h5", ".hdf5", ".zarr", ".grib", ".grib2", ".grb", ".grb2")
+SUFFIXES = DATA_SUFFIXES                 # netCDF/HDF5 and every source in opening.SOURCES
 
 
 def _is_data(p: Path) -> bool:

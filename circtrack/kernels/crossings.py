@@ -1,44 +1,69 @@
-"""Zero crossings with linear interpolation, searched from a start index in one direction."""
+"""Zero crossings with linear interpolation, searched from a start index in one direction.
+
+The rule every metric follows (:func:`find_crossing`): the search walks from the start point
+towards larger index and never steps over a missing point. The first sign change between two
+neighbouring valid points is the crossing; if the walk meets a missing point first, the zero may
+lie hidden in the gap and the answer is NaN with the reason ``crossing_in_data_gap``; a sign change
+in the segment that ends on a pole row (|x| = 90, where a zonal mean of a wind component is not
+defined) gives NaN with ``crossing_at_pole_row``; no sign change up to ``stop`` (or the end of the
+data) gives NaN with ``no_sign_change_in_window``. The reason codes are the CSV flags (flags.py).
+"""
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
+OK = "ok"
+NO_SIGN_CHANGE = "no_sign_change_in_window"
+IN_GAP = "crossing_in_data_gap"
+AT_POLE = "crossing_at_pole_row"
 
-def first_crossing(y, x, start, *, stop=None, direction="down"):
-    """Find the first zero crossing of ``y(x)`` at or after index ``start`` (towards larger index).
+
+@dataclass
+class Crossing:
+    """Result of :func:`find_crossing`; both fields have the leading shape ``(...)``."""
+
+    position: np.ndarray   # interpolated position, NaN unless reason is "ok"
+    reason: np.ndarray     # object array of flag codes: ok, no_sign_change_in_window, crossing_in_data_gap, crossing_at_pole_row
+
+
+def find_crossing(y, x, start, *, stop=None, direction="down", pole=90.0):
+    """The first zero crossing of ``y(x)`` at or after index ``start``, with the reason when there is none.
 
     Parameters
     ----------
-    y : array ``(..., N)``
-        Values on the grid ``x``. NaN points never take part in a crossing.
-    x : array ``(N,)``
-        Strictly increasing coordinate.
-    start : int array ``(...)`` or int
-        Index where the search begins (inclusive). Negative values mean "no start" and give NaN.
-    stop : float, optional
-        The crossing must lie at ``x <= stop``.
-    direction : {"down", "up", "any"}
-        ``"down"``: from positive to non-positive values (a maximum's poleward zero);
-        ``"up"``: from negative to non-negative; ``"any"``: either.
+    y : array ``(..., N)``; NaN marks missing points.
+    x : array ``(N,)``, strictly increasing.
+    start : int array ``(...)`` or int; negative means "no start" (NaN, reason no_sign_change_in_window).
+    stop : float or array ``(...)``, optional; the crossing must lie at ``x <= stop``.
+    direction : {"down", "up", "any"}; ``"down"``: positive to non-positive (a maximum's poleward
+        zero), ``"up"``: negative to non-negative, ``"any"``: either.
+    pole : |x| of a pole row (90 for latitudes); None when ``x`` is no latitude.
 
     Returns
     -------
-    pos : array ``(...)``
-        Linearly interpolated position ``x_k + (x_{k+1}-x_k) * y_k / (y_k - y_{k+1})``; NaN if none.
-
-    Notes
-    -----
-    A crossing lies in segment ``k`` (between ``x_k`` and ``x_{k+1}``) when ``y_k`` and ``y_{k+1}`` have
-    opposite signs, or ``y_{k+1}`` is exactly zero. The first such segment with ``k >= start`` wins.
+    Crossing
+        ``x_k + (x_{k+1} - x_k) y_k / (y_k - y_{k+1})`` in the first segment ``k >= start`` whose
+        end points are valid and change sign (or end exactly on zero), when no missing point comes
+        before it; see the module docstring for the reasons.
     """
     y = np.asarray(y, dtype=float)
     x = np.asarray(x, dtype=float)
     n = y.shape[-1]
     lead = y.shape[:-1]
     start = np.broadcast_to(np.asarray(start), lead)
+    pos = np.full(lead, np.nan)
+    reason = np.full(lead, NO_SIGN_CHANGE, dtype=object)
     if n < 2:
-        return np.full(lead, np.nan)
+        return Crossing(pos, reason)
+    if pole is not None and np.isclose(abs(x[-1]), pole):
+        # the zonal mean of a wind component on a pole row is zero up to rounding (the longitudes cancel,
+        # e.g. 4e-10 m/s in float64 from float32 data): a value that small counts as zero there
+        scale = np.nanmax(np.abs(y), axis=-1, initial=0.0)
+        y = y.copy()
+        y[..., -1] = np.where(np.abs(y[..., -1]) <= 1e-6 * scale, 0.0, y[..., -1])
     y0, y1 = y[..., :-1], y[..., 1:]
     with np.errstate(invalid="ignore"):
         if direction == "down":
@@ -50,29 +75,47 @@ def first_crossing(y, x, start, *, stop=None, direction="down"):
         else:
             raise ValueError(f"direction must be down, up or any, not {direction!r}")
     k = np.arange(n - 1)
-    seg &= k >= start[..., None]
+    searched = k >= start[..., None]
     if stop is not None:
-        seg &= x[:-1] <= stop
-    found = seg.any(axis=-1) & (start >= 0)
-    kk = np.argmax(seg, axis=-1)
+        searched = searched & (x[:-1] <= np.asarray(stop, float)[..., None])
+    seg &= searched
+    gap = searched & ~np.isfinite(y1)                  # stepping from k to k+1 meets a missing point
+    big = n + 1
+    kc = np.where(seg.any(axis=-1), np.argmax(seg, axis=-1), big)
+    kg = np.where(gap.any(axis=-1), np.argmax(gap, axis=-1), big)
+    found = (kc < kg) & (start >= 0)
+    kk = np.clip(np.where(found, kc, 0), 0, n - 2)
     ya = np.take_along_axis(y0, kk[..., None], -1)[..., 0]
     yb = np.take_along_axis(y1, kk[..., None], -1)[..., 0]
     xa, xb = x[kk], x[kk + 1]
     with np.errstate(invalid="ignore", divide="ignore"):
-        pos = xa + (xb - xa) * ya / (ya - yb)
+        p = xa + (xb - xa) * ya / (ya - yb)
     if stop is not None:
-        found &= pos <= stop
-    return np.where(found, pos, np.nan)
+        found &= p <= np.asarray(stop, float)
+    at_pole = found & (np.isclose(np.abs(xb), pole) if pole is not None else False)
+    pos = np.where(found & ~at_pole, p, np.nan)
+    reason = np.where(found & ~at_pole, OK, reason)
+    reason = np.where(at_pole, AT_POLE, reason)
+    reason = np.where((kg < kc) & (kg < big) & (start >= 0), IN_GAP, reason)
+    return Crossing(pos, reason)
+
+
+def first_crossing(y, x, start, *, stop=None, direction="down"):
+    """Position of :func:`find_crossing` (NaN when there is none, whatever the reason)."""
+    return find_crossing(y, x, start, stop=stop, direction=direction, pole=None).position
+
+
+def find_level_crossing(y, x, start, level, *, direction="down", stop=None, pole=90.0):
+    """:func:`find_crossing` of ``y = level`` (array ``(...)`` or scalar): the same rules applied to
+    ``y - level``."""
+    level = np.asarray(level, dtype=float)
+    return find_crossing(np.asarray(y, float) - level[..., None], x, start,
+                         direction=direction, stop=stop, pole=pole)
 
 
 def level_crossing(y, x, start, level, *, direction="down", stop=None):
-    """First crossing of ``y = level`` (array ``(...)`` or scalar) at or after ``start``.
-
-    Same rules as :func:`first_crossing` applied to ``y - level``.
-    """
-    level = np.asarray(level, dtype=float)
-    return first_crossing(np.asarray(y, float) - level[..., None], x, start,
-                          direction=direction, stop=stop)
+    """Position of :func:`find_level_crossing` (NaN when there is none, whatever the reason)."""
+    return find_level_crossing(y, x, start, level, direction=direction, stop=stop, pole=None).position
 
 
 def reverse(y, x, index):

@@ -1,4 +1,11 @@
-"""Windowed maxima and minima with 3-point parabolic refinement on the actual grid."""
+"""Windowed maxima and minima with 3-point parabolic refinement on the actual grid.
+
+The rule every metric follows (:meth:`Extremum.reason`): an extremum is trusted only when the
+window has enough valid points, the discrete extremum is not on the window's first or last point
+(the true one may lie outside), not on a pole row (|x| = 90, where a zonal mean of a wind component
+is not defined) and has no missing neighbour (the true extremum may lie in the gap). The reason
+codes are the CSV flags (flags.py).
+"""
 
 from __future__ import annotations
 
@@ -16,6 +23,23 @@ class Extremum:
     index: np.ndarray      # grid index of the discrete extremum (-1 when none)
     at_edge: np.ndarray    # discrete extremum sits on the first or last point of the window
     valid_fraction: np.ndarray  # share of finite points inside the window
+    next_to_gap: np.ndarray = None   # a neighbour of the discrete extremum is missing
+    at_pole: np.ndarray = None       # the discrete extremum sits on a pole row (|x| = 90)
+
+    def reason(self, min_fraction):
+        """Flag code per element: ``too_little_data`` (valid share below ``min_fraction``),
+        ``extremum_at_window_edge``, ``extremum_at_pole_row``, ``extremum_next_to_missing_data``
+        or ``ok``, the first that applies in this order."""
+        out = np.full(np.shape(self.position), "ok", dtype=object)
+        for bad, code in ((self._flag(self.next_to_gap), "extremum_next_to_missing_data"),
+                          (self._flag(self.at_pole), "extremum_at_pole_row"),
+                          (self.at_edge, "extremum_at_window_edge"),
+                          (self.valid_fraction < min_fraction, "too_little_data")):
+            out = np.where(bad, code, out)
+        return out
+
+    def _flag(self, arr):
+        return np.zeros(np.shape(self.position), bool) if arr is None else arr
 
 
 def parabola_vertex(x0, x1, x2, y0, y1, y2):
@@ -69,7 +93,8 @@ def window_extremum(y, x, lo, hi, *, kind="max"):
     inwin = np.flatnonzero((x >= lo) & (x <= hi))
     if inwin.size == 0:
         nan = np.full(lead, np.nan)
-        return Extremum(nan, nan.copy(), np.full(lead, -1), np.zeros(lead, bool), np.zeros(lead))
+        no = np.zeros(lead, bool)
+        return Extremum(nan, nan.copy(), np.full(lead, -1), no, np.zeros(lead), no.copy(), no.copy())
     i0, i1 = inwin[0], inwin[-1]
     w = y[..., i0:i1 + 1]
     s = w if kind == "max" else -w
@@ -88,7 +113,10 @@ def window_extremum(y, x, lo, hi, *, kind="max"):
     refine = has & ~at_edge & np.isfinite(ym) & np.isfinite(yp)
     position = np.where(refine, xv, np.where(has, x[idx], np.nan))
     value = np.where(refine, yv, np.where(has, yc, np.nan))
-    return Extremum(position, value, np.where(has, idx, -1), at_edge, valid_fraction)
+    n = y.shape[-1]
+    next_to_gap = has & (((idx > 0) & ~np.isfinite(ym)) | ((idx < n - 1) & ~np.isfinite(yp)))
+    at_pole = has & np.isclose(np.abs(x[idx]), 90.0)
+    return Extremum(position, value, np.where(has, idx, -1), at_edge, valid_fraction, next_to_gap, at_pole)
 
 
 def interp_at(y, x, pos):

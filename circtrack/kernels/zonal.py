@@ -12,7 +12,7 @@ import numpy as np
 
 from circtrack.constants import CP_DRY, GRAVITY, LATENT_HEAT_VAPORIZATION
 from circtrack.kernels.extrema import window_extremum
-from circtrack.kernels.vertical import at_level
+from circtrack.kernels.vertical import at_level, layer_weights
 
 
 def zonal_covariance(a, b, mask=None):
@@ -61,22 +61,20 @@ def slab_at_level(arr, p, target, *, tolerance):
     return None if out is None else np.moveaxis(out, -2, -1)
 
 
-def layer_weights(p):
-    """Pressure thickness of each level's layer, ``(L,)``, in the units of ``p`` (increasing, top first).
+def humidity_filled_aloft(q, t):
+    """Specific humidity with missing values above the ground counted as 0, and the filled share.
 
-    ``sum_k w_k f_k`` is the integral of ``f`` from p = 0 to the lowest level with ``f`` constant
-    above the top level and the trapezoid rule between levels, the same rule as
-    :func:`circtrack.kernels.vertical.cumulative_pressure_integral`:
-    ``w_0 = p_0 + (p_1 - p_0)/2``, ``w_k = (p_{k+1} - p_{k-1})/2``, ``w_{L-1} = (p_{L-1} - p_{L-2})/2``.
+    ``q, t (..., L, J, I)``: where ``q`` is missing but the temperature is valid (the point is above
+    the ground) ``q = 0`` (common practice: water vapour is negligible for the energy transport above
+    the upper troposphere, and several reanalyses ship humidity only up to about 300 hPa); where
+    ``t`` is missing too the point stays missing (below the ground). Returns ``(q, filled)`` with
+    ``filled`` boolean like ``q``.
     """
-    p = np.asarray(p, dtype=float)
-    if p.size == 1:
-        return p.copy()
-    w = np.empty_like(p)
-    w[0] = p[0] + 0.5 * (p[1] - p[0])
-    w[1:-1] = 0.5 * (p[2:] - p[:-2])
-    w[-1] = 0.5 * (p[-1] - p[-2])
-    return w
+    q = np.asarray(q, dtype=np.float64)
+    filled = ~np.isfinite(q) & np.isfinite(np.asarray(t, dtype=np.float64))
+    if not filled.any():
+        return q, filled
+    return np.where(filled, 0.0, q), filled
 
 
 def moist_static_energy(t, z, q):
@@ -88,16 +86,17 @@ def moist_static_energy(t, z, q):
     return e
 
 
-def column_sums(v, e, p_pa):
+def column_sums(v, e, p_pa, top="zero_at_top_level"):
     """Pressure-weighted column sums for the energy transport, ``(..., L, J, I)`` -> four ``(..., J, I)``.
 
     Returns ``(sum w v e, sum w v, sum w e, sum w)`` over the levels where both ``v`` and ``e`` are
     valid (below-ground NaN contributes nothing, as in the streamfunction), with ``w`` from
-    :func:`layer_weights` in Pa. Divided by g these are column integrals per unit area.
+    :func:`circtrack.kernels.vertical.layer_weights` in Pa under the column's top rule ``top``.
+    Divided by g these are column integrals per unit area.
     """
     v = np.asarray(v, dtype=np.float64)
     e = np.asarray(e, dtype=np.float64)
-    w = layer_weights(p_pa)
+    w = layer_weights(p_pa, top)
     ok = np.isfinite(v) & np.isfinite(e)
     if ok.all():                                     # the usual case above the ground: no masking
         sw = np.broadcast_to(w.sum(), v.shape[:-3] + v.shape[-2:])
@@ -149,15 +148,16 @@ def per_longitude_peak(y, lat, hemi, window, *, min_fraction):
 
     ``lat (J,)`` ascending; ``hemi`` "NH" or "SH"; ``window`` ``(lo, hi)`` in degrees poleward. The
     maximum is refined with the 3-point parabola (:func:`circtrack.kernels.extrema.window_extremum`).
-    Returns ``(..., I)``: NaN where the maximum sits on the window edge or the window has less than
-    ``min_fraction`` valid points.
+    Returns ``(..., I)``: NaN where the maximum is not trusted by the extremum rule
+    (:meth:`circtrack.kernels.extrema.Extremum.reason`: window edge, pole row, missing neighbour, or
+    less than ``min_fraction`` valid points).
     """
     lat = np.asarray(lat, float)
     idx = np.flatnonzero(lat >= 0) if hemi == "NH" else np.flatnonzero(lat <= 0)[::-1]
     x = np.abs(lat[idx])
     yh = np.moveaxis(np.asarray(y, float)[..., idx, :], -1, -2)         # (..., I, Jh)
     ext = window_extremum(yh, x, window[0], window[1], kind="max")
-    good = ~ext.at_edge & (ext.valid_fraction >= min_fraction) & np.isfinite(ext.position)
+    good = (ext.reason(min_fraction) == "ok") & np.isfinite(ext.position)
     return np.where(good, ext.position, np.nan)
 
 

@@ -6,8 +6,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from circtrack.kernels.crossings import find_crossing
 from circtrack.kernels.extrema import window_extremum
-from circtrack.kernels.vertical import at_level
+from circtrack.kernels.vertical import at_level, interpolated
 from circtrack.registry import Result
 
 HEMISPHERES = ("NH", "SH")
@@ -44,6 +45,11 @@ class Fields:
         arr = self.masked(role, cfg) if masked else self.mean[role]
         return at_level(arr, self.plev[role], hpa, tolerance=cfg["run"]["level_tolerance_hpa"])
 
+    def interpolated(self, role, hpa, cfg):
+        """True when :meth:`level` interpolates ``hpa`` between two of the role's levels."""
+        plev = self.plev.get(role)
+        return plev is not None and interpolated(plev, hpa, tolerance=cfg["run"]["level_tolerance_hpa"])
+
 
 def hemisphere_view(lat, hemi):
     """Indices ordering one hemisphere from the equator to the pole, and |lat| along them."""
@@ -63,20 +69,47 @@ def signed(hemi, poleward):
 def peak(y, x, window, cfg, res_lat, res_val, h, *, kind="max"):
     """Windowed extremum of ``y (N, J)`` written into results column ``h``; returns the Extremum.
 
-    Applies the shared quality rules: too few valid points -> NaN ``too_little_data``; extremum
-    on the window edge -> NaN ``extremum_at_window_edge``. ``res_val`` may be None.
+    Applies the shared extremum rule (:meth:`circtrack.kernels.extrema.Extremum.reason`): too few
+    valid points, extremum on the window edge, on a pole row or next to a missing point -> NaN with
+    that flag. ``res_val`` may be None. ``ext.flag`` holds the flag codes.
     """
     ext = window_extremum(y, x, window[0], window[1], kind=kind)
-    bad_data = ext.valid_fraction < cfg["run"]["min_window_fraction"]
+    ext.flag = ext.reason(cfg["run"]["min_window_fraction"])
+    bad = ext.flag != "ok"
     for res, val in ((res_lat, ext.position), (res_val, ext.value)):
         if res is None:
             continue
-        res.value[:, h] = val
-        res.flag[:, h] = "ok"
-        res.flag[ext.at_edge, h] = "extremum_at_window_edge"
-        res.flag[bad_data, h] = "too_little_data"
-        res.value[ext.at_edge | bad_data, h] = np.nan
+        res.value[:, h] = np.where(bad, np.nan, val)
+        res.flag[:, h] = ext.flag
     return ext
+
+
+def crossing(res, h, hemi, y, x, ext, *, direction, stop=None, level=None):
+    """Zero (or ``level``) crossing of ``y (N, J)`` poleward of the extremum ``ext`` into results
+    column ``h`` (signed latitude), by the shared crossing rule (:func:`find_crossing`: never across
+    missing points or onto a pole row). Where the extremum itself is not trusted, its flag is kept."""
+    yy = y if level is None else y - np.asarray(level, float)[..., None]
+    start = np.where(ext.flag == "ok", ext.index, -1)
+    c = find_crossing(yy, x, start, stop=stop, direction=direction)
+    res.value[:, h] = signed(hemi, c.position)
+    res.flag[:, h] = np.where(ext.flag == "ok", c.reason, ext.flag)
+    return c
+
+
+def add_note(results, note, where=True, h=None):
+    """Append ``;note`` to the flags of rows whose value is kept (finite), where ``where`` holds
+    (boolean ``(N,)`` or scalar), in column ``h`` or all columns."""
+    for r in results:
+        cols = range(r.flag.shape[1]) if h is None else [h]
+        for c in cols:
+            sel = np.isfinite(r.value[:, c]) & np.broadcast_to(where, r.value[:, c].shape)
+            r.flag[sel, c] = r.flag[sel, c].astype(str).astype(object) + ";" + note
+
+
+def is_ok(flags):
+    """Boolean array: the flag is ``ok``, with or without notes after ';'."""
+    f = np.asarray(flags, dtype=object)
+    return np.array([str(v).split(";", 1)[0] == "ok" for v in f.ravel()], dtype=bool).reshape(f.shape)
 
 
 def missing(results, flag):

@@ -12,27 +12,36 @@ from __future__ import annotations
 
 import numpy as np
 
-from circtrack.kernels.crossings import level_crossing, reverse
+from circtrack.kernels.crossings import find_level_crossing, reverse
 from circtrack.kernels.extrema import interp_at
 from circtrack.kernels.vertical import at_level
-from circtrack.metrics.common import HEMISPHERES, hemisphere_view, missing, peak, signed
+from circtrack.metrics.common import HEMISPHERES, add_note, hemisphere_view, missing, peak, signed
 from circtrack.registry import Metric, Result, register_family
 
-SHEAR_REF = "Davis & Rosenlof (2012) J. Climate 25, 1061-1078; Waugh et al. (2018) J. Climate 31, 7565-7581"
-EDDY_REF = "Barnes & Polvani (2013) J. Climate 26, 7117-7135"
+SHEAR_REF = ("Davis & Rosenlof (2012) J. Climate 25, 1061-1078 and Waugh et al. (2018) J. Climate 31, 7565-7581 "
+             "(the subtropical jet from the maximum of the upper- minus lower-level wind)")
+EDDY_REF = "Barnes & Polvani (2013) J. Climate 26, 7117-7135 (latitude and speed of the [u]850 maximum)"
+OURS = "; this project's companion diagnostic, not defined in the paper"
+_RULES = ("; points with fewer than run.min_coverage of the longitudes valid are missing; levels absent from the data "
+          "are interpolated linearly in log-p (note interpolated_level); an extremum is never taken on the window "
+          "edge, a pole row or next to a missing latitude, a crossing never across missing latitudes (NaN with a flag "
+          "naming which); a window needs run.min_window_fraction valid points")
 
 METRICS = [
     Metric("subtropical_jet_lat", "Subtropical jet latitude", "degrees_north", "hemisphere",
-           "maximum of [u]200 - [u]850 in jets.subtropical_window (10-60 deg poleward), 3-point parabola", SHEAR_REF),
+           "maximum of [u]200 - [u]850 in jets.subtropical_window (10-60 deg poleward), 3-point parabola" + _RULES,
+           SHEAR_REF),
     Metric("subtropical_jet_speed", "Subtropical jet speed", "m s-1", "hemisphere",
-           "[u]200 at the subtropical jet latitude (linear interpolation)", SHEAR_REF),
+           "[u]200 at the subtropical jet latitude (linear interpolation)" + _RULES, SHEAR_REF + OURS),
     Metric("eddy_jet_lat", "Eddy-driven jet latitude", "degrees_north", "hemisphere",
-           "maximum of [u]850 in jets.eddy_window (15-70 deg poleward), 3-point parabola", EDDY_REF),
+           "maximum of [u]850 in jets.eddy_window (15-70 deg poleward), 3-point parabola; with jets.eddy_lowpass_days > 0 "
+           "of the low-pass filtered wind" + _RULES, EDDY_REF),
     Metric("eddy_jet_speed", "Eddy-driven jet speed", "m s-1", "hemisphere",
-           "parabola vertex value of [u]850 at the eddy-driven jet", EDDY_REF),
+           "parabola vertex value of [u]850 at the eddy-driven jet" + _RULES, EDDY_REF),
     Metric("eddy_jet_width", "Eddy-driven jet width", "degrees", "hemisphere",
            "distance between the latitudes on either side of the eddy-driven jet where [u]850 falls to "
-           "half its maximum (linear interpolation)", EDDY_REF),
+           "half its maximum (linear interpolation; NaN, no_half_max, when it does not on one side)" + _RULES,
+           EDDY_REF + OURS),
 ]
 
 
@@ -73,12 +82,15 @@ def compute(fields, cfg):
         lat_r, speed_r, width_r = out["eddy_jet_lat"], out["eddy_jet_speed"], out["eddy_jet_width"]
         ext = peak(u_lo, x, j["eddy_window"], cfg, lat_r, speed_r, h)
         half = ext.value / 2.0
-        poleward = level_crossing(u_lo, x, ext.index, half, direction="down")
-        ry, rx, ridx = reverse(u_lo, x, ext.index)
-        equatorward = -level_crossing(ry, rx, ridx, half, direction="down")
-        width = poleward - equatorward
+        start = np.where(ext.flag == "ok", ext.index, -1)
+        poleward = find_level_crossing(u_lo, x, start, half, direction="down")
+        ry, rx, ridx = reverse(u_lo, x, start)
+        equatorward = find_level_crossing(ry, rx, ridx, half, direction="down")
+        width = poleward.position + equatorward.position     # the mirrored grid's positions are negated
         width_r.value[:, h] = width
-        width_r.flag[:, h] = np.where(np.isnan(width), "no_half_max", "ok")
+        why = np.where(poleward.reason != "ok", poleward.reason, equatorward.reason)
+        width_r.flag[:, h] = np.where(why == "no_sign_change_in_window", "no_half_max", why)
+        width_r.value[why != "ok", h] = np.nan
         notok = lat_r.flag[:, h] != "ok"
         width_r.flag[notok, h] = lat_r.flag[notok, h]
         width_r.value[notok, h] = np.nan
@@ -86,6 +98,10 @@ def compute(fields, cfg):
         for r in (lat_r, speed_r, width_r):
             r.value[no_window, h] = np.nan
             r.flag[no_window, h] = "lowpass_window_incomplete"
+    for level, ids in ((j["upper_level_hpa"], ("subtropical_jet_lat", "subtropical_jet_speed")),
+                       (j["lower_level_hpa"], [m.id for m in METRICS])):
+        if fields.interpolated("ua", level, cfg):
+            add_note([out[i] for i in ids], "interpolated_level")
     return out
 
 
@@ -93,8 +109,9 @@ BAROCLINIC_METRICS = [
     Metric("baroclinic_zone_lat", "Latitude of the strongest lower-tropospheric temperature gradient",
            "degrees_north", "hemisphere",
            "maximum of |d[T]/dlat| at jets.baroclinic_level_hpa (850 hPa) in jets.baroclinic_window (20-70 deg "
-           "poleward), centred differences, 3-point parabola (a polar-front proxy)",
-           "Peixoto & Oort (1992) Physics of Climate, ch. 7 (meridional temperature gradient and baroclinicity)"),
+           "poleward), centred differences, 3-point parabola (a polar-front proxy)" + _RULES,
+           "this project's proxy for the baroclinic zone, not an index from the cited book; Peixoto & Oort (1992) Physics "
+           "of Climate, ch. 7 (meridional temperature gradient and baroclinicity)"),
 ]
 
 
@@ -112,4 +129,6 @@ def compute_baroclinic(fields, cfg):
         grad = np.abs(np.gradient(t[:, idx], x, axis=-1))
         peak(grad, x, j["baroclinic_window"], cfg, res, None, h)
         res.value[:, h] = signed(hemi, res.value[:, h])
+    if fields.interpolated("ta", j["baroclinic_level_hpa"], cfg):
+        add_note([res], "interpolated_level")
     return {"baroclinic_zone_lat": res}

@@ -13,15 +13,18 @@ import numpy as np
 
 from circtrack.constants import EARTH_RADIUS, OMEGA
 from circtrack.metrics import cells
-from circtrack.metrics.common import HEMISPHERES
+from circtrack.metrics.common import HEMISPHERES, is_ok
 from circtrack.registry import Metric, Result, register_family
 
 METRICS = [
     Metric("hadley_rossby_number", "Local Rossby number of the Hadley cell's upper branch", "1", "hemisphere",
            "-[zeta]/f with [zeta] = -1/(a cos(lat)) d([u] cos(lat))/d(lat), f = 2 Omega sin(lat), cos-weighted mean over "
            "levels in momentum.upper_branch_hpa (150-300 hPa) and latitudes from momentum.min_lat (5 deg) to the "
-           "Hadley edge (grid bands counted with the share inside); 1 for angular-momentum-conserving flow, 0 for flow with no relative vorticity",
-           "Walker & Schneider (2006) J. Atmos. Sci. 63, 3333-3350; Held & Hou (1980) J. Atmos. Sci. 37, 515-533"),
+           "Hadley edge (hadley_edge_lat, grid bands counted with the share inside; NaN with the edge's flag when the "
+           "edge is NaN, with the edge's notes when it has some); [u] points with fewer than run.min_coverage of the longitudes valid are left out; 1 for "
+           "angular-momentum-conserving flow, 0 for flow with no relative vorticity",
+           "Walker & Schneider (2006) J. Atmos. Sci. 63, 3333-3350 (local Rossby number Ro = -[zeta]/f); Held & Hou "
+           "(1980) J. Atmos. Sci. 37, 515-533 (u_M); the average over the upper branch is this project's"),
 ]
 
 
@@ -76,7 +79,10 @@ def compute(fields, cfg):
             val = np.nansum(np.nan_to_num(ro) * wt, axis=(1, 2)) / wt.sum(axis=(1, 2))
         res.value[:, h] = val
         res.flag[:, h] = np.where(np.isfinite(val), "ok", "too_little_data")
-        bad = edges.flag[:, h] != "ok"
+        bad = ~is_ok(edges.flag[:, h])
         res.flag[bad, h] = edges.flag[bad, h]
         res.value[bad, h] = np.nan
+        # the edge's notes (e.g. unbalanced_column) hold for a number averaged up to it
+        noted = ~bad & (res.flag[:, h] == "ok") & np.array([";" in str(f) for f in edges.flag[:, h]], dtype=bool)
+        res.flag[noted, h] = edges.flag[noted, h]
     return {"hadley_rossby_number": res}

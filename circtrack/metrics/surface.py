@@ -11,12 +11,19 @@ from __future__ import annotations
 
 import numpy as np
 
-from circtrack.kernels.crossings import first_crossing
-from circtrack.metrics.common import HEMISPHERES, hemisphere_view, peak, signed
+from circtrack.metrics.common import HEMISPHERES, crossing, hemisphere_view, peak, signed
 from circtrack.registry import Metric, Result, register_family
 
-WIND_REF = "Kang & Polvani (2011) J. Climate 24, 563-568; Waugh et al. (2018) J. Climate 31, 7565-7581"
-SLP_REF = "Davis & Rosenlof (2012) J. Climate 25, 1061-1078; Waugh et al. (2018) J. Climate 31, 7565-7581"
+WIND_REF = ("Kang & Polvani (2011) J. Climate 24, 563-568 (the surface-wind zero between trades and westerlies); "
+            "Waugh et al. (2018) J. Climate 31, 7565-7581")
+SPEED_REF = ("this project's diagnostic, not defined in the cited papers (its windows are this project's); the belts "
+             "as in " + WIND_REF)
+SLP_REF = ("Davis & Rosenlof (2012) J. Climate 25, 1061-1078 (latitude of the subtropical sea-level-pressure maximum); "
+           "Waugh et al. (2018) J. Climate 31, 7565-7581")
+# the rule every crossing and extremum follows (kernels/crossings.py, kernels/extrema.py), and coverage
+_RULES = ("; points with fewer than run.min_coverage of the longitudes valid are missing; a crossing is never taken "
+          "across missing latitudes or onto a pole row, an extremum never on the window edge, a pole row or next to a "
+          "missing latitude (NaN with a flag naming which); a window needs run.min_window_fraction valid points")
 
 # uas, or without it (and only when these metrics are asked for with --metrics) ua on the lowest
 # pressure level; the sidecar's found_by says which (inputs/dataset.py lowest_level_substitute)
@@ -25,19 +32,24 @@ _UAS = ("; [uas] is the zonal-mean near-surface wind, or ua on the lowest pressu
 WIND_METRICS = [
     Metric("surface_wind_zero_lat", "Edge between the trade winds and the surface westerlies", "degrees_north",
            "hemisphere", "first zero of [uas] poleward of the tropical easterly minimum (searched in "
-           "surface.trades_window, 0-35 deg poleward); linear interpolation" + _UAS, WIND_REF),
+           "surface.trades_window, 0-35 deg poleward); linear interpolation" + _UAS + _RULES, WIND_REF),
     Metric("polar_easterly_edge_lat", "Edge between the surface westerlies and the polar easterlies", "degrees_north",
-           "hemisphere", "first zero of [uas] poleward of the surface westerly maximum", WIND_REF),
+           "hemisphere", "first zero of [uas] poleward of the surface westerly maximum (searched in "
+           "surface.westerlies_window, 25-70 deg poleward); linear interpolation" + _UAS + _RULES,
+           "Kang & Polvani (2011) J. Climate 24, 563-568 (the surface-wind zero, applied here to the poleward side "
+           "of the westerlies: an extension of this project)"),
     Metric("trade_wind_speed", "Strongest tropical easterly", "m s-1", "hemisphere",
-           "-min([uas]) in surface.trades_window (3-point parabola vertex); positive for easterlies", WIND_REF),
+           "-min([uas]) in surface.trades_window (3-point parabola vertex); positive for easterlies" + _UAS + _RULES,
+           SPEED_REF),
     Metric("surface_westerly_speed", "Strongest midlatitude surface westerly", "m s-1", "hemisphere",
-           "max([uas]) in surface.westerlies_window (3-point parabola vertex)", WIND_REF),
+           "max([uas]) in surface.westerlies_window (3-point parabola vertex)" + _UAS + _RULES, SPEED_REF),
 ]
 SLP_METRICS = [
     Metric("subtropical_high_lat", "Latitude of the subtropical high-pressure belt", "degrees_north", "hemisphere",
-           "maximum of [psl] in surface.high_window (10-50 deg poleward), 3-point parabola", SLP_REF),
+           "maximum of [psl] in surface.high_window (10-50 deg poleward), 3-point parabola" + _RULES, SLP_REF),
     Metric("subtropical_high_slp", "Sea-level pressure of the subtropical high-pressure belt", "hPa", "hemisphere",
-           "parabola vertex value of [psl] at the subtropical high", SLP_REF),
+           "parabola vertex value of [psl] at the subtropical high" + _RULES,
+           "this project's companion of subtropical_high_lat; " + SLP_REF),
 ]
 
 
@@ -53,20 +65,10 @@ def compute_winds(fields, cfg):
         y = u[:, idx]
         trade = peak(y, x, s["trades_window"], cfg, None, out["trade_wind_speed"], h, kind="min")
         out["trade_wind_speed"].value[:, h] = -out["trade_wind_speed"].value[:, h]
-        zero = first_crossing(y, x, trade.index, direction="up")
-        _set(out["surface_wind_zero_lat"], h, hemi, zero, out["trade_wind_speed"].flag[:, h])
+        crossing(out["surface_wind_zero_lat"], h, hemi, y, x, trade, direction="up")
         west = peak(y, x, s["westerlies_window"], cfg, None, out["surface_westerly_speed"], h)
-        polar = first_crossing(y, x, west.index, direction="down")
-        _set(out["polar_easterly_edge_lat"], h, hemi, polar, out["surface_westerly_speed"].flag[:, h])
+        crossing(out["polar_easterly_edge_lat"], h, hemi, y, x, west, direction="down")
     return out
-
-
-def _set(res, h, hemi, pos, parent_flag):
-    res.value[:, h] = signed(hemi, pos)
-    res.flag[:, h] = np.where(np.isnan(pos), "no_zero_crossing", "ok")
-    bad = parent_flag != "ok"
-    res.flag[bad, h] = parent_flag[bad]
-    res.value[bad, h] = np.nan
 
 
 @register_family("subtropical_highs", inputs=("psl",), levels=lambda cfg: {"psl": None}, sectors=True,
@@ -83,19 +85,21 @@ def compute_highs(fields, cfg):
     return out
 
 
-PE_REF = "Waugh et al. (2018) J. Climate 31, 7565-7581; Davis & Rosenlof (2012) J. Climate 25, 1061-1078"
+PE_REF = ("Waugh et al. (2018) J. Climate 31, 7565-7581 and Davis & Rosenlof (2012) J. Climate 25, 1061-1078 (the "
+          "subtropical P - E zero as a tropical-width measure)")
 OLR_REF = "Hu & Fu (2007) Atmos. Chem. Phys. 7, 5229-5236"
 
 PE_METRICS = [
     Metric("p_minus_e_zero_lat", "Poleward edge of the subtropical dry zone (P - E = 0)", "degrees_north",
            "hemisphere", "first zero of [pr - evspsbl] poleward of its subtropical minimum (searched in "
            "surface.p_minus_e_window, 0-45 deg poleward); evaporation is made positive upward when the file "
-           "stores it negative (global mean < 0)", PE_REF),
+           "stores it negative (global mean < 0); linear interpolation" + _RULES, PE_REF),
 ]
 OLR_METRICS = [
     Metric("olr_edge_lat", "Tropical edge from outgoing longwave radiation", "degrees_north", "hemisphere",
            "latitude where [rlut] falls below surface.olr_threshold_w_m2 (250 W m-2) poleward of its subtropical "
-           "maximum (searched in surface.olr_max_window, 0-40 deg poleward); linear interpolation", OLR_REF),
+           "maximum (searched in surface.olr_max_window, 0-40 deg poleward); linear interpolation" + _RULES,
+           OLR_REF + " (the 250 W m-2 threshold; the search from the subtropical maximum is this project's)"),
 ]
 
 
@@ -115,18 +119,13 @@ def compute_p_minus_e(fields, cfg):
         idx, x = hemisphere_view(fields.lat, hemi)
         y = pe[:, idx]
         ext = peak(y, x, cfg["surface"]["p_minus_e_window"], cfg, None, None, h, kind="min")
-        zero = first_crossing(y, x, ext.index, direction="up")
-        flag = np.where(ext.at_edge, "extremum_at_window_edge",
-                        np.where(ext.valid_fraction < cfg["run"]["min_window_fraction"], "too_little_data", "ok"))
-        _set(res, h, hemi, zero, flag)
+        crossing(res, h, hemi, y, x, ext, direction="up")
     return {"p_minus_e_zero_lat": res}
 
 
 @register_family("outgoing_longwave", inputs=("rlut",), levels=lambda cfg: {"rlut": None}, sectors=True,
                  metrics=OLR_METRICS)
 def compute_olr(fields, cfg):
-    from circtrack.kernels.crossings import level_crossing
-
     s = cfg["surface"]
     res = Result.empty(fields.n, 2)
     olr = fields.masked("rlut", cfg)
@@ -134,8 +133,5 @@ def compute_olr(fields, cfg):
         idx, x = hemisphere_view(fields.lat, hemi)
         y = olr[:, idx]
         ext = peak(y, x, s["olr_max_window"], cfg, None, None, h)
-        pos = level_crossing(y, x, ext.index, s["olr_threshold_w_m2"], direction="down")
-        flag = np.where(ext.at_edge, "extremum_at_window_edge",
-                        np.where(ext.valid_fraction < cfg["run"]["min_window_fraction"], "too_little_data", "ok"))
-        _set(res, h, hemi, pos, flag)
+        crossing(res, h, hemi, y, x, ext, direction="down", level=np.full(y.shape[0], s["olr_threshold_w_m2"]))
     return {"olr_edge_lat": res}

@@ -22,12 +22,16 @@ import numpy as np
 
 from circtrack.constants import EARTH_RADIUS, GRAVITY, HPA, PETAWATT
 from circtrack.kernels import zonal as Z
-from circtrack.metrics.common import HEMISPHERES, hemisphere_view, missing, peak, signed
+from circtrack.kernels.vertical import interpolated
+from circtrack.metrics.cells import column_rules
+from circtrack.metrics.common import HEMISPHERES, add_note, hemisphere_view, missing, peak, signed
 from circtrack.registry import Metric, Result, register_family
 
 MOMENTUM_REF = "Peixoto & Oort (1992) Physics of Climate, ch. 11 (eddy momentum flux [u'v'] = [uv] - [u][v])"
-ENERGY_REF = ("Trenberth (1991) J. Climate 4, 707-722 (mass correction); Trenberth & Caron (2001) J. Climate 14, "
-              "3433-3443; Peixoto & Oort (1992) Physics of Climate, ch. 13")
+ENERGY_REF = ("Trenberth (1991) J. Climate 4, 707-722 (the barotropic mass correction); Trenberth & Caron (2001) "
+              "J. Climate 14, 3433-3443 (the atmosphere's poleward transport, peaking near 5 PW); Peixoto & Oort (1992) "
+              "Physics of Climate, ch. 13 (moist static energy transport); its peak and latitude as indices are this "
+              "project's")
 
 MOMENTUM_METRICS = [
     Metric("eddy_momentum_flux_lat", "Latitude of the strongest poleward eddy momentum flux", "degrees_north",
@@ -36,21 +40,28 @@ MOMENTUM_METRICS = [
            "winds; northward positive, so the SH uses -[u'v']) at eddies.momentum_level_hpa (250 hPa) in "
            "eddies.momentum_window (15-60 deg poleward), 3-point parabola (NaN, flag weak_peak, when the peak is below "
            "eddies.min_momentum_flux_m2_s2); transient plus stationary eddies from "
-           "sub-daily or daily input, stationary only from time means (flag time_mean_input)", MOMENTUM_REF),
+           "sub-daily or daily input, stationary only from time means (flag time_mean_input); u and v interpolated "
+           "linearly in log-p when 250 hPa is absent (note interpolated_level); latitudes where fewer than "
+           "run.min_coverage of the longitudes have both winds are missing; an extremum is never taken on the window "
+           "edge, a pole row or next to a missing latitude", MOMENTUM_REF + "; the latitude index is this project's"),
     Metric("eddy_momentum_flux_max", "Strongest poleward eddy momentum flux", "m2 s-2", "hemisphere",
            "parabola vertex value of the poleward [u'v'] at eddy_momentum_flux_lat (positive poleward in both "
-           "hemispheres)", MOMENTUM_REF),
+           "hemispheres); same rules as eddy_momentum_flux_lat", MOMENTUM_REF + "; the index is this project's"),
 ]
 ENERGY_METRICS = [
     Metric("energy_transport_max", "Peak poleward atmospheric energy transport", "PW", "hemisphere",
            "maximum over energy.window (10-80 deg poleward) of the poleward moist-static-energy transport "
            "F = 2 pi a cos(lat)/g (integral [v E] dp - M_net E_mean), E = cp T + g z + L q, with the barotropic mass "
            "correction: M_net = integral [v] dp is the net column mass flux across the latitude circle and E_mean "
-           "the mass-weighted mean of E over the section (no net mass crosses the latitude); integral from the top "
-           "to the lowest level, below-ground points left out; NaN (too_little_data) on grids that do not go round "
-           "the circle; 3-point parabola (its latitude NaN, flag weak_peak, "
-           "below energy.min_transport_pw); time-mean input gives the "
-           "mean-circulation and stationary-eddy part only (flag time_mean_input)", ENERGY_REF),
+           "the mass-weighted mean of E over the section (no net mass crosses the latitude); the same column rules as "
+           "the streamfunction: integral from the top data level (cells.top) to the lowest level, the correction "
+           "only where there is air, none with cells.balance = \"none\"; trapezoid layer weights on the levels all "
+           "four variables share; below-ground points (missing v, T or z) left out; specific humidity missing above "
+           "the ground counted as 0 (common practice; note humidity_filled_aloft); latitudes where fewer than "
+           "run.min_coverage of the longitudes have data are missing; NaN (too_little_data) on grids that do not go "
+           "round the circle; 3-point parabola (its latitude NaN, flag weak_peak, below energy.min_transport_pw); an "
+           "extremum is never taken on the window edge, a pole row or next to a missing latitude; time-mean input "
+           "gives the mean-circulation and stationary-eddy part only (flag time_mean_input)", ENERGY_REF),
     Metric("energy_transport_max_lat", "Latitude of the peak poleward atmospheric energy transport", "degrees_north",
            "hemisphere", "latitude of energy_transport_max (3-point parabola)", ENERGY_REF),
 ]
@@ -150,6 +161,8 @@ def compute_momentum(fields, cfg):
         _weak_peak(out["eddy_momentum_flux_lat"], out["eddy_momentum_flux_max"], h, e["min_momentum_flux_m2_s2"],
                    poleward, x, e["momentum_window"])
     _apply_time_flag(out.values(), time_mean_flag(fields, cfg))
+    if any(interpolated(fields.plev[r], lev, tolerance=tol) for r in ("ua", "va")):
+        add_note(out.values(), "interpolated_level")
     return out
 
 
@@ -160,44 +173,54 @@ ENERGY_ROLES = ("va", "ta", "zg", "hus")
 def energy_reducer(slabs, plev, lon, masks, cfg):
     """In-task reduction for the energy transport on the levels all four roles share.
 
-    Returns ``(T, *extra, J, 5, S)``: zonal means over all longitudes of the column sums
-    ``sum w v E``, ``sum w v``, ``sum w E``, ``sum w`` (Pa-weighted, :func:`kernels.zonal.column_sums`;
-    a longitude without valid levels contributes zeros) and the share of longitudes with data.
+    Returns ``(T, *extra, J, 6, S)``: zonal means over all longitudes of the column sums
+    ``sum w v E``, ``sum w v``, ``sum w E``, ``sum w`` (Pa-weighted under cells.top,
+    :func:`kernels.zonal.column_sums`; a longitude without valid levels contributes zeros), the share
+    of longitudes with data and the share of points above the ground whose humidity was missing and
+    counted as 0 (:func:`kernels.zonal.humidity_filled_aloft`).
     """
     levels, idx = _common_levels(plev, ENERGY_ROLES)
     lead = slabs["va"].shape[:-3]
     nj = slabs["va"].shape[-2]
-    out = np.full(lead + (nj, 5, len(masks)), np.nan)
+    out = np.full(lead + (nj, 6, len(masks)), np.nan)
     if levels.size < 2 or not Z.covers_circle(lon):   # the transport crosses the whole latitude circle
         out[..., 4, :] = 0.0
         return out
     take = {r: (slabs[r] if np.array_equal(idx[r], np.arange(slabs[r].shape[-3])) else np.take(slabs[r], idx[r], axis=-3))
             for r in ENERGY_ROLES}
-    e = Z.moist_static_energy(take["ta"], take["zg"], take["hus"])
-    sums = Z.column_sums(take["va"], e, levels * HPA)          # four (..., J, I)
+    q, filled = Z.humidity_filled_aloft(take["hus"], take["ta"])
+    e = Z.moist_static_energy(take["ta"], take["zg"], q)
+    top, _ = column_rules(cfg)
+    sums = Z.column_sums(take["va"], e, levels * HPA, top)     # four (..., J, I)
     # the family is zonal only: the full circle (first mask) is reduced, the sectors stay NaN
     for k in range(4):
         out[..., k, 0] = sums[k].mean(axis=-1)
     out[..., 4, 0] = (sums[3] > 0).mean(axis=-1)
+    out[..., 5, 0] = filled.mean(axis=(-3, -1))
     return out
 
 
-def poleward_energy_transport(sums, lat):
+def poleward_energy_transport(sums, lat, balance="remove_net_flux"):
     """Mass-corrected northward energy transport (W) from the reducer's zonal-mean column sums.
 
     ``sums (..., J, 4)`` = ``[sum w v E], [sum w v], [sum w E], [sum w]`` (Pa-weighted).
     ``F = 2 pi a cos(lat) / g * ([sum w v E] - [sum w v] [sum w E] / [sum w])``: the second term removes
     the energy carried by the net mass flux across the latitude circle at the section's mass-weighted
-    mean energy, so adding a constant to E leaves F unchanged.
+    mean energy, so adding a constant to E leaves F unchanged. It is the column balance of
+    :func:`circtrack.kernels.vertical.balance_column` (``v - c`` where there is air, ``c = [sum w v] /
+    [sum w]``) applied to ``sum w v E``; with ``balance="none"`` it is left out.
     """
     sums = np.asarray(sums, float)
     fac = 2.0 * np.pi * EARTH_RADIUS * np.cos(np.deg2rad(np.asarray(lat, float))) / GRAVITY
+    if balance == "none":
+        return fac * sums[..., 0]
     with np.errstate(invalid="ignore", divide="ignore"):
         corrected = sums[..., 0] - sums[..., 1] * sums[..., 2] / sums[..., 3]
     return fac * corrected
 
 
 def _energy_levels(cfg):
+    column_rules(cfg)
     return {r: None for r in ENERGY_ROLES}
 
 
@@ -209,8 +232,8 @@ def compute_energy(fields, cfg):
     if levels.size < 2:
         missing(out.values(), "level_missing")
         return out
-    arr = fields.extras["energy_column_sums"]                    # (N, J, 5)
-    transport = poleward_energy_transport(arr[..., :4], fields.lat) / PETAWATT
+    arr = fields.extras["energy_column_sums"]                    # (N, J, 6)
+    transport = poleward_energy_transport(arr[..., :4], fields.lat, column_rules(cfg)[1]) / PETAWATT
     transport = np.where(arr[..., 4] >= cfg["run"]["min_coverage"], transport, np.nan)
     for h, hemi in enumerate(HEMISPHERES):
         idx, x = hemisphere_view(fields.lat, hemi)
@@ -221,4 +244,6 @@ def compute_energy(fields, cfg):
         _weak_peak(out["energy_transport_max_lat"], out["energy_transport_max"], h, cfg["energy"]["min_transport_pw"],
                    poleward, x, cfg["energy"]["window"])
     _apply_time_flag(out.values(), time_mean_flag(fields, cfg))
+    filled = np.nan_to_num(arr[..., 5]).max(axis=-1) > 0                 # (N,)
+    add_note(out.values(), "humidity_filled_aloft", filled)
     return out

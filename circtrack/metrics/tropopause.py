@@ -17,16 +17,27 @@ from circtrack.metrics.common import HEMISPHERES, hemisphere_view, peak, signed
 from circtrack.registry import Metric, Result, register_family
 
 WMO_REF = "WMO (1957) WMO Bulletin 4, 134-138"
-BREAK_REF = "Birner (2010) JGR 115, D23109; Seidel & Randel (2007) JGR 112, D20113"
+BREAK_REF = ("Birner (2010) JGR 115, D23109; Seidel & Randel (2007) JGR 112, D20113 (the subtropical tropopause break "
+             "as a tropical-width measure; the steepest-slope definition on the zonal mean is this project's)")
+_WMO = ("WMO lapse-rate tropopause of [T] at each latitude: the lowest level between tropopause.search_hpa "
+        "(75-550 hPa) where the lapse rate falls to tropopause.threshold_k_per_km (2 K/km), provided the mean lapse "
+        "rate from it to every level within tropopause.depth_m (2 km) above, and to the level 2 km above, stays at or "
+        "below 2 K/km; mean lapse rate = temperature difference over height difference (heights from the "
+        "hypsometric equation, each layer weighted by its thickness); layer lapse rates on layer mid-heights, "
+        "the crossing interpolated linearly in height, its pressure in log-p; NaN (data_end_within_2km) when the "
+        "data's levels end less than 2 km above the candidate; [T] points with fewer than run.min_coverage of the "
+        "longitudes valid are missing")
 
 METRICS = [
     Metric("tropical_tropopause_pressure", "Tropical tropopause pressure", "hPa", "global",
-           "WMO lapse-rate tropopause (lapse rate falls to tropopause.threshold_k_per_km = 2 K/km and stays "
-           "below it on average over the 2 km above) of [T] at each latitude, cos-weighted mean over "
-           "|lat| <= tropopause.tropical_band (10 deg)", WMO_REF),
+           "cos(lat)-weighted mean over |lat| <= tropopause.tropical_band (10 deg) of the " + _WMO + "; at least "
+           "run.min_window_fraction of the band's latitudes must have a tropopause (too_little_data)",
+           WMO_REF + " (the definition); the tropical mean is this project's"),
     Metric("tropopause_break_lat", "Latitude of the subtropical tropopause break", "degrees_north", "hemisphere",
            "latitude of the steepest poleward decrease of the lapse-rate tropopause height of [T] in "
-           "tropopause.break_window (15-50 deg poleward); centred differences, 3-point parabola", BREAK_REF),
+           "tropopause.break_window (15-50 deg poleward); centred differences, 3-point parabola; an extremum is never "
+           "taken on the window edge, a pole row or next to a latitude without a tropopause; tropopause: " + _WMO,
+           BREAK_REF),
 ]
 
 
@@ -36,7 +47,7 @@ def compute(fields, cfg):
     n = fields.n
     out = {"tropical_tropopause_pressure": Result.empty(n, 1), "tropopause_break_lat": Result.empty(n, 2)}
     t = np.moveaxis(fields.masked("ta", cfg), -2, -1)            # (N, J, L)
-    p_trop, z_trop = lapse_rate_tropopause(t, fields.plev["ta"], threshold=c["threshold_k_per_km"],
+    p_trop, z_trop, why = lapse_rate_tropopause(t, fields.plev["ta"], threshold=c["threshold_k_per_km"],
                                            depth=c["depth_m"], p_bottom=c["search_hpa"][1],
                                            p_top=c["search_hpa"][0])
     lat = fields.lat
@@ -48,8 +59,9 @@ def compute(fields, cfg):
         mean = np.nansum(np.where(good, p_trop * w, 0.0), axis=-1) / np.sum(np.where(good, w, 0.0), axis=-1)
     r = out["tropical_tropopause_pressure"]
     enough = share >= cfg["run"]["min_window_fraction"]
-    r.value[:, 0] = np.where(enough, mean, np.nan)
-    r.flag[:, 0] = np.where(enough, "ok", "too_little_data")
+    short = ((why == "data_end_within_2km") & band).any(axis=-1)     # the data stop too low to decide
+    r.value[:, 0] = np.where(enough & ~short, mean, np.nan)
+    r.flag[:, 0] = np.where(short, "data_end_within_2km", np.where(enough, "ok", "too_little_data"))
     brk = out["tropopause_break_lat"]
     for h, hemi in enumerate(HEMISPHERES):
         idx, x = hemisphere_view(lat, hemi)
@@ -57,4 +69,8 @@ def compute(fields, cfg):
         slope = np.gradient(z, x, axis=-1) if x.size > 2 else np.full_like(z, np.nan)
         peak(-slope, x, c["break_window"], cfg, brk, None, h)
         brk.value[:, h] = signed(hemi, brk.value[:, h])
+        inwin = (x >= c["break_window"][0]) & (x <= c["break_window"][1])
+        short = (why[:, idx][:, inwin] == "data_end_within_2km").any(axis=-1)
+        brk.value[short, h] = np.nan
+        brk.flag[short, h] = "data_end_within_2km"
     return out

@@ -25,20 +25,25 @@ from __future__ import annotations
 import numpy as np
 
 from circtrack.kernels import zonal as Z
-from circtrack.metrics.common import HEMISPHERES, missing
+from circtrack.metrics.common import HEMISPHERES, add_note, missing
 from circtrack.metrics.transport import _level_available
 from circtrack.registry import Metric, Result, register_family
 
-WAVINESS_REF = ("Barnes & Polvani (2013) J. Climate 26, 7117-7135; Woollings, Hannachi & Hoskins (2010) QJRMS 136, "
-                "856-868; Cattiaux et al. (2016) GRL 43, 8259-8268")
-WAVE_REF = "Peixoto & Oort (1992) Physics of Climate, ch. 4 (zonal harmonic analysis)"
+WAVINESS_REF = ("this project's index: the spread over longitudes of the jet latitude located as in Barnes & Polvani "
+                "(2013) J. Climate 26, 7117-7135 (latitude of the [u]850 maximum); related measures of meandering: "
+                "Woollings, Hannachi & Hoskins (2010) QJRMS 136, 856-868 (jet latitude and its variability), "
+                "Cattiaux et al. (2016) GRL 43, 8259-8268 (sinuosity of geopotential contours, a different index)")
+WAVE_REF = ("Peixoto & Oort (1992) Physics of Climate, ch. 4 (zonal harmonic analysis); the choice of v at 300 hPa "
+            "and the band average are this project's")
 WAVENUMBERS = (1, 2, 3)
 
 WAVINESS_METRICS = [
     Metric("jet_waviness", "Meandering of the eddy-driven jet", "degrees", "hemisphere",
            "population standard deviation over longitudes of the per-longitude latitude of the maximum of u at "
            "waves.jet_level_hpa (850 hPa) in jets.eddy_window (15-70 deg poleward, 3-point parabola); longitudes "
-           "whose maximum sits on the window edge are left out (at least run.min_coverage of them must remain); "
+           "whose maximum is not trusted (window edge, pole row, next to a missing latitude, or fewer than "
+           "run.min_window_fraction valid latitudes) are left out (at least run.min_coverage of them must remain); "
+           "u interpolated linearly in log-p when 850 hPa is absent (note interpolated_level); "
            "0 for a zonally straight jet, A/sqrt(2) for a jet at lat0 + A sin(k lon)", WAVINESS_REF),
 ]
 WAVE_METRICS = [
@@ -46,8 +51,10 @@ WAVE_METRICS = [
            "m s-1", "hemisphere",
            f"amplitude A_{k} of v(lon) = [v] + sum_k A_k cos(k lon - theta_k) at waves.level_hpa (300 hPa), "
            "per latitude (discrete Fourier transform weighted by the longitude spacing), cos(lat)-weighted mean "
-           "over waves.band (35-65 deg poleward); latitudes with any missing longitude are left out; NaN (too_little_data) "
-           "when the grid does not go round the circle", WAVE_REF)
+           "over waves.band (35-65 deg poleward); latitudes with any missing longitude are left out (at least "
+           "run.min_window_fraction of the band's weight must remain); NaN (too_little_data) when the grid does not go "
+           "round the circle; v interpolated linearly in log-p when 300 hPa is absent (note interpolated_level)",
+           WAVE_REF)
     for k in WAVENUMBERS
 ]
 
@@ -88,6 +95,8 @@ def compute_waviness(fields, cfg):
         enough = arr[:, h, 2] >= cfg["run"]["min_coverage"]
         res.value[:, h] = np.where(enough, arr[:, h, 0], np.nan)
         res.flag[:, h] = np.where(enough, "ok", "too_little_data")
+    if fields.interpolated("ua", cfg["waves"]["jet_level_hpa"], cfg):
+        add_note([res], "interpolated_level")
     return {"jet_waviness": res}
 
 
@@ -129,4 +138,6 @@ def compute_waves(fields, cfg):
         for k, m in enumerate(WAVE_METRICS):
             out[m.id].value[:, h] = np.where(enough[:, k], mean[:, k], np.nan)
             out[m.id].flag[:, h] = np.where(enough[:, k], "ok", "too_little_data")
+    if fields.interpolated("va", w["level_hpa"], cfg):
+        add_note(out.values(), "interpolated_level")
     return out

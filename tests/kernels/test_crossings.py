@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from circtrack.kernels.crossings import first_crossing, level_crossing, reverse
+from circtrack.kernels.crossings import find_crossing, first_crossing, level_crossing, reverse
 
 
 def test_straight_line_zero_is_exact_on_nonuniform_grid():
@@ -65,12 +65,40 @@ def test_no_crossing_is_nan():
     assert np.isnan(first_crossing(np.ones(1), np.zeros(1), 0))
 
 
-def test_nan_points_never_cross():
+def test_nan_points_never_cross_and_the_search_stops_at_a_gap():
+    # Changed rule (issue 12): a search that meets a missing point before any sign change gives NaN
+    # (crossing_in_data_gap) instead of taking the next crossing beyond the gap (4.5 before), since
+    # the zero may lie hidden in the gap.
     x = np.arange(6.0)
-    # the sign change 1 -> NaN -> -1 across index 2 is not a crossing; the next proper one is at 4.5
     y = np.array([1.0, 1.0, np.nan, -1.0, 1.0, -1.0])
-    assert first_crossing(y, x, 0) == pytest.approx(4.5)
-    assert np.isnan(first_crossing(np.full(6, np.nan), x, 0))
+    assert np.isnan(first_crossing(y, x, 0))
+    c = find_crossing(y, x, 0)
+    assert np.isnan(c.position) and c.reason == "crossing_in_data_gap"
+    # a gap after the crossing does not matter; a gap beyond `stop` is never reached
+    y2 = np.array([1.0, -1.0, np.nan, -1.0, 1.0, -1.0])
+    assert find_crossing(y2, x, 0).position == pytest.approx(0.5)
+    y3 = np.array([2.0, 1.0, 0.5, np.nan, -1.0, -1.0])
+    c3 = find_crossing(y3, x, 0, stop=1.5)
+    assert np.isnan(c3.position) and c3.reason == "no_sign_change_in_window"
+    # the segment from 2 (inside the window) to the missing 3 could hold a zero before stop = 2.5
+    assert find_crossing(y3, x, 0, stop=2.5).reason == "crossing_in_data_gap"
+    assert find_crossing(np.full(6, np.nan), x, 0).reason == "crossing_in_data_gap"
+
+
+def test_crossing_reasons_batch_gap_pole_none_ok():
+    # rows: ok; sign change straddling a gap; sign change onto the pole row; no sign change at all
+    lat = np.array([60.0, 65.0, 70.0, 75.0, 80.0, 85.0, 90.0])
+    y = np.array([[1.0, 0.5, -0.5, -1.0, -1.0, -1.0, -1.0],
+                  [0.4, np.nan, np.nan, -0.38, -1.0, -1.0, -1.0],
+                  [1.0, 1.0, 1.0, 1.0, 1.0, 0.5, 0.0],
+                  [1.0, 1.0, 1.0, 1.0, 1.0, 1.0, 1.0]])
+    c = find_crossing(y, lat, np.zeros(4, int), direction="down")
+    assert c.position[0] == pytest.approx(67.5)
+    assert np.all(np.isnan(c.position[1:]))
+    assert list(c.reason) == ["ok", "crossing_in_data_gap", "crossing_at_pole_row", "no_sign_change_in_window"]
+    # the same on the mirrored (southern) grid: the pole row is -90
+    ry, rx, ridx = reverse(y[2:3, ::-1], -lat[::-1], np.array([6]))
+    assert find_crossing(ry, rx, ridx).reason[0] == "crossing_at_pole_row"
 
 
 def test_level_crossing_of_line():
@@ -90,3 +118,13 @@ def test_reverse_searches_towards_smaller_x():
     assert -first_crossing(ry, rx, ridx) == pytest.approx(0.5)
     assert first_crossing(y, x, 3) == pytest.approx(5.5)
     assert reverse(y, x, -1)[2] == -1
+
+
+def test_pole_row_zero_within_rounding_counts_as_zero():
+    # the zonal mean of a wind component on a pole row is zero up to rounding (4e-10 m/s on a real
+    # monthly file, float32 values averaged in float64): the step onto it is a crossing at the pole row
+    lat = np.array([80.0, 85.0, 87.5, 90.0])
+    c = find_crossing(np.array([2.4, 1.5, 0.96, 4.1e-10]), lat, 0)
+    assert c.reason == "crossing_at_pole_row" and np.isnan(c.position)
+    # a clearly positive pole value is no sign change
+    assert find_crossing(np.array([2.4, 1.5, 0.96, 0.3]), lat, 0).reason == "no_sign_change_in_window"

@@ -82,6 +82,31 @@ def test_partial_nan_valid_fraction_and_no_refinement_next_to_nan():
     e = window_extremum(y, x, 0.0, 5.0)
     assert e.valid_fraction == pytest.approx(5 / 6)
     assert e.position == 2.0 and e.value == 3.0    # neighbour NaN: grid value, not refined
+    # the rule every metric applies (issue 12): an extremum next to a missing point is not trusted
+    assert e.next_to_gap and e.reason(0.5) == "extremum_next_to_missing_data"
+
+
+def test_extremum_reasons_in_order():
+    lat = np.array([50.0, 60.0, 70.0, 80.0, 90.0])
+    y = np.array([[0.0, 2.0, 1.0, 0.5, 0.0],          # ok (interior, neighbours valid)
+                  [0.0, 1.0, 2.0, 3.0, 4.0],          # on the pole row, also the window's edge
+                  [0.0, 1.0, 3.0, np.nan, 0.0],       # next to a missing point
+                  [3.0, 1.0, 0.0, 0.0, 0.0],          # on the window's first point
+                  [np.nan, np.nan, 1.0, np.nan, np.nan]])   # too little data
+    e = window_extremum(y, lat, 50.0, 90.0)
+    assert list(e.reason(0.5)) == ["ok", "extremum_at_window_edge", "extremum_next_to_missing_data",
+                                   "extremum_at_window_edge", "too_little_data"]
+    # a pole row inside a window reaching past it (a window edge beyond the data): the pole rule names it
+    e = window_extremum(y[1:2], lat, 50.0, 95.0)
+    assert e.at_pole[0] and e.reason(0.5)[0] in ("extremum_at_pole_row", "extremum_at_window_edge")
+    # the missing neighbour may lie just outside the window: still next to missing data
+    y2 = np.array([0.0, 1.0, 3.0, 1.0, np.nan])
+    assert window_extremum(y2, lat, 50.0, 80.0).reason(0.5) == "ok"
+    y3 = np.array([np.nan, 1.0, 3.0, 0.5, 0.0])
+    assert window_extremum(y3, lat, 65.0, 85.0).reason(0.5) == "extremum_at_window_edge"
+    assert window_extremum(y3, lat, 55.0, 85.0).reason(0.5) == "ok"
+    y4 = np.array([1.0, np.nan, 3.0, 0.5, 0.0])
+    assert window_extremum(y4, lat, 50.0, 85.0).reason(0.5) == "extremum_next_to_missing_data"
 
 
 def test_interp_at():

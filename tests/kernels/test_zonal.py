@@ -71,22 +71,41 @@ def test_fourier_amplitudes_missing_longitude_gives_nan():
 
 def test_layer_weights_hand_calculation():
     p = np.arange(100.0, 1001.0, 100.0)
-    # layers: [0, 150], then 100 hPa each, the lowest level's half layer [950, 1000]
-    np.testing.assert_allclose(Z.layer_weights(p), [150] + [100] * 8 + [50])
+    # default top rule (issue 12): the column starts at the top data level: [100, 150], then 100 hPa
+    # each, the lowest level's half layer [950, 1000]
+    np.testing.assert_allclose(Z.layer_weights(p), [50] + [100] * 8 + [50])
+    # the old form: the top level also stands for [0, 100]
+    np.testing.assert_allclose(Z.layer_weights(p, "constant_above_top"), [150] + [100] * 8 + [50])
     f = np.random.default_rng(1).normal(size=p.size)
-    # same quadrature as the streamfunction integral (top slab + trapezoids)
-    assert np.sum(Z.layer_weights(p) * f) == pytest.approx(cumulative_pressure_integral(f, p)[-1], rel=1e-12)
+    # same quadrature as the streamfunction integral, under either rule
+    for top in ("zero_at_top_level", "constant_above_top"):
+        assert np.sum(Z.layer_weights(p, top) * f) == pytest.approx(cumulative_pressure_integral(f, p, top)[-1],
+                                                                   rel=1e-12)
 
 
 def test_column_sums_leave_out_below_ground():
-    p = np.array([200.0, 500.0, 1000.0])                   # weights 350, 400, 250
+    p = np.array([200.0, 500.0, 1000.0])                   # weights 150, 400, 250 (350, 400, 250 with the old top)
     v = np.array([1.0, 2.0, np.nan])[:, None, None]
     e = np.array([10.0, 20.0, 30.0])[:, None, None]
     sve, sv, se, sw = (x[0, 0] for x in Z.column_sums(v, e, p))
-    assert sve == pytest.approx(350 * 10 + 400 * 2 * 20)
-    assert sv == pytest.approx(350 + 800)
-    assert se == pytest.approx(350 * 10 + 400 * 20)
-    assert sw == pytest.approx(750)
+    assert sve == pytest.approx(150 * 10 + 400 * 2 * 20)
+    assert sv == pytest.approx(150 + 800)
+    assert se == pytest.approx(150 * 10 + 400 * 20)
+    assert sw == pytest.approx(550)
+    sve, sv, se, sw = (x[0, 0] for x in Z.column_sums(v, e, p, "constant_above_top"))
+    assert (sve, sv, se, sw) == (pytest.approx(350 * 10 + 400 * 2 * 20), pytest.approx(1150), pytest.approx(350 * 10 + 400 * 20),
+                                 pytest.approx(750))
+
+
+def test_humidity_missing_aloft_counts_as_zero_above_the_ground():
+    # q missing at 100 and 200 hPa (shipped only up to 300 hPa), and at 1000 hPa where the ground is
+    # (t missing there too): aloft q = 0, below the ground it stays missing
+    t = np.array([210.0, 220.0, 240.0, 260.0, np.nan])[:, None, None]
+    q = np.array([np.nan, np.nan, 1e-4, 5e-3, np.nan])[:, None, None]
+    filled_q, filled = Z.humidity_filled_aloft(q, t)
+    np.testing.assert_array_equal(filled[:, 0, 0], [True, True, False, False, False])
+    assert filled_q[0, 0, 0] == 0.0 and filled_q[1, 0, 0] == 0.0 and filled_q[3, 0, 0] == 5e-3
+    assert np.isnan(filled_q[4, 0, 0])
 
 
 def _meandering_jet(lat, lon, centre):

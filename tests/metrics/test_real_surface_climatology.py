@@ -97,3 +97,79 @@ def test_through_the_command_line(tmp_path):
     side = json.loads(open(sidecar_path(str(out))).read())
     assert side["calendar"] == "proleptic_gregorian"
     assert "year 0" in side["inputs"][0]["found_by"]["time"]
+
+
+# --------------------------------------------------------------------------- gaps and pole rows (issue 12)
+def _numpy_zonal(path, var, ylat):
+    """Zonal means over valid longitudes with points of less than half the longitudes valid missing
+    (run.min_coverage), latitudes ascending: (lat, [x] (T, J))."""
+    import netCDF4
+
+    with netCDF4.Dataset(path) as f:
+        lat = np.asarray(f[ylat][:], float)
+        x = np.ma.masked_invalid(f[var][:])
+    cov = x.count(axis=-1) / x.shape[-1]
+    zm = np.where(cov >= 0.5, x.mean(axis=-1).filled(np.nan), np.nan)
+    o = np.argsort(lat)
+    return lat[o], zm[:, o]
+
+
+def _after_westerly_max(lat, u):
+    """From the NH [uas] maximum in 25-70 N: the values poleward of it, up to and including the first
+    negative valid value, as (lat, value) pairs."""
+    win = (lat >= 25) & (lat <= 70)
+    k = int(np.nanargmax(np.where(win, u, -np.inf)))
+    if k in (np.flatnonzero(win)[0], np.flatnonzero(win)[-1]):
+        return [(lat[k], np.nan)]                    # maximum on the window's edge: not a case for these checks
+    out = []
+    for j in range(k, lat.size):
+        out.append((lat[j], u[j]))
+        if np.isfinite(u[j]) and u[j] < 0:
+            break
+    return out
+
+
+def test_no_crossing_taken_across_a_data_gap(table):
+    # coads_climatology, February: [uas] stays positive poleward of the westerly maximum up to a latitude
+    # band with too few valid longitudes (land), and turns negative only beyond it. The zero lies somewhere
+    # in the gap: NaN, crossing_in_data_gap (before: 58.9 N flagged ok, taken beyond the gap)
+    rows, _ = table
+    lat, u = _numpy_zonal(PATH, "UWND", "COADSY")
+    walk = _after_westerly_max(lat, u[1])
+    values = np.array([v for _, v in walk])
+    assert np.isnan(values).any() and values[-1] < 0                     # a gap before the sign change
+    first_gap = int(np.flatnonzero(np.isnan(values))[0])
+    assert np.all(values[:first_gap] > 0)                                 # no sign change before the gap
+    out = engine.track([PATH], config.load(), metric_ids=["polar_easterly_edge_lat"])
+    got = {(out.columns["time"][i][5:7], out.columns["hemisphere"][i]): (out.columns["value"][i], out.columns["flag"][i])
+           for i in range(len(out.columns["metric"]))}
+    value, flag = got[("02", "NH")]
+    assert np.isnan(value) and flag == "crossing_in_data_gap"
+
+
+NAVY = next((p for p in [c.replace("coads_climatology", "monthly_navy_winds") for c in CANDIDATES]
+             if os.path.exists(p)), None)
+
+
+@pytest.mark.skipif(NAVY is None, reason="monthly_navy_winds.cdf (Debian ferret-datasets) not installed")
+def test_no_crossing_taken_onto_the_pole_row():
+    # monthly_navy_winds.cdf (ferret-datasets, 2.5-degree grid with a 90 N row): in some months the
+    # first sign change poleward of the westerly maximum is the step onto the pole row, where the zonal
+    # mean of a wind component is not defined: NaN, crossing_at_pole_row (before: 90.0 flagged ok)
+    lat, u = _numpy_zonal(NAVY, "UWND", "FNOCY")
+    onto_pole = []
+    for t in range(u.shape[0]):
+        walk = _after_westerly_max(lat, u[t])
+        vals = np.array([v for _, v in walk])
+        if np.all(np.isfinite(vals)) and walk[-1][0] == 90.0 and vals[-1] <= 0 and np.all(vals[:-1] > 0):
+            onto_pole.append(t)
+    assert len(onto_pole) >= 3
+    out = engine.track([NAVY], config.load(), metric_ids=["polar_easterly_edge_lat"])
+    c = out.columns
+    got = {c["time"][i]: (float(c["value"][i]), c["flag"][i]) for i in range(len(c["metric"])) if c["hemisphere"][i] == "NH"}
+    times = sorted(got)                                  # the file's time steps, in order
+    assert len(times) == u.shape[0]
+    for t in onto_pole:
+        value, flag = got[times[t]]
+        assert flag == "crossing_at_pole_row" and np.isnan(value), (times[t], value, flag)
+    assert not any(v == 90.0 for v, _ in got.values())

@@ -13,7 +13,8 @@ from circtrack.constants import CP_DRY, EARTH_RADIUS, GRAVITY, LATENT_HEAT_VAPOR
 LAT = np.arange(-90.0, 90.1, 1.0)
 LON = np.arange(0.0, 360.0, 10.0)
 LAM = np.deg2rad(LON)
-PLEV = np.arange(100.0, 1001.0, 100.0)       # hPa; layer weights 150, 100 x 8, 50 hPa
+PLEV = np.arange(100.0, 1001.0, 100.0)       # hPa; layer weights 50, 100 x 8, 50 hPa (the top data level is the
+                                             # top of the column, cells.top = "zero_at_top_level")
 
 
 def _times(n, step_days):
@@ -69,6 +70,9 @@ def test_eddy_momentum_flux_known_answer(tmp_path, step_days, flag):
     path = _write(tmp_path / "eddy.nc", _eddy_winds(), _times(3, step_days))
     out = engine.track([path], config.load(), metric_ids=["eddy_momentum_flux_lat", "eddy_momentum_flux_max"])
     t = _table(out)
+    # 250 hPa is not among the file's levels (every 100 hPa): the winds are interpolated in log-p, which
+    # the flag's note says (issue 12); the interpolation is exact here (the fields do not vary with p)
+    flag = flag + ";interpolated_level"
     assert _first(t, "NH", "eddy_momentum_flux_lat") == (pytest.approx(32.0, abs=0.02), flag)
     assert _first(t, "SH", "eddy_momentum_flux_lat") == (pytest.approx(-35.0, abs=0.02), flag)
     assert _first(t, "NH", "eddy_momentum_flux_max")[0] == pytest.approx(40.0, abs=0.05)
@@ -79,7 +83,8 @@ def test_eddy_momentum_flux_known_answer(tmp_path, step_days, flag):
 def test_eddy_momentum_flux_single_time_step_is_flagged(tmp_path):
     path = _write(tmp_path / "one.nc", _eddy_winds(), _times(1, 1.0))
     t = _table(engine.track([path], config.load(), metric_ids=["eddy_momentum_flux_lat"]))
-    assert _first(t, "NH", "eddy_momentum_flux_lat") == (pytest.approx(32.0, abs=0.02), "time_step_unknown")
+    assert _first(t, "NH", "eddy_momentum_flux_lat") == (pytest.approx(32.0, abs=0.02),
+                                                         "time_step_unknown;interpolated_level")
 
 
 def test_eddy_momentum_flux_level_missing(tmp_path):
@@ -92,7 +97,7 @@ def test_eddy_momentum_flux_level_missing(tmp_path):
 
 
 # --------------------------------------------------------------------------- energy transport
-UPPER = PLEV <= 500.0          # layers 0-550 hPa: 150 + 4 x 100 = 550 hPa of mass
+UPPER = PLEV <= 500.0          # layers 100-550 hPa: 50 + 4 x 100 = 450 hPa of mass (0-550 hPa with the old top rule)
 T_UP, Z_UP, Q_UP = 230.0, 9000.0, 0.0005
 T_LO, Z_LO, Q_LO = 280.0, 1500.0, 0.008
 
@@ -109,11 +114,16 @@ def _hadley_like(sigma, *, v_offset=0.0, t_offset=0.0):
             "hus": col(Q_UP, Q_LO)}
 
 
-def _expected_energy():
+def _expected_energy(top="zero_at_top_level"):
     e_up = CP_DRY * T_UP + GRAVITY * Z_UP + LATENT_HEAT_VAPORIZATION * Q_UP
     e_lo = CP_DRY * T_LO + GRAVITY * Z_LO + LATENT_HEAT_VAPORIZATION * Q_LO
-    # integral of [v E] dp = 4.5 * 55000 Pa * E_up - 5.5 * 45000 Pa * E_lo = 247500 (E_up - E_lo) per unit sigma
-    return 247500.0 * (e_up - e_lo)
+    if top == "constant_above_top":
+        # integral of [v E] dp = 4.5 * 55000 Pa * E_up - 5.5 * 45000 Pa * E_lo = 247500 (E_up - E_lo) per unit sigma
+        return 247500.0 * (e_up - e_lo)
+    # from the top data level (issue 12): 45000 Pa of upper and 45000 Pa of lower air; the column carries
+    # (4.5 - 5.5) * 45000 = -45000 Pa m/s of net mass flux, removed at the section's mean energy
+    # (E_up + E_lo)/2: 45000 (4.5 E_up - 5.5 E_lo) + 45000 (E_up + E_lo)/2 = 225000 (E_up - E_lo)
+    return 225000.0 * (e_up - e_lo)
 
 
 def _sigma():
@@ -132,10 +142,37 @@ def test_energy_transport_known_answer(tmp_path):
     path = _write(tmp_path / "mse.nc", _hadley_like(_sigma()), _times(2, 0.25))
     t = _table(engine.track([path], config.load(), metric_ids=METRICS))
     expected_pw = 2 * np.pi * EARTH_RADIUS / GRAVITY * _expected_energy() / 1e15
-    assert expected_pw == pytest.approx(4.607, abs=0.01)      # hand arithmetic of the numbers above
+    assert expected_pw == pytest.approx(4.188, abs=0.01)      # hand arithmetic of the numbers above
     for hemi, s in (("NH", 1), ("SH", -1)):
         assert _first(t, hemi, "energy_transport_max_lat") == (pytest.approx(40.0 * s, abs=0.02), "ok")
         assert _first(t, hemi, "energy_transport_max") == (pytest.approx(expected_pw, rel=1e-3), "ok")
+
+
+def test_energy_transport_old_top_rule_and_no_balance(tmp_path):
+    # cells.top = "constant_above_top": the top level stands for 0-150 hPa, the column balances
+    # (4.5 x 550 = 5.5 x 450 hPa) and the old answer 4.607 PW comes back
+    path = _write(tmp_path / "mse.nc", _hadley_like(_sigma()), _times(2, 0.25))
+    cfg = config.load()
+    cfg["cells"]["top"] = "constant_above_top"
+    t = _table(engine.track([path], cfg, metric_ids=METRICS))
+    old_pw = 2 * np.pi * EARTH_RADIUS / GRAVITY * _expected_energy("constant_above_top") / 1e15
+    assert old_pw == pytest.approx(4.607, abs=0.01)
+    assert _first(t, "NH", "energy_transport_max") == (pytest.approx(old_pw, rel=1e-3), "ok")
+    # cells.balance = "none": no mass correction; the column's net flux carries its energy along:
+    # integral [v E] dp = 45000 (4.5 E_up - 5.5 E_lo) per unit sigma, negative, so with the overturning
+    # reversed (-sigma) the uncorrected transport is poleward in both hemispheres, peaking at +-40 deg
+    reversed_path = _write(tmp_path / "rev.nc", _hadley_like(-_sigma()), _times(2, 0.25))
+    cfg = config.load()
+    cfg["cells"]["balance"] = "none"
+    t = _table(engine.track([reversed_path], cfg, metric_ids=METRICS))
+    e_up = CP_DRY * T_UP + GRAVITY * Z_UP + LATENT_HEAT_VAPORIZATION * Q_UP
+    e_lo = CP_DRY * T_LO + GRAVITY * Z_LO + LATENT_HEAT_VAPORIZATION * Q_LO
+    raw = 45000.0 * (4.5 * e_up - 5.5 * e_lo)
+    assert raw < 0
+    for hemi, s in (("NH", 1), ("SH", -1)):
+        assert _first(t, hemi, "energy_transport_max") == (
+            pytest.approx(-2 * np.pi * EARTH_RADIUS / GRAVITY * raw / 1e15, rel=1e-3), "ok")
+        assert _first(t, hemi, "energy_transport_max_lat")[0] == pytest.approx(40.0 * s, abs=0.02)
 
 
 def test_mass_correction_removes_net_mass_flux_and_energy_offset(tmp_path):
@@ -160,8 +197,8 @@ def test_energy_transport_from_monthly_means_is_flagged(tmp_path):
 def test_energy_transport_below_ground_left_out(tmp_path):
     # the 1000 hPa level is below the ground everywhere: it takes its own half layer (950-1000 hPa)
     # with it, as in the streamfunction integral where below-ground wind counts as zero; the other
-    # weights stay (150, 100 x 8 hPa), so the upper air is 550 hPa deep and the lower 400 hPa
-    # (600, 700, 800, 900 hPa). Now 4.5 x 55000 - 5.5 x 40000 = 27500 Pa m/s of net northward mass
+    # weights stay (50, 100 x 8 hPa), so the upper air is 450 hPa deep and the lower 400 hPa
+    # (600, 700, 800, 900 hPa). Now 4.5 x 45000 - 5.5 x 40000 = -17500 Pa m/s of net northward mass
     # flux, which the correction removes at the section's mean energy.
     f = _hadley_like(_sigma())
     f = {k: np.array(v, dtype=float) for k, v in f.items()}
@@ -171,10 +208,10 @@ def test_energy_transport_below_ground_left_out(tmp_path):
     t = _table(engine.track([path], config.load(), metric_ids=METRICS))
     e_up = CP_DRY * T_UP + GRAVITY * Z_UP + LATENT_HEAT_VAPORIZATION * Q_UP
     e_lo = CP_DRY * T_LO + GRAVITY * Z_LO + LATENT_HEAT_VAPORIZATION * Q_LO
-    s_ve = 4.5 * 55000 * e_up - 5.5 * 40000 * e_lo
-    s_v = 4.5 * 55000 - 5.5 * 40000
-    s_e = 55000 * e_up + 40000 * e_lo
-    corrected = s_ve - s_v * s_e / 95000.0
+    s_ve = 4.5 * 45000 * e_up - 5.5 * 40000 * e_lo
+    s_v = 4.5 * 45000 - 5.5 * 40000
+    s_e = 45000 * e_up + 40000 * e_lo
+    corrected = s_ve - s_v * s_e / 85000.0
     expected = 2 * np.pi * EARTH_RADIUS / GRAVITY * corrected / 1e15
     assert _first(t, "NH", "energy_transport_max")[0] == pytest.approx(expected, rel=1e-3)
     uncorrected = 2 * np.pi * EARTH_RADIUS / GRAVITY * s_ve / 1e15
