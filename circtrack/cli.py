@@ -21,8 +21,9 @@ def main(debug):
 def _run_track(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
                repeated_times=None, cores_by_longitude=None):
     from circtrack import config as C
-    from circtrack import engine, output as O
+    from circtrack import engine, guards as G, output as O
     from circtrack.cluster import scheduler_context
+    from circtrack.inputs.files import expand
 
     if workers and scheduler:
         raise UsageError("--workers and --scheduler exclude each other; give one")
@@ -33,32 +34,43 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
         cfg["run"]["on_bad_file"] = on_bad_file          # so the sidecar records the policy used
     ids = [m.strip() for m in metrics.split(",") if m.strip()] if metrics else None
     secs = [engine.parse_sector(s) for s in sectors]
-    O.check_output_path(output)
+    G.check_cli_labels(label, sectors, secs)
+    target = O.check_output_path(output)
+    G.refuse_data_file_as_output(output)
+    files = expand(list(paths))             # before anything is read: OUT must not be an input
+    outputs = [("-o", output)] + ([("the sidecar of -o", O.sidecar_path(target.path))] if target.kind == "file" else [])
     if cores_by_longitude:
-        _check_side_file(cores_by_longitude, output)
+        side = _check_side_file(cores_by_longitude)
+        outputs += [("--cores-by-longitude", side), ("the sidecar of --cores-by-longitude", O.sidecar_path(side))]
+    G.refuse_outputs_among_inputs(outputs, files)
+    stamps = G.input_stamps(files)
     prog = engine.Progress(quiet=quiet)
     with scheduler_context(workers, scheduler, cfg):
-        outcome = engine.track(list(paths), cfg, metric_ids=ids, label=label, sectors=secs,
+        outcome = engine.track(files, cfg, metric_ids=ids, label=label, sectors=secs,
                                overrides=parse_vars(variables), progress=prog, on_bad_file=on_bad_file,
                                cores_by_longitude=bool(cores_by_longitude))
-    O.write(outcome, output, cfg, argv=["circtrack", *sys.argv[1:]])
-    if cores_by_longitude:
-        O.write(outcome.tables["cores_by_longitude"], cores_by_longitude, cfg, argv=["circtrack", *sys.argv[1:]])
+    G.refuse_changed_inputs(stamps)
+    tables = [(outcome.tables["cores_by_longitude"], cores_by_longitude)] if cores_by_longitude else []
+    O.write(outcome, output, cfg, argv=["circtrack", *sys.argv[1:]], tables=tables)
     prog.done(len(outcome.columns["metric"]))
     return outcome
 
 
-def _check_side_file(path, output):
-    """``--cores-by-longitude FILE``: a file of its own (not stdout, not OUT)."""
+def _check_side_file(path):
+    """``--cores-by-longitude FILE``: a regular file of its own in a writable directory; its real path."""
     import os
 
     from circtrack import output as O
 
-    if path == "-":
-        raise UsageError("--cores-by-longitude -: give a file name (stdout holds the main rows with -o -)")
-    if output != "-" and os.path.abspath(path) == os.path.abspath(output):
-        raise UsageError(f"--cores-by-longitude {path}: the same file as -o; give another name, e.g. cores_by_lon.csv")
-    O.check_output_path(path)
+    t = O.resolve_target(path)
+    if t.kind != "file":
+        raise UsageError(f"--cores-by-longitude {path}: give the name of a regular file (not -, a directory, "
+                         "a device or a pipe), e.g. cores_by_lon.csv")
+    d = os.path.dirname(t.path)
+    if not os.path.isdir(d) or not os.access(d, os.W_OK | os.X_OK):
+        raise UsageError(f"--cores-by-longitude {path}: the directory {d} does not exist or is not writable; "
+                         f"create it first (mkdir -p {d}) or choose another")
+    return t.path
 
 
 @main.command()

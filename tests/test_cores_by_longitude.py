@@ -127,7 +127,8 @@ def test_cli_misuse(tmp_path):
     path = write(tmp_path / "jets.nc", field())
     out = tmp_path / "idx.csv"
     one_error(invoke("track", path, "-o", out, "--cores-by-longitude", out), 2, "same file as -o")
-    one_error(invoke("track", path, "-o", out, "--cores-by-longitude", "-"), 2, "give a file name")
+    one_error(invoke("track", path, "-o", out, "--cores-by-longitude", "-"), 2, "regular file")
+    one_error(invoke("track", path, "-o", out, "--cores-by-longitude", path), 2, "would destroy that input")
     one_error(invoke("track", path, "-o", out, "--cores-by-longitude", tmp_path / "no" / "c.csv"), 2, "does not exist")
     assert not out.exists()
     assert invoke("track", path, "-o", out, "-q").exit_code == 0
@@ -202,3 +203,13 @@ def test_bad_core_settings_are_refused_before_reading(tmp_path, line, words):
     out = tmp_path / "idx.csv"
     one_error(invoke("track", path, "-o", out, "-c", cfg, "-q"), 2, *words)
     assert not out.exists()
+
+
+def test_table_beside_rows_on_stdout(tmp_path):
+    path = write(tmp_path / "jets.nc", field())
+    cores = tmp_path / "cores.csv"
+    r = invoke("track", path, "-o", "-", "--cores-by-longitude", cores, "-q", "--metrics", "subtropical_jet_core_lat")
+    assert r.exit_code == 0, r.output
+    assert r.stdout.splitlines()[0] == "source,time,hemisphere,sector,metric,value,units,flag"
+    assert cores.read_text().splitlines()[0] == "source,time,hemisphere,lon,metric,value,units,flag"
+    assert (tmp_path / "cores.provenance.json").exists()
