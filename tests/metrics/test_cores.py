@@ -36,7 +36,8 @@ def field(eddy_nh=50.0, *, sh=True):
 def write(path, u, *, plev=PLEV, ntime=2):
     t = np.array([cftime.num2date(i, "days since 2001-01-01", "noleap") for i in range(ntime)])
     full = np.broadcast_to(u[None], (ntime,) + u.shape).astype("float32")
-    ds = xr.Dataset({"ua": (("time", "plev", "lat", "lon"), full, {"standard_name": "eastward_wind", "units": "m s-1"})},
+    attrs = {"standard_name": "eastward_wind", "units": "m s-1"}
+    ds = xr.Dataset({"ua": (("time", "plev", "lat", "lon"), full, attrs)},
                     coords={"time": t, "plev": ("plev", plev, {"units": "hPa", "axis": "Z"}),
                             "lat": ("lat", LAT, {"units": "degrees_north"}),
                             "lon": ("lon", LON, {"units": "degrees_east"})})
