@@ -21,7 +21,7 @@ def main(debug):
 
 def _run_track(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
                repeated_times=None, units=(), levels=(), fail_on_empty=False, anonymous=False, cache_dir=None,
-               profile=False):
+               profile=False, cores_by_longitude=None):
     from circtrack import config as C
     from circtrack import engine, guards as G, output as O
     from circtrack.cluster import scheduler_context
@@ -41,6 +41,9 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
     G.refuse_data_file_as_output(output)
     files = expand(list(paths), cfg=cfg)    # before anything is read: OUT must not be an input
     outputs = [("-o", output)] + ([("the sidecar of -o", O.sidecar_path(target.path))] if target.kind == "file" else [])
+    if cores_by_longitude:
+        side = _check_side_file(cores_by_longitude)
+        outputs += [("--cores-by-longitude", side), ("the sidecar of --cores-by-longitude", O.sidecar_path(side))]
     G.refuse_outputs_among_inputs(outputs, files)
     stamps = G.input_stamps(files, cfg)
     prog = engine.Progress(quiet=quiet)
@@ -49,10 +52,12 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
     try:
         with scheduler_context(workers, scheduler, cfg):
             outcome = engine.track(files, cfg, metric_ids=ids, label=label, sectors=secs,
-                                   overrides=parse_vars(variables), progress=prog, on_bad_file=on_bad_file)
+                                   overrides=parse_vars(variables), progress=prog, on_bad_file=on_bad_file,
+                                   cores_by_longitude=bool(cores_by_longitude))
         G.refuse_changed_inputs(stamps, cfg)
         with PR.timed(PR.STAGES, "write CSV and provenance"):
-            O.write(outcome, output, cfg, argv=["circtrack", *sys.argv[1:]])
+            tables = [(outcome.tables["cores_by_longitude"], cores_by_longitude)] if cores_by_longitude else []
+            O.write(outcome, output, cfg, argv=["circtrack", *sys.argv[1:]], tables=tables)
         if profile:
             click.echo(PR.table(), err=True)
     finally:
@@ -63,10 +68,30 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
     return outcome
 
 
+def _check_side_file(path):
+    """``--cores-by-longitude FILE``: a regular file of its own in a writable directory; its real path."""
+    import os
+
+    from circtrack import output as O
+
+    t = O.resolve_target(path)
+    if t.kind != "file":
+        raise UsageError(f"--cores-by-longitude {path}: give the name of a regular file (not -, a directory, "
+                         "a device or a pipe), e.g. cores_by_lon.csv")
+    d = os.path.dirname(t.path)
+    if not os.path.isdir(d) or not os.access(d, os.W_OK | os.X_OK):
+        raise UsageError(f"--cores-by-longitude {path}: the directory {d} does not exist or is not writable; "
+                         f"create it first (mkdir -p {d}) or choose another")
+    return t.path
+
+
 @main.command()
 @track_options
 @click.option("--profile", is_flag=True,
               help="Print to stderr where the time went: each stage, each part of the reduce tasks, each family.")
+@click.option("--cores-by-longitude", "cores_by_longitude", default=None, metavar="FILE.csv",
+              help="Also write the jet cores at every longitude (or [cores] longitude_band_deg band) to this tidy "
+                   "CSV, with a lon key column (for maps; 'circtrack plot --cores-strip FILE.csv' draws it).")
 @guarded
 def track(**kw):
     """Compute circulation indices from PATH... (files, directories, globs, or - for a list on stdin)."""

@@ -234,19 +234,37 @@ def season(csv_path, output, base, anomalies, metrics, calendar):
               help="Instead of a CSV: the latitude-pressure cross-section of one time step of this data file "
                    "([u], streamfunction, detected Hadley edges and jets).")
 @click.option("--time", "time", default=None, metavar="DATE",
-              help="With --section: the time step, as in the CSV 'time' column (default: the first).")
+              help="With --section: the time step, as in the CSV 'time' column (default: the first); with "
+                   "--cores-strip: the time step drawn (default: the mean over all).")
 @click.option("--log-pressure", is_flag=True, help="With --section: logarithmic pressure axis.")
 @click.option("-c", "--config", "config", default=None, help="With --section: TOML config, as for 'track'.")
 @click.option("--var", "variables", multiple=True, metavar="ROLE=NAME", help="With --section: as for 'track'.")
+@click.option("--cores-strip", "cores_strip", default=None, metavar="CORES.csv",
+              help="Instead of a CSV of indices: the jet cores per longitude written by 'track --cores-by-longitude' "
+                   "(longitude x, core latitude y, speed as colour) at --time DATE, or the mean over its time steps.")
 @guarded
 def plot(csv_path, output, metrics, poleward_positive, min_years, calendar, section, time, log_pressure, config,
-         variables):
+         variables, cores_strip):
     """Time series with OLS trend and 95 % band, and the monthly seasonal cycle, per metric, one page per
     metric family; or, with --section DATAFILE, the latitude-pressure cross-section of one time step with
     the detected positions."""
     from circtrack import plots
     from circtrack import stats as S
 
+    if cores_strip:
+        from circtrack import plots_cores as PC
+
+        src = click.get_current_context().get_parameter_source("poleward_positive")
+        named = src is not None and src.name == "COMMANDLINE"
+        PC.check_strip_options(cores_strip, {"CSV": csv_path, "--section": section, "--metrics": metrics,
+                                             "--poleward-positive/--degrees-north": named,
+                                             "--min-years": min_years, "--calendar": calendar,
+                                             "--log-pressure": log_pressure, "-c/--config": config,
+                                             "--var": variables})
+        if os.path.splitext(output)[1].lower().lstrip(".") not in plots.FORMATS:
+            raise UsageError(f"-o {output}: unknown figure format; end the name with .png, .pdf or .svg")
+        PC.save_strip(PC.load_table(cores_strip), output, time=time)
+        return
     if csv_path and section:
         raise UsageError(f"give either a CSV ({csv_path}) or --section DATAFILE ({section}), not both")
     if not csv_path and not section:

@@ -32,10 +32,15 @@ FLAGS = {
                                   "at more than half the latitudes of the search window, mostly because the level "
                                   "lies below the ground there (surface pressure ps below the level); value is NaN",
     "cells_out_of_order": "the southern cell's minimum lies north of the northern cell's maximum; boundary is NaN",
+    "column_too_short": "the pressure window holds fewer than 3 levels, or the column at the wind maximum fewer than 3 valid levels or the same wind just above or below it, so a jet core cannot be located in the vertical; value is NaN",
+    "weak_jet_core": "the wind maximum in a jet-core window is weaker than cores.min_core_speed_m_s: no jet; value is NaN",
+    "merged_jets": "the subtropical and eddy-driven windows give the same core (one merged jet): reported once, as the subtropical core ('ok;merged_jets'), the eddy-driven core is NaN",
 }
 
 # notes appended after ';' to a flag whose value is kept
 NOTES = {
+    "merged_jets": "the subtropical and eddy-driven jet-core windows give the same core (one merged jet), "
+                   "reported as the subtropical core; the eddy-driven core is NaN with flag merged_jets",
     "provisional_data": "the time step comes from a provisional data stream (expver other than 1) because the final "
                         "one has no data there",
     "unbalanced_column": "the column's net mass flux across a latitude circle (between the equator and "

@@ -56,7 +56,8 @@ def sorted_lines(outcome):
     n = len(cols["metric"])
     sort_keys = []
     for k in reversed(keys):
-        sort_keys.append(outcome.time_order if k == "time" else np.asarray(cols[k], dtype=str))
+        sort_keys.append(outcome.time_order if k == "time" else
+                         np.asarray(cols[k], dtype=float) if k == "lon" else np.asarray(cols[k], dtype=str))
     order = np.lexsort(sort_keys) if n else np.array([], dtype=int)
     names = list(cols)
     lines = [",".join(names)]
@@ -296,15 +297,24 @@ def provenance(outcome, cfg, argv):
     }
 
 
-def write(outcome, out_path, cfg, argv=None):
+def write(outcome, out_path, cfg, argv=None, tables=()):
     """Write the CSV (``-`` for stdout; a device or FIFO as a stream) and, for regular files, the
-    sidecar; both are written and synced to temp files first, then renamed. Returns the sidecar path."""
+    sidecar; both are written and synced to temp files first, then renamed. ``tables``: side tables
+    ``[(Outcome, path)]`` (e.g. ``track --cores-by-longitude``), regular files with their own sidecars,
+    committed together with OUT. Returns the sidecar path."""
+    argv = argv if argv is not None else sys.argv
     text = "\n".join(sorted_lines(outcome)) + "\n"
+    extra = []
+    for t_outcome, t_path in tables:
+        extra += [(t_path, "\n".join(sorted_lines(t_outcome)) + "\n"),
+                  (sidecar_path(t_path), json.dumps(provenance(t_outcome, cfg, argv), indent=2, default=str) + "\n")]
     target = resolve_target(out_path)
     if target.kind != "file":
+        if extra:
+            commit(extra)
         emit(target, text)
         return None
-    prov = provenance(outcome, cfg, argv if argv is not None else sys.argv)
+    prov = provenance(outcome, cfg, argv)
     side = sidecar_path(target.path)
-    commit([(target.path, text), (side, json.dumps(prov, indent=2, sort_keys=False, default=str) + "\n")])
+    commit([(target.path, text), (side, json.dumps(prov, indent=2, sort_keys=False, default=str) + "\n")] + extra)
     return side

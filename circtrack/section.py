@@ -16,10 +16,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from circtrack import plots_cores
 from circtrack.errors import InputError, UsageError
 
 # the rows drawn on the section; each family is run exactly as in 'circtrack track'
-METRIC_IDS = ["hadley_edge_lat", "subtropical_jet_lat", "eddy_jet_lat"]
+METRIC_IDS = ["hadley_edge_lat", "subtropical_jet_lat", "eddy_jet_lat"] + plots_cores.SECTION_IDS
 PSI_UNIT = 1e10          # kg s-1 per contour label unit
 
 
@@ -203,7 +204,7 @@ def _draw_positions(ax, sec):
     return found
 
 
-def _legend(fig, sec, found):
+def _legend(fig, sec, found, extra=()):
     from matplotlib.lines import Line2D
 
     from circtrack.plots import OKABE_ITO
@@ -220,6 +221,7 @@ def _legend(fig, sec, found):
         Line2D([], [], color=OKABE_ITO[3], ls="", marker="D", ms=8, mec="k",
                label=f"eddy-driven jet, max of [u]{low:g}: {', '.join(found['eddy_jet_lat'])}"),
     ]
+    handles += list(extra)                    # e.g. the jet cores (plots_cores.mark_cores)
     # 'outside' with the constrained layout: the legend gets its own band inside the figure, below
     # the axes, in every mode (linear or logarithmic pressure)
     fig.legend(handles=handles, loc="outside lower center", ncol=2, frameon=False)
@@ -255,7 +257,7 @@ def figure(sec, log_pressure=False):
         cb = fig.colorbar(cf, ax=ax, pad=0.02)
         cb.set_label("zonal-mean zonal wind [u] (m s-1)")
         _draw_psi(ax, sec)
-        _legend(fig, sec, _draw_positions(ax, sec))
+        _legend(fig, sec, _draw_positions(ax, sec), extra=plots_cores.mark_cores(ax, sec.rows))
         _pressure_axis(ax, sec, log_pressure)
         ax.set_xlim(sec.lat.min(), sec.lat.max())
         ax.set_xlabel("latitude (degrees_north)")

@@ -465,6 +465,9 @@ def rows(path):
     return [dict(zip(lines[0].split(","), ln.split(","))) for ln in lines[1:]]
 
 
+JET_IDS = ("subtropical_jet_lat", "subtropical_jet_speed", "eddy_jet_lat", "eddy_jet_speed", "eddy_jet_width")
+
+
 def test_all_nan_wind_gives_nan_rows_with_flags(tmp_path):
     def blank_ua(ds):
         ds["ua"].values[...] = np.nan
@@ -475,9 +478,12 @@ def test_all_nan_wind_gives_nan_rows_with_flags(tmp_path):
     r = invoke("track", p, "-o", out, "-q")
     assert r.exit_code == 0, r.output
     got = rows(out)
-    jets = [g for g in got if g["metric"].startswith(("eddy_jet", "subtropical_jet"))]
+    jets = [g for g in got if g["metric"] in JET_IDS]
     assert len(jets) == 3 * 2 * 5                      # 3 months x 2 hemispheres x 5 jet metrics
     assert all(g["value"] == "NaN" and g["flag"] == "too_little_data" for g in jets)
+    cores = [g for g in got if "_jet_core_" in g["metric"]]
+    assert len(cores) == 3 * 2 * 6 + 3 * 2 * 4         # cores (6 ids) and their per-longitude spreads (4)
+    assert all(g["value"] == "NaN" and g["flag"] == "too_little_data" for g in cores)
     # the streamfunction needs only va, which is intact: the Hadley edges are still exact
     edges = [g for g in got if g["metric"] == "hadley_edge_lat"]
     assert len(edges) == 6 and all(g["flag"] == "ok" for g in edges)
@@ -490,7 +496,7 @@ def test_missing_lower_levels_give_nan_rows_with_level_missing(tmp_path):
     r = invoke("track", p, "-o", out, "-q")
     assert r.exit_code == 0, r.output
     got = rows(out)
-    low = [g for g in got if g["metric"].startswith(("eddy_jet", "subtropical_jet"))]
+    low = [g for g in got if g["metric"] in JET_IDS]
     assert len(low) == 30 and all(g["value"] == "NaN" and g["flag"] == "level_missing" for g in low)
     edges = [g for g in got if g["metric"] == "hadley_edge_lat"]
     # without the levels below 700 hPa the column misses the lower branch and carries a net mass flux;

@@ -10,7 +10,7 @@ and writes). Per-member outcomes are merged here too (:func:`merge_members`).
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -28,6 +28,7 @@ class Outcome:
     key_columns: list
     provenance: dict
     time_order: np.ndarray        # chronological rank per row (for sorting)
+    tables: dict = field(default_factory=dict)   # side tables, e.g. "cores_by_longitude" (engine/longitudes.py)
 
 
 def derive_source(paths, attrs):

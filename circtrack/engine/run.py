@@ -18,6 +18,7 @@ from circtrack.engine import plan as P
 from circtrack.engine import profile
 from circtrack.engine.features import Detector
 from circtrack.engine.gather import BatchReader
+from circtrack.engine.longitudes import LongitudeTable, add_to_plan
 from circtrack.engine.locate import locate
 from circtrack.engine.pool import Runner
 from circtrack.engine.prepare import available_metrics
@@ -31,23 +32,29 @@ STAGES = profile.STAGES
 
 
 def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None,
-          progress=None, on_bad_file=None, stdin=None, only_times=None, time_step_days=None):
+          progress=None, on_bad_file=None, stdin=None, only_times=None, time_step_days=None,
+          cores_by_longitude=False):
     """Run the chosen metrics over all inputs; returns an :class:`Outcome` of tidy rows.
 
     ``only_times`` (ISO strings) and ``time_step_days`` are for ``circtrack update``: see :class:`Run`.
     Files of several ensemble members (one member per file, told apart by a global attribute such
     as ``variant_label``) are run member by member and get a ``member`` key column; otherwise the
     same time step in two members' files would be a conflicting repeat.
+    ``cores_by_longitude``: also the jet cores at every longitude, as ``outcome.tables["cores_by_longitude"]``.
     """
     kw = dict(metric_ids=metric_ids, label=label, sectors=sectors, overrides=overrides, progress=progress,
-              on_bad_file=on_bad_file, only_times=only_times, time_step_days=time_step_days)
+              on_bad_file=on_bad_file, only_times=only_times, time_step_days=time_step_days,
+              cores_by_longitude=cores_by_longitude)
     run = Run(paths, cfg, stdin=stdin, **kw)          # plans: coordinates and attributes only
     groups = P.member_groups(run.infos)
     if not groups:
         out = run.execute()
     else:
         labels = sorted(groups)
-        out = merge_members(labels, [Run(groups[m], cfg, **kw).execute() for m in labels], run.skipped)
+        outs = [Run(groups[m], cfg, **kw).execute() for m in labels]
+        out = merge_members(labels, outs, run.skipped)
+        for name in outs[0].tables:
+            out.tables[name] = merge_members(labels, [o.tables[name] for o in outs])
     if run.left_out:
         out.provenance["metrics_left_out"] = run.left_out
     return out
@@ -81,7 +88,7 @@ class Run:
 
     def __init__(self, paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None,
                  progress=None, on_bad_file=None, stdin=None, only_times=None, time_step_days=None,
-                 all_levels=()):
+                 all_levels=(), cores_by_longitude=False):
         self.cfg = cfg
         self.label = check_label(label)
         self.progress = progress = progress or Progress(quiet=True)
@@ -95,6 +102,9 @@ class Run:
             with profile.timed(STAGES, "choose metrics (detect first file)"):
                 metric_ids = available_metrics(files, cfg, overrides, policy, self.left_out)
         plan = P.Plan.make(metric_ids, cfg, sectors)
+        self.cores_by_longitude = cores_by_longitude
+        if cores_by_longitude:             # the per-longitude table: its in-task reducer, ua on every level
+            add_to_plan(plan)
         for role in all_levels:            # e.g. the cross-section: [u] on every level, not just 200/850 hPa
             plan.roles[role] = None
         with profile.timed(STAGES, "open and detect every file"):
@@ -163,6 +173,7 @@ class Run:
         nt = rp.times.size
         step_notes = np.full(nt, "", dtype=object)
         detector = Detector(rp)
+        table = LongitudeTable(rp) if self.cores_by_longitude else None
         runner = Runner(self.cfg, len(rp.needed_chunks()))   # only_times: no worker pool for a chunk or two
         reader = BatchReader(rp, runner)
         try:
@@ -177,6 +188,8 @@ class Run:
                 with profile.timed(STAGES, "low-pass filter and families"):
                     lowpassed = rp.lowpass.apply(reduced, bi, rp.batches) if rp.lowpass else {}
                     detector.batch(reduced[bi], lowpassed, t0, t1)
+                    if table is not None:
+                        table.batch(reduced[bi], t0, t1)
                 self.progress.step(t1, nt)
         except BaseException:
             runner.close(interrupted=True)       # stop the workers first, so a waiting prefetch returns
@@ -189,4 +202,7 @@ class Run:
             close_cached()
         self.step_notes = step_notes
         with profile.timed(STAGES, "rows"):
-            return outcome(rp, detector.cols, step_notes, self.label)
+            out = outcome(rp, detector.cols, step_notes, self.label)
+            if table is not None:
+                out.tables["cores_by_longitude"] = table.outcome(step_notes, self.label)
+        return out

@@ -3,7 +3,7 @@ importing this package imports every family module, so :func:`catalogue` and :fu
 are complete. A new family module is added to the import line below (and nowhere else).
 """
 
-from circtrack.metrics import cells, jets, momentum, surface, transport, tropopause, waves  # noqa: F401
+from circtrack.metrics import cells, jets, cores, momentum, surface, transport, tropopause, waves  # noqa: F401
 from circtrack.registry import registered_families, registered_metrics
 
 
