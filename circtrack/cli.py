@@ -19,14 +19,15 @@ def main(debug):
 
 
 def _run_track(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-               repeated_times=None):
+               repeated_times=None, vary=()):
     from circtrack import config as C
+    from circtrack import variants as V
     from circtrack import engine, output as O
     from circtrack.cluster import scheduler_context
 
     if workers and scheduler:
         raise UsageError("--workers and --scheduler exclude each other; give one")
-    cfg = C.load(config)
+    cfg = V.apply(C.load(config), vary)
     if repeated_times:
         cfg["run"]["repeated_times"] = repeated_times
     if on_bad_file:

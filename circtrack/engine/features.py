@@ -6,6 +6,9 @@ the extra key (e.g. ensemble member along a dimension), hemisphere, sector, metr
 flag. The families see a :class:`~circtrack.metrics.common.Fields` per sector: N samples = time
 steps x extra keys, the zonal mean and the share of valid longitudes of every role, the
 reducers' extras, the record's time step and the filtered means.
+
+With variants (``--vary``), every family runs once per variant on the same fields, with that
+variant's config, and the column ``v`` holds the variant's index (0 in a plain run).
 """
 
 from __future__ import annotations
@@ -15,7 +18,7 @@ import numpy as np
 from circtrack.metrics.common import Fields
 from circtrack.registry import hemispheres
 
-COLUMNS = ("t", "e", "hemisphere", "sector", "metric", "value", "flag")
+COLUMNS = ("t", "e", "v", "hemisphere", "sector", "metric", "value", "flag")
 
 
 class Detector:
@@ -32,6 +35,7 @@ class Detector:
         self.plev = {r: info0.plev[r] for r in rp.plan.roles}
         self.wanted = set(rp.plan.metric_ids)
         self.cols = {k: [] for k in COLUMNS}
+        self.cfgs = [v.cfg for v in rp.variants] or [rp.cfg]
 
     def fields(self, reduced, lowpassed, s, bt):
         """The :class:`Fields` of sector ``s`` for a batch of ``bt`` time steps."""
@@ -57,16 +61,18 @@ class Detector:
             for fam in self.rp.plan.families:
                 if sname != "zonal" and not fam.sectors:
                     continue
-                results = fam.compute(fields, self.cfg)
-                for m in fam.metrics:
-                    if m.id in self.wanted:
-                        self._append(tidx, eidx, sname, m, results[m.id])
+                for v, cfg in enumerate(self.cfgs):
+                    results = fam.compute(fields, cfg)
+                    for m in fam.metrics:
+                        if m.id in self.wanted:
+                            self._append(tidx, eidx, v, sname, m, results[m.id])
 
-    def _append(self, tidx, eidx, sname, m, res):
+    def _append(self, tidx, eidx, v, sname, m, res):
         cols = self.cols
         for h, hemi in enumerate(hemispheres(m)):
             cols["t"].append(tidx)
             cols["e"].append(eidx)
+            cols["v"].append(np.full(tidx.size, v, dtype=np.int32))
             cols["hemisphere"].append(np.full(tidx.size, hemi, dtype=object))
             cols["sector"].append(np.full(tidx.size, sname, dtype=object))
             cols["metric"].append(np.full(tidx.size, m.id, dtype=object))

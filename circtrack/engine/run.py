@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from circtrack import variants as V
 from circtrack.engine import plan as P
 from circtrack.engine.features import Detector
 from circtrack.engine.gather import BatchReader
@@ -84,6 +85,10 @@ class Run:
         if metric_ids is None:
             metric_ids = available_metrics(files, cfg, overrides, policy)
         plan = P.Plan.make(metric_ids, cfg, sectors)
+        variants = V.expand(cfg)
+        if variants:          # one read for all: every level any variant needs
+            V.check_keys(cfg, plan.families)
+            P.union_levels(plan, [P.Plan.make(metric_ids, v.cfg, sectors) for v in variants])
         for role in all_levels:            # e.g. the cross-section: [u] on every level, not just 200/850 hPa
             plan.roles[role] = None
         infos, skipped = P.prepare_inputs(files, plan, cfg, overrides, policy)
@@ -94,7 +99,7 @@ class Run:
         partial_run = only_times is not None or time_step_days is not None
         rest = P.batches_and_lowpass(cfg, axis["times"], plan, infos, partial_run)
         self.record = P.RunPlan(cfg=cfg, plan=plan, sectors=sectors, infos=infos, skipped=skipped,
-                                masks_of=masks_of, **axis, **layout, **rest)
+                                masks_of=masks_of, variants=variants, **axis, **layout, **rest)
 
     def __getattr__(self, name):
         # the plan's fields (times, infos, chunks, skipped, ...) and methods (tasks, job, describe)

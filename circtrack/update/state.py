@@ -72,6 +72,7 @@ def time_key(iso):
 
 
 def params_hash(cfg, metrics, sectors, overrides):
+    cfg = {k: v for k, v in cfg.items() if not (k == "vary" and not v)}   # no variants: as before [vary] existed
     blob = json.dumps({"config": cfg, "metrics": metrics, "sectors": [list(s) for s in sectors],
                        "variables": overrides}, sort_keys=True, default=str)
     return hashlib.sha256(blob.encode()).hexdigest()

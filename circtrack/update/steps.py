@@ -82,12 +82,12 @@ class Update:
 
 
 def run_update(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file,
-               quiet, rebuild=False, repeated_times=None, stdin=None, echo=None):
+               quiet, rebuild=False, repeated_times=None, stdin=None, echo=None, vary=()):
     """Bring OUT up to date with ``paths``; returns the new state (None when nothing was new)."""
     from circtrack import output as O
 
     u = options(output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-                repeated_times, echo or click.echo)
+                repeated_times, echo or click.echo, vary)
     O.check_output_path(u.output)
     lock_fd = acquire_lock(u.output)
     try:
@@ -111,9 +111,10 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
 
 
 def options(output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-            repeated_times, echo):
+            repeated_times, echo, vary=()):
     """The command's options checked and combined with the config, as ``circtrack track`` does."""
     from circtrack import config as C
+    from circtrack import variants as V
     from circtrack.cli_support import parse_vars
     from circtrack.engine.sectors import merge_sectors, parse_sector
 
@@ -121,7 +122,7 @@ def options(output, config, variables, metrics, label, sectors, workers, schedul
         raise UsageError("update needs an output file (-o OUT.csv), not stdout; the state lives beside it")
     if workers and scheduler:
         raise UsageError("--workers and --scheduler exclude each other; give one")
-    cfg = C.load(config)
+    cfg = V.apply(C.load(config), vary)        # variants are parameters: a change needs --rebuild
     user_ids = [m.strip() for m in metrics.split(",") if m.strip()] if metrics else None
     secs = [parse_sector(s) for s in sectors]
     overrides_cli = parse_vars(variables)
