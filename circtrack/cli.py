@@ -71,7 +71,7 @@ def scan(paths, config, variables):
 @guarded
 def metrics_cmd(fmt):
     """List the metric catalogue: id, inputs, units, definition, published source."""
-    from circtrack.metrics import catalogue
+    from circtrack.metrics import catalogue, groups
     from circtrack.registry import hemispheres
 
     cat = catalogue()
@@ -87,17 +87,24 @@ def metrics_cmd(fmt):
         click.echo("| metric id | rows | inputs | units | definition | reference |\n|---|---|---|---|---|---|")
         for m in cat.values():
             click.echo(f"| `{m.id}` | {'/'.join(hemispheres(m))} | {' '.join(m.inputs)} | {m.units} | {m.definition} | {m.reference} |")
+        click.echo("\n| feature group | metrics | source |\n|---|---|---|")
+        for g in groups().values():
+            click.echo(f"| `{g.id}` ({g.long_name}) | {', '.join(f'`{i}`' for i in g.metric_ids)} | {g.reference} |")
         return
     for m in cat.values():
         click.echo(f"{m.id}  [{'/'.join(hemispheres(m))}; {m.units}; needs {' '.join(m.inputs)}"
                    f"{'; per sector too' if m.sectors else ''}]")
         click.echo(f"    {m.long_name}: {m.definition}")
         click.echo(f"    source: {m.reference}")
+    click.echo("\nfeature groups (metrics marking the same feature; 'circtrack spread' compares them):")
+    for g in groups().values():
+        click.echo(f"{g.id}: {g.long_name}: {', '.join(g.metric_ids)}")
+        click.echo(f"    source: {g.reference}")
 
 
-from circtrack.cli_findings import plot, season, trend  # noqa: E402
+from circtrack.cli_findings import plot, season, spread, trend  # noqa: E402
 
-for _cmd in (trend, season, plot):
+for _cmd in (trend, season, spread, plot):
     main.add_command(_cmd)
 
 from circtrack.update import make_command as _make_update  # noqa: E402
