@@ -22,8 +22,9 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
                repeated_times=None, vary=()):
     from circtrack import config as C
     from circtrack import variants as V
-    from circtrack import engine, output as O
+    from circtrack import engine, guards as G, output as O
     from circtrack.cluster import scheduler_context
+    from circtrack.inputs.files import expand
 
     if workers and scheduler:
         raise UsageError("--workers and --scheduler exclude each other; give one")
@@ -34,11 +35,18 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
         cfg["run"]["on_bad_file"] = on_bad_file          # so the sidecar records the policy used
     ids = [m.strip() for m in metrics.split(",") if m.strip()] if metrics else None
     secs = [engine.parse_sector(s) for s in sectors]
-    O.check_output_path(output)
+    G.check_cli_labels(label, sectors, secs)
+    target = O.check_output_path(output)
+    G.refuse_data_file_as_output(output)
+    files = expand(list(paths))             # before anything is read: OUT must not be an input
+    outputs = [("-o", output)] + ([("the sidecar of -o", O.sidecar_path(target.path))] if target.kind == "file" else [])
+    G.refuse_outputs_among_inputs(outputs, files)
+    stamps = G.input_stamps(files)
     prog = engine.Progress(quiet=quiet)
     with scheduler_context(workers, scheduler, cfg):
-        outcome = engine.track(list(paths), cfg, metric_ids=ids, label=label, sectors=secs,
+        outcome = engine.track(files, cfg, metric_ids=ids, label=label, sectors=secs,
                                overrides=parse_vars(variables), progress=prog, on_bad_file=on_bad_file)
+    G.refuse_changed_inputs(stamps)
     O.write(outcome, output, cfg, argv=["circtrack", *sys.argv[1:]])
     prog.done(len(outcome.columns["metric"]))
     return outcome

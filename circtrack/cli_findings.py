@@ -35,6 +35,7 @@ def _load(path):
     cols = list(df.columns)
     if cols.index("hemisphere") < cols.index("time"):
         raise InputError(f"{path}: column 'time' must come before 'hemisphere' (circtrack track layout)")
+    _refuse_duplicates_and_mixed_units(df, path)
     if not usable(df["flag"]).any():
         raise InputError(f"{path}: no rows with flag 'ok'; rerun 'circtrack track' or check its flag column")
     try:
@@ -44,6 +45,28 @@ def _load(path):
     return df
 
 
+def _refuse_duplicates_and_mixed_units(df, path):
+    """A key (source, time, extra keys, hemisphere, sector, metric) twice, or two units for one
+    metric, would mix series silently: refused with the CSV line numbers."""
+    from circtrack import stats as S
+
+    keys, _ = S.key_columns(df)
+    dup = df.duplicated(subset=["time", *keys], keep=False)
+    if dup.any():
+        rows = df.index[dup]
+        first = df.loc[rows[0]]
+        twin = rows[1:][(df.loc[rows[1:], ["time", *keys]] == first[["time", *keys]]).all(axis=1)][0]
+        raise InputError(f"{path}: lines {rows[0] + 2} and {twin + 2} hold the same key ({first['metric']}, "
+                         f"{first['hemisphere']}, {first['sector']}, {first['time']}); is it two CSVs joined? "
+                         "keep one row per key (rerun 'circtrack track')")
+    units = df.groupby("metric", sort=True)["units"].unique()
+    mixed = units[units.map(len) > 1]
+    if len(mixed):
+        m = mixed.index[0]
+        raise InputError(f"{path}: metric {m} has rows in different units ({', '.join(sorted(mixed[m]))}); "
+                         "use one unit per metric (rerun 'circtrack track' on one data set)")
+
+
 def _calendar(path, df, given):
     """--calendar, else the provenance sidecar of 'circtrack track', else a guess from the dates."""
     from circtrack import stats as S
@@ -51,7 +74,9 @@ def _calendar(path, df, given):
 
     if given:
         return given
-    side = sidecar_path(path)
+    side = sidecar_path(os.path.realpath(path))        # beside the target when CSV is a symbolic link
+    if not os.path.exists(side):
+        side = sidecar_path(path)
     if os.path.exists(side):
         try:
             with open(side) as f:
@@ -74,13 +99,35 @@ def _metric_ids(metrics, df, path):
     return ids
 
 
-def _emit(text, output):
-    from circtrack.output import atomic_write_text
+def _outputs(csv_path, *named):
+    """Before reading: each output's target (stdout, stream or file); none of them is the input CSV
+    (or its sidecar) or another output. ``named``: ``(option, path or None)``."""
+    from circtrack import guards as G
+    from circtrack.output import check_output_path, resolve_target, sidecar_path
 
-    if output in (None, "-"):
-        click.echo(text, nl=False)
-    else:
-        atomic_write_text(output, text)
+    targets, outs = [], []
+    for how, path in named:
+        if path in (None, "-"):
+            targets.append(resolve_target("-"))
+            continue
+        t = check_output_path(path, beside_names=())
+        targets.append(t)
+        outs.append((f"{how} {path}", path))
+    ins = [csv_path] + ([sidecar_path(csv_path)] if csv_path else [])
+    G.refuse_outputs_among_inputs(outs, [p for p in ins if p])
+    return targets
+
+
+def _emit(pairs):
+    """``pairs``: ``[(target, text)]``; files are committed together (all or nothing), then streams."""
+    from circtrack import output as O
+
+    files = [(t.path, text) for t, text in pairs if t.kind == "file"]
+    if files:
+        O.commit(files)
+    for t, text in pairs:
+        if t.kind != "file":
+            O.emit(t, text)
 
 
 def _wrap(fn_stats, path):
@@ -107,13 +154,14 @@ def trend(csv_path, output, poleward_positive, metrics, calendar):
     """Trends per decade (OLS with AR(1)-adjusted CI; Theil-Sen with Mann-Kendall p) per season."""
     from circtrack import stats as S
 
+    (target,) = _outputs(csv_path, ("-o", output))
     df = _load(csv_path)
     ids = _metric_ids(metrics, df, csv_path)
     cal = _calendar(csv_path, df, calendar)
     tab = _wrap(lambda: S.trends(df, poleward_positive=poleward_positive, calendar=cal, metrics=ids), csv_path)
     if tab.empty:
         raise InputError(f"{csv_path}: no complete season or year to fit; trends need whole months of 'ok' data")
-    _emit(S.table_to_csv(tab), output)
+    _emit([(target, S.table_to_csv(tab))])
 
 
 def _parse_base(base):
@@ -138,6 +186,7 @@ def season(csv_path, output, base, anomalies, metrics, calendar):
     from circtrack import stats as S
 
     b = _parse_base(base)
+    targets = _outputs(csv_path, ("-o", output), ("--anomalies", anomalies))
     df = _load(csv_path)
     ids = _metric_ids(metrics, df, csv_path)
     cal = _calendar(csv_path, df, calendar)
@@ -145,9 +194,7 @@ def season(csv_path, output, base, anomalies, metrics, calendar):
         clim, anom = S.seasonal_cycle(df, base=b, calendar=cal, metrics=ids)
     except S.StatsInputError as e:
         raise UsageError(f"{csv_path}: {e}; choose --base years inside the record")
-    _emit(S.table_to_csv(clim), output)
-    if anomalies:
-        _emit(S.table_to_csv(anom), anomalies)
+    _emit([(targets[0], S.table_to_csv(clim))] + ([(targets[1], S.table_to_csv(anom))] if anomalies else []))
 
 
 @click.command("spread")
@@ -217,6 +264,7 @@ def plot(csv_path, output, metrics, poleward_positive, calendar, section, time, 
                            ("--var", variables)) if v]
     if used:
         raise UsageError(f"{', '.join(used)}: only with --section DATAFILE")
+    _outputs(csv_path, ("-o", output))
     df = _load(csv_path)
     ids = _metric_ids(metrics, df, csv_path)
     cal = _calendar(csv_path, df, calendar)
@@ -229,9 +277,13 @@ def _section(path, output, time, log_pressure, config, variables):
     from circtrack.cli_support import parse_vars
     from circtrack.output import check_output_path
 
+    from circtrack import guards as G
+    from circtrack.inputs.files import expand
+
     cfg = C.load(config)
     overrides = parse_vars(variables)
-    check_output_path(output)
+    check_output_path(output, beside_names=())
+    G.refuse_outputs_among_inputs([(f"-o {output}", output)], expand([path]))
     try:
         sec = SEC.section_data(path, cfg, time=time, overrides=overrides)
     except InputError as e:           # the engine's line, without its hint for 'track' options

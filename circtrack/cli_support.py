@@ -8,7 +8,10 @@ imports them, whichever module Python loads first (``python -m circtrack.cli`` i
 from __future__ import annotations
 
 import functools
+import logging
+import os
 import sys
+import warnings
 import traceback
 
 import click
@@ -16,19 +19,48 @@ import click
 from circtrack.errors import CircError, UsageError
 
 
+def one_line(text):
+    """``text`` with line breaks and other control characters shown as escapes: always one line."""
+    return "".join(c if c == "\t" or not (ord(c) < 32 or ord(c) == 127) else repr(c)[1:-1] for c in str(text))
+
+
 def _fail(message, code):
-    click.echo(f"circtrack: error: {message}", err=True)
+    click.echo(f"circtrack: error: {one_line(message)}", err=True)
     sys.exit(code)
 
 
+def _one_line_notes(quiet):
+    """Library warnings (numpy, cftime, matplotlib, ...) as one ``circtrack: note:`` line each, once;
+    none at all with ``--quiet``. Call inside ``warnings.catch_warnings()``."""
+    if quiet:
+        warnings.simplefilter("ignore")
+        logging.getLogger("matplotlib").setLevel(logging.ERROR)
+        return
+    warnings.simplefilter("always")
+    seen = set()
+
+    def show(message, category, filename, lineno, file=None, line=None):
+        text = " ".join(str(message).split()) or category.__name__
+        where = os.path.basename(os.path.dirname(filename)) or "python"
+        note = f"{text} ({category.__name__} from {where})"
+        if note not in seen:
+            seen.add(note)
+            click.echo(f"circtrack: note: {note}", err=True)
+
+    warnings.showwarning = show
+
+
 def guarded(fn):
-    """One clear line and an exit status for every failure; a traceback only with --debug."""
+    """One clear line and an exit status for every failure; a traceback only with --debug.
+    Library warnings become one-line notes (none with --quiet)."""
 
     @functools.wraps(fn)
     def wrapper(*args, **kwargs):
         debug = click.get_current_context().find_root().params.get("debug", False)
         try:
-            return fn(*args, **kwargs)
+            with warnings.catch_warnings():
+                _one_line_notes(bool(kwargs.get("quiet")))
+                return fn(*args, **kwargs)
         except CircError as e:
             if debug:
                 traceback.print_exc()
@@ -47,16 +79,14 @@ def guarded(fn):
 
 
 def parse_vars(pairs):
-    from circtrack.inputs.rules import VARIABLES
+    from circtrack.config import check_role
 
     out = {}
     for p in pairs:
         if "=" not in p:
             raise UsageError(f"--var '{p}': expected ROLE=NAME, e.g. --var ua=U")
         role, name = (x.strip() for x in p.split("=", 1))
-        if role not in VARIABLES and role not in ("time", "lat", "lon", "plev"):
-            raise UsageError(f"--var '{p}': unknown role '{role}'; roles are {' '.join(VARIABLES)} "
-                             "(and the coordinates time lat lon plev)")
+        check_role(role, f"--var '{p}'")
         out[role] = name
     return out
 

@@ -23,7 +23,7 @@ import os
 import shutil
 import tempfile
 
-from circtrack.errors import UsageError
+from circtrack.errors import InputError, UsageError
 
 KINDS = ("local", "slurm", "pbs")
 
@@ -75,6 +75,38 @@ def jobqueue_cluster(kind, workers, cfg, *, scale=True):
     return cluster
 
 
+def probe_scheduler(address, timeout):
+    """Connect to ``address`` and ask for the scheduler's identity, all within ``timeout`` seconds.
+
+    distributed's own client waits for ever on a listener that accepts the connection but never
+    answers (any TCP server that is not a dask scheduler), and reads garbage from other servers as
+    message sizes; this probe runs first, so those cases are one line (InputError, exit 1).
+    """
+    import asyncio
+
+    from distributed.comm import connect
+
+    async def ask():
+        comm = await asyncio.wait_for(connect(address, timeout=timeout), timeout)
+        try:
+            await asyncio.wait_for(comm.write({"op": "identity"}), timeout)
+            return await asyncio.wait_for(comm.read(), timeout)
+        finally:
+            comm.abort()
+
+    fix = "check that the scheduler is running and give the address it printed, e.g. tcp://10.0.0.5:8786"
+    try:
+        answer = asyncio.run(asyncio.wait_for(ask(), 2 * timeout))
+    except (TimeoutError, asyncio.TimeoutError):
+        raise InputError(f"--scheduler {address}: no answer from a dask scheduler within {timeout:g} s "
+                         f"(cluster.connect_timeout_s); {fix}")
+    except Exception as e:                     # refused, reset, or a server speaking another protocol
+        why = " ".join(str(e).split()) or type(e).__name__
+        raise InputError(f"--scheduler {address}: not a dask scheduler or cannot connect ({why[:120]}); {fix}")
+    if not isinstance(answer, dict) or answer.get("type") != "Scheduler":
+        raise InputError(f"--scheduler {address}: the server there is not a dask scheduler; {fix}")
+
+
 @contextlib.contextmanager
 def scheduler_context(workers=None, address=None, cfg=None):
     """Context in which ``dask.compute`` uses the chosen cluster; the cluster lives inside it."""
@@ -93,10 +125,12 @@ def scheduler_context(workers=None, address=None, cfg=None):
         except ValueError as e:
             raise UsageError(f"--scheduler {address}: not a scheduler address ({e}); give the address the "
                              "scheduler printed, e.g. tcp://10.0.0.5:8786")
+        timeout = float(((cfg or {}).get("cluster") or {}).get("connect_timeout_s", 30.0))
+        probe_scheduler(address, timeout)
         try:
-            client = Client(address, timeout="20s")
+            client = Client(address, timeout=f"{timeout}s")
         except (OSError, ValueError, TimeoutError) as e:
-            raise UsageError(f"--scheduler {address}: cannot connect ({e}); give the address the scheduler printed, "
+            raise InputError(f"--scheduler {address}: cannot connect ({e}); give the address the scheduler printed, "
                              "e.g. tcp://10.0.0.5:8786")
         with client:
             yield client

@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import copy
+import math
+import os
 import tomllib
 from importlib import resources
 from pathlib import Path
@@ -61,6 +63,87 @@ def _checked(default, val, where):
     return val
 
 
+COORDINATE_ROLES = ("time", "lat", "lon", "plev")
+
+
+def check_role(role, where):
+    """``role`` is a variable role (CMIP short name) or a coordinate; UsageError naming ``where`` otherwise."""
+    from circtrack.inputs.rules import VARIABLES
+
+    if role not in VARIABLES and role not in COORDINATE_ROLES:
+        raise UsageError(f"{where}: unknown role '{role}'; roles are {' '.join(VARIABLES)} "
+                         f"(and the coordinates {' '.join(COORDINATE_ROLES)})")
+
+
+def check_sector_name(name, where):
+    """A sector name: letters, digits, '_' or '-', not 'zonal' (the full circle), and a valid CSV text field."""
+    from circtrack.guards import check_label
+
+    if not name or name == "zonal" or not name.replace("_", "").replace("-", "").isalnum():
+        raise UsageError(f"{where}: the sector name must be letters, digits, '_' or '-' and not 'zonal' "
+                         "(reserved for the full circle)")
+    check_label(name, where, "rename the sector, e.g. with letters and '_' only")
+
+
+def _non_finite(value, where=""):
+    """The first key whose number is NaN or infinite (TOML allows nan and inf), or None."""
+    if isinstance(value, dict):
+        for k, v in value.items():
+            hit = _non_finite(v, f"{where}.{k}" if where else k)
+            if hit:
+                return hit
+    elif isinstance(value, list):
+        for v in value:
+            hit = _non_finite(v, where)
+            if hit:
+                return hit
+    elif isinstance(value, float) and not math.isfinite(value):
+        return where
+    return None
+
+
+def _validate(cfg, user):
+    """Values that have the right kind but cannot work, refused before anything is read."""
+    bad = _non_finite(user)
+    if bad:
+        raise UsageError(f"{bad} in the config: not a finite number (nan or inf); give a number")
+    run = cfg["run"]
+    procs = run.get("processes", 0)
+    if not isinstance(procs, int) or procs < 0:    # more than the cores: capped at the core count by the engine
+        raise UsageError(f"run.processes = {procs!r} in the config: give a whole number, 0 for one per core "
+                         f"(at most {os.cpu_count() or 1} are used here)")
+    for key, low in (("chunk_cache_bytes", 0), ("time_chunk", 1)):
+        v = run.get(key)
+        if not isinstance(v, int) or v < low:
+            raise UsageError(f"run.{key} = {v!r} in the config: give a whole number of at least {low} "
+                             f"(default {defaults()['run'][key]})")
+    choices = {"netcdf_engine": ("netcdf4", "h5netcdf"), "on_bad_file": ("stop", "skip"),
+               "repeated_times": ("refuse", "keep-first", "keep-last"),
+               "scheduler": ("processes", "threads", "sync")}
+    for key, allowed in choices.items():
+        if run.get(key) not in allowed:
+            raise UsageError(f"run.{key} = {run.get(key)!r} in the config: use one of {', '.join(allowed)}")
+    for key in ("level_tolerance_hpa", "min_coverage", "min_window_fraction"):
+        if run.get(key, 0) < 0:
+            raise UsageError(f"run.{key} = {run[key]!r} in the config: give a number of at least 0")
+    timeout = cfg.get("cluster", {}).get("connect_timeout_s", 30.0)
+    if timeout <= 0:
+        raise UsageError(f"cluster.connect_timeout_s = {timeout!r} in the config: give a positive number of seconds")
+    for role, name in (user.get("variables") or {}).items():
+        check_role(role, f"[variables] {role} = {name!r} in the config")
+        if not isinstance(name, str) or not name.strip():
+            raise UsageError(f"[variables] {role} = {name!r} in the config: give the variable's name in quotes, "
+                             f'e.g. {role} = "NAME"')
+    for name, band in (user.get("sectors") or {}).items():
+        where = f"[sectors] {name!r} in the config"
+        check_sector_name(str(name), where)
+        if (not isinstance(band, list) or len(band) != 2
+                or not all(isinstance(x, (int, float)) and not isinstance(x, bool) for x in band)):
+            raise UsageError(f"{where}: expected two longitudes [LON0, LON1] in degrees east, e.g. {name} = [150.0, 240.0]")
+        if (float(band[1]) - float(band[0])) % 360.0 == 0.0:
+            raise UsageError(f"{where}: the band is empty or the full circle; use two different longitudes")
+
+
 def load(path: str | None = None) -> dict:
     cfg = defaults()
     if path:
@@ -69,7 +152,16 @@ def load(path: str | None = None) -> dict:
             user = tomllib.loads(p.read_text())
         except FileNotFoundError:
             raise UsageError(f"{path}: config file not found; give the path of a TOML file (see configs/default.toml)")
+        except IsADirectoryError:
+            raise UsageError(f"-c {path}: is a directory; give the path of a TOML file, e.g. configs/default.toml")
+        except PermissionError:
+            raise UsageError(f"-c {path}: cannot be read (permission denied); make it readable or copy it")
+        except UnicodeDecodeError:
+            raise UsageError(f"-c {path}: not a text file; give a TOML file such as configs/default.toml")
+        except OSError as e:
+            raise UsageError(f"-c {path}: cannot be read ({e.strerror}); give the path of a TOML file")
         except tomllib.TOMLDecodeError as e:
             raise UsageError(f"{path}: not valid TOML ({e}); fix the line named or start from configs/default.toml")
         cfg = merge(cfg, user)
+        _validate(cfg, user)
     return cfg

@@ -110,14 +110,18 @@ def figure(df, metrics=None, calendar="standard", poleward_positive=False):
 
 
 def save_figure(fig, path):
-    """Write ``fig`` to ``path`` (format from the extension: png, pdf or svg) atomically and close it;
-    no dates in the metadata, so reruns give the same bytes."""
+    """Write ``fig`` to ``path`` (format from the extension: png, pdf or svg) and close it: rendered
+    in memory, then written like every output (synced temp file and rename; through a symbolic link;
+    straight into a device). No dates in the metadata, so reruns give the same bytes."""
+    import io
+
+    from circtrack.output import emit, resolve_target
+
     ext = os.path.splitext(path)[1].lower().lstrip(".")
     if ext not in FORMATS:
         plt.close(fig)
         raise ValueError(f"{path}: unknown figure format '.{ext}'; use .png, .pdf or .svg")
-    path = os.path.abspath(path)
-    tmp = os.path.join(os.path.dirname(path), "." + os.path.basename(path) + ".tmp")
+    buf = io.BytesIO()
     try:
         meta = {"Creator": "circtrack"}
         if ext == "pdf":
@@ -125,13 +129,12 @@ def save_figure(fig, path):
         elif ext == "svg":
             meta = {"Creator": "circtrack", "Date": None}
         with plt.rc_context(STYLE):
-            fig.savefig(tmp, format=ext, metadata=meta)
-        os.replace(tmp, path)
+            fig.savefig(buf, format=ext, metadata=meta)
     finally:
         plt.close(fig)
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-    return path
+    target = resolve_target(path)
+    emit(target, buf.getvalue())
+    return target.path
 
 
 def save(df, path, metrics=None, calendar="standard", poleward_positive=False):

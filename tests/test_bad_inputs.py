@@ -218,6 +218,65 @@ def nan_longitudes(tmp_path):
 
 
 @case
+def duplicated_longitudes(tmp_path):
+    lon = LON.copy()
+    lon[3] = lon[2]
+    p = nc(tmp_path, "dup_lon.nc", lon=lon)
+    return Case([p], p, "duplicated values")
+
+
+@case
+def duplicated_pressure_levels(tmp_path):
+    plev = PLEV.copy()
+    plev[3] = plev[2]
+    p = nc(tmp_path, "dup_plev.nc", plev=plev)
+    return Case([p], p, "duplicated values")
+
+
+@case
+def one_pressure_level(tmp_path):
+    # was blamed on damage ("one of these files is damaged") after reading failed
+    p = nc(tmp_path, "one_level.nc", plev=np.array([500.0]))
+    return Case([p], p, "single pressure level")
+
+
+@case
+def one_latitude(tmp_path):
+    p = nc(tmp_path, "one_lat.nc", lat=np.array([10.0]))
+    return Case([p], p, "at least 3 latitudes")
+
+
+@case
+def time_fill_value(tmp_path):
+    p = nc(tmp_path, "time_fill.nc")
+    with netCDF4.Dataset(p, "a") as f:
+        t = f["time"][:]
+        t[1] = 9.969209968386869e36
+        f["time"][:] = t
+    return Case([p], p, "fix the time coordinate")
+
+
+@case
+def time_step_repeated_inside_one_file(tmp_path):
+    def repeat_with_other_values(ds):
+        import xarray as xr
+
+        b = ds.isel(time=[1]).copy(deep=True)
+        b["ua"] = b["ua"] + 1.0
+        return xr.concat([ds.isel(time=[0, 1]), b], dim="time")
+    p = nc(tmp_path, "repeat_inside.nc", edit=repeat_with_other_values)
+    return Case([p], p, "appears twice in this file")
+
+
+@case
+def unknown_netcdf_engine(tmp_path):
+    p = nc(tmp_path, "fine.nc")
+    cfg = tmp_path / "engine.toml"
+    cfg.write_text('[run]\nnetcdf_engine = "fast"\n')
+    return Case([p, "-c", str(cfg)], "run.netcdf_engine = 'fast'", "use one of netcdf4, h5netcdf", code=2)
+
+
+@case
 def level_units_degC(tmp_path):
     # before this corpus the levels were silently taken as hPa by their size
     p = set_attrs(nc(tmp_path, "plev_degc.nc"), "plev", units="degC")

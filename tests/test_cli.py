@@ -224,6 +224,13 @@ def test_help_and_version_still_exit_zero():
 
 
 def test_sidecar_names():
-    assert sidecar_path("/d/OUT.CSV") == "/d/OUT.provenance.json"
+    # Changed on purpose (issue 19): only a name ending in '.csv' loses its suffix; every other name
+    # keeps its full name and gets '-provenance.json' ('OUT.CSV' and 'indices.txt' used to get
+    # '.provenance.json'), so the sidecars of '-o x' and '-o x.csv' (or 'x.CSV') are never one file.
     assert sidecar_path("/d/run.csv") == "/d/run.provenance.json"
-    assert sidecar_path("/d/indices.txt") == "/d/indices.txt.provenance.json"
+    assert sidecar_path("/d/OUT.CSV") == "/d/OUT.CSV-provenance.json"
+    assert sidecar_path("/d/indices.txt") == "/d/indices.txt-provenance.json"
+    names = ["x", "x.csv", "x.CSV", "x.csv.csv", "x.provenance", "x.provenance.json", "x.txt", "x.txt.csv"]
+    sides = [sidecar_path("/d/" + n) for n in names]
+    assert len(set(sides)) == len(names)
+    assert all(side != "/d/" + n for side, n in zip(sides, names))

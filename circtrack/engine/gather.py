@@ -118,6 +118,10 @@ class BatchReader:
         if not same and rp.repeat_policy == "refuse":
             fa = rp.infos[rp.file_of[p]].path
             fb = rp.infos[rp.file_of[d]].path
+            if rp.file_of[p] == rp.file_of[d]:
+                raise InputError(f"{fb}: time step {iso_time(rp.times_all[d])} appears twice in this file with "
+                                 "different values; fix the file (e.g. drop the repeated step with ncks -d), or choose "
+                                 "which wins with --repeated-times keep-first|keep-last")
             raise InputError(f"{fb}: time step {iso_time(rp.times_all[d])} is also in {fa} with different values; "
                              "leave one file out, or choose which wins with --repeated-times keep-first|keep-last")
 

@@ -326,12 +326,17 @@ class RunPlan:
 def member_groups(infos):
     """Files per ensemble member when the inputs belong to several members (one member per file,
     told apart by a global attribute such as ``variant_label``); empty otherwise."""
+    from circtrack.guards import check_label
+
     groups = collections.OrderedDict()
     for inf in infos:
         attrs = inf.detected.attrs
-        label = next((str(attrs[a]).strip() for a in MEMBER_ATTRIBUTES if str(attrs.get(a, "")).strip()), None)
-        if label is None:
+        found = next((a for a in MEMBER_ATTRIBUTES if str(attrs.get(a, "")).strip()), None)
+        if found is None:
             return {}
+        label = str(attrs[found]).strip()
+        check_label(label, f"{inf.path}: the global attribute {found} = {label!r} (used for the member column)",
+                    "fix the attribute (ncatted -a ...) or run the members one by one with --label", error=InputError)
         files = [inf.path] + list((inf.detected.layout or {}).get("files", {}).values())
         groups.setdefault(label, []).extend(files)
     if len(groups) < 2:

@@ -12,6 +12,7 @@ import multiprocessing
 import os
 import signal
 import sys
+import threading
 from concurrent.futures import ProcessPoolExecutor
 
 import dask
@@ -34,7 +35,9 @@ class Runner:
         self.mode = str(cfg["run"].get("scheduler", "processes"))
         if self.mode not in ("processes", "threads", "sync"):
             raise UsageError(f"run.scheduler = '{self.mode}' in the config: use processes, threads or sync")
-        self.nproc = int(cfg["run"].get("processes") or 0) or (os.cpu_count() or 1)
+        cores = os.cpu_count() or 1
+        # more processes than cores only cost memory (run.processes = 100000 once forked 5,300 workers)
+        self.nproc = min(int(cfg["run"].get("processes") or 0) or cores, cores)
         self.client = _active_client()
         self.pool = None
         if self.client is None and (n_tasks < 2 or self.nproc < 2) and self.mode == "processes":
@@ -49,8 +52,7 @@ class Runner:
         if self.mode == "processes":
             if self.pool is None:
                 close_cached()   # the children must not inherit open HDF5 handles
-                self.pool = ProcessPoolExecutor(max_workers=self.nproc, initializer=_worker_ignores_interrupts,
-                                                mp_context=multiprocessing.get_context("fork"))
+                self.pool = _start_pool(self.nproc)
             # chunksize=1: dask would otherwise hand up to 6 tasks to one worker as a single batch
             return list(dask.compute(*tasks, scheduler="processes", pool=self.pool, chunksize=1))
         return list(dask.compute(*tasks, scheduler=self.mode))
@@ -71,10 +73,70 @@ class Runner:
         self.pool = None
 
 
-def _worker_ignores_interrupts():
+# --------------------------------------------------------------------------- workers die with their parent
+# A killed parent (SIGKILL, SIGTERM, the OOM killer) must not leave forked workers behind: orphans
+# kept reading for minutes, held the caller's stdout pipe open and (before update's lock became a
+# per-process lock) the lock. Two independent ways out for each worker:
+# * the kernel's parent-death signal (Linux prctl PR_SET_PDEATHSIG = SIGKILL), set in the worker
+#   right after the fork. The kernel sends it when the *thread* that forked the worker ends, so it
+#   is only used when the pool is started (all workers forked at once) from the main thread;
+# * a pipe whose write end only the parent holds: a thread in each worker blocks reading it and
+#   ends the worker when it reads end-of-file, i.e. when the parent is gone, however it died.
+PR_SET_PDEATHSIG = 1
+_LIFELINE = None            # (pid, read fd, write fd) of the process that owns the pipe
+
+
+def _lifeline():
+    global _LIFELINE
+    if _LIFELINE is None or _LIFELINE[0] != os.getpid():
+        r, w = os.pipe()
+        _LIFELINE = (os.getpid(), r, w)
+    return _LIFELINE
+
+
+def _start_pool(nproc):
+    """A pool of ``nproc`` forked workers, all started now, from this thread, tied to this process."""
+    parent, r, w = _lifeline()
+    deathsig = threading.current_thread() is threading.main_thread()
+    pool = ProcessPoolExecutor(max_workers=nproc, initializer=_worker_setup, initargs=(parent, r, w, deathsig),
+                               mp_context=multiprocessing.get_context("fork"))
+    pool.submit(int).result()        # forks every worker now, from this thread (see above)
+    return pool
+
+
+def _parent_death_signal():
+    try:
+        import ctypes
+
+        libc = ctypes.CDLL(None, use_errno=True)
+        libc.prctl(PR_SET_PDEATHSIG, signal.SIGKILL, 0, 0, 0)
+    except (OSError, AttributeError):     # not Linux: the pipe alone does the job
+        pass
+
+
+def _watch_parent(fd):
+    try:
+        while os.read(fd, 1):
+            pass
+    except OSError:
+        pass
+    os._exit(1)                            # end of file: the parent is gone
+
+
+def _worker_setup(parent, r, w, deathsig):
+    """Runs first in every worker: ignore Ctrl-C, and die with the parent (both ways above)."""
     # Ctrl-C reaches the whole process group: the parent stops the workers itself, so workers
     # ignore SIGINT instead of dying half-way with tracebacks of their own
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        os.close(w)                        # only the parent may hold the write end
+    except OSError:
+        pass
+    if deathsig:
+        _parent_death_signal()
+    if os.getppid() != parent:             # the parent died before the signal was armed
+        os._exit(1)
+    threading.Thread(target=_watch_parent, args=(r,), daemon=True, name="circtrack-parent-watch").start()
 
 
 def _active_client():

@@ -12,6 +12,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
+from pandas.errors import OutOfBoundsDatetime as OutOfBoundsError
+
 from circtrack.engine.times import iso_time
 from circtrack.errors import InputError
 from circtrack.inputs import dataset as D
@@ -37,9 +39,21 @@ def prepare_file(path, plan, cfg, overrides):
         ds.close()
 
 
+def _detect(ds, path, overrides):
+    """Detection, with time values that cannot be decoded (a fill value such as 9.97e36 in the
+    time coordinate overflows the date arithmetic) as one line naming the file."""
+    try:
+        return D.detect(ds, path, overrides)
+    except (OverflowError, OutOfBoundsError) as e:
+        raise InputError(f"{path}: the time values cannot be decoded ({' '.join(str(e).split())}); a time value "
+                         "may be missing or a fill value (e.g. 9.97e36): fix the time coordinate, or pass "
+                         "--on-bad-file skip")
+
+
 def _prepare_open(ds, path, plan, cfg, overrides):
-    det = D.detect(ds, path, overrides)
+    det = _detect(ds, path, overrides)
     D.require_axes(det)
+    D.check_grid(ds, det)
     info = FileInfo(path, det)
     missing = []
     for role, levels in plan.roles.items():
@@ -74,7 +88,7 @@ def detect_only(path, cfg, overrides):
     """What a file holds (coordinates, variables), opened and closed again."""
     ds = D.open_dataset(path, cfg)
     try:
-        return D.detect(ds, path, overrides)
+        return _detect(ds, path, overrides)
     finally:
         ds.close()
 

@@ -32,15 +32,29 @@ class Outcome:
 
 
 def derive_source(paths, attrs):
+    """The ``source`` column without ``--label``: the global attributes ``source_id``,
+    ``experiment_id``, ``variant_label`` of the first file, else the common start of the file
+    names, else the parent directory. Checked like every CSV text field (guards.check_label):
+    InputError naming the file or attribute it came from."""
+    from circtrack.guards import check_label
+
+    fix = "give --label NAME (letters, digits, '_' or '-')"
     if attrs.get("source_id"):
-        return "_".join(attrs[k] for k in ("source_id", "experiment_id", "variant_label") if attrs.get(k))
+        keys = [k for k in ("source_id", "experiment_id", "variant_label") if attrs.get(k)]
+        for k in keys:
+            check_label(str(attrs[k]), f"{paths[0]}: the global attribute {k} = {str(attrs[k])!r} (used for the "
+                        "source column)", fix, error=InputError)
+        return "_".join(str(attrs[k]) for k in keys)
     stems = [os.path.basename(p.rstrip("/")).split(".")[0] for p in paths]
     prefix = os.path.commonprefix(stems) if len(stems) > 1 else stems[0]
     prefix = prefix.rstrip("0123456789_-. ") if len(stems) > 1 else prefix
     if len(prefix) >= 3:
-        return prefix
-    parent = os.path.basename(os.path.dirname(os.path.abspath(paths[0])))
-    return parent or "data"
+        return check_label(prefix, f"{paths[0]}: the source {prefix!r} taken from the file name", fix,
+                           error=InputError)
+    parent = os.path.dirname(os.path.abspath(paths[0]))
+    name = os.path.basename(parent) or "data"
+    return check_label(name, f"{paths[0]}: the source {name!r} taken from the directory name {parent}", fix,
+                       error=InputError)
 
 
 def outcome(rp, cols, step_notes, label):

@@ -47,11 +47,11 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
 
 
 def check_label(label):
-    """``--label``: refused when it would break the CSV's ``source`` column."""
-    if label is not None and any(ch in label for ch in ',"\n\r'):
-        clean = " ".join(label.replace(",", " ").replace('"', " ").split())
-        raise UsageError(f"--label '{label}': commas, quotes and line breaks would break the CSV's 'source' "
-                         f"column; use e.g. --label '{clean}'")
+    """``--label``: refused when it would break the CSV's ``source`` column (guards.check_label)."""
+    from circtrack import guards as G
+
+    if label is not None:
+        G.check_label(label, f"--label '{label}'", f"use e.g. --label '{G.clean_label(label)}'")
     return label
 
 

@@ -16,11 +16,11 @@ A facade over the rooms of :mod:`circtrack.inputs`, in the order data flows thro
 
 from circtrack.inputs.detect import RANK_WORDS, Detected, detect, require_axes
 from circtrack.inputs.opening import GRIB_SUFFIXES, grib_index_dir, open_dataset, open_raw
-from circtrack.inputs.readers import (SURFACE_SUBSTITUTES, RoleReader, lowest_level_substitute, model_level_targets,
-                                      standardise)
+from circtrack.inputs.readers import (SURFACE_SUBSTITUTES, RoleReader, check_grid, lowest_level_substitute,
+                                      model_level_targets, standardise)
 from circtrack.inputs.streams import PROVISIONAL, merge_notes, provisional_steps
 from circtrack.inputs.times import YEAR_ZERO_CALENDAR, year_zero_time
 
 __all__ = ["GRIB_SUFFIXES", "PROVISIONAL", "RANK_WORDS", "SURFACE_SUBSTITUTES", "YEAR_ZERO_CALENDAR", "Detected",
-           "RoleReader", "detect", "grib_index_dir", "lowest_level_substitute", "merge_notes", "model_level_targets",
+           "RoleReader", "check_grid", "detect", "grib_index_dir", "lowest_level_substitute", "merge_notes", "model_level_targets",
            "open_dataset", "open_raw", "provisional_steps", "require_axes", "standardise", "year_zero_time"]

@@ -93,6 +93,37 @@ def _squeeze(da, core):
     return sel, da
 
 
+def check_grid(ds, det):
+    """Axes the metrics cannot work on, refused like duplicated latitudes (:func:`_lat_lon_selection`):
+    fewer than 3 latitudes, a longitude or a pressure level given twice (a repeated longitude
+    that is the same meridian 360 degrees on, the cyclic column, is fine and read once), a variable
+    on a single pressure level. InputError naming the file."""
+    path = det.path
+    if det.lat is not None and "lat" in det.coords and 0 < det.lat.size < 3:
+        raise InputError(f"{path}: latitude '{det.coords['lat']}' has only {det.lat.size} value(s); the metrics need "
+                         "a grid that resolves latitude (at least 3 latitudes): give files with the full grid")
+    name = det.coords.get("lon")
+    if name is not None and name in ds.variables:
+        lon = np.asarray(ds[name].values, dtype=float).ravel()
+        vals, counts = np.unique(lon[np.isfinite(lon)], return_counts=True)
+        if (counts > 1).any():
+            raise InputError(f"{path}: longitude '{name}' has duplicated values ({vals[counts > 1][0]:g} twice); "
+                             "fix the coordinate")
+    if det.plev_hpa is not None and det.vertical != "hybrid":
+        p = np.asarray(det.plev_hpa, dtype=float).ravel()
+        dim = det.coords.get("plev")
+        on_level = [n for n in det.variables.values() if n in ds.variables and dim in ds[n].dims]
+        if p.size == 1 and on_level:
+            raise InputError(f"{path}: variable '{on_level[0]}' has a single pressure level ({p[0]:g} hPa on "
+                             f"'{dim}'); circtrack reads variables on pressure levels with at least two levels "
+                             "(the metrics need e.g. 850 and 200 hPa, the streamfunction all of them): give files "
+                             "with the levels the metrics need")
+        vals, counts = np.unique(p[np.isfinite(p)], return_counts=True)
+        if (counts > 1).any():
+            raise InputError(f"{path}: pressure level '{det.coords.get('plev')}' has duplicated values "
+                             f"({vals[counts > 1][0]:g} hPa twice); fix the coordinate")
+
+
 def _lat_lon_selection(det):
     """Selections that make latitude ascending and drop repeated longitudes (checked first)."""
     path, c = det.path, det.coords

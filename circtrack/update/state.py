@@ -15,23 +15,25 @@ import os
 import sys
 import time
 
-from circtrack.errors import InputError
+from circtrack.errors import InputError, UsageError
 
 STATE_VERSION = 2
 CHUNK = 1 << 20
 
 
 # --------------------------------------------------------------------------- small helpers
-def _base(out_path):
-    return out_path[:-4] if out_path.endswith(".csv") else out_path
-
-
 def state_path(out_path):
-    return _base(out_path) + ".state.json"
+    """``x.csv`` -> ``x.state.json``; other names -> ``NAME-state.json`` (output.beside)."""
+    from circtrack.output import beside
+
+    return beside(out_path, "state.json")
 
 
 def lock_path(out_path):
-    return _base(out_path) + ".lock"
+    """``x.csv`` -> ``x.lock``; other names -> ``NAME-lock`` (output.beside)."""
+    from circtrack.output import beside
+
+    return beside(out_path, "lock")
 
 
 def checksum(path):
@@ -103,11 +105,23 @@ def _remove_stale_temps(paths):
 
 
 def acquire_lock(out_path):
-    """Non-blocking exclusive flock on OUT.lock; the lock dies with the process (no stale locks)."""
+    """Non-blocking exclusive POSIX record lock (``lockf``) on OUT.lock, owned by this process alone.
+
+    Unlike ``flock``, a record lock is not shared with forked children: it is released the moment
+    the owning process ends, even if a worker it forked were still alive, so a lock left by a dead
+    run never blocks the next one. (The lock is also released when this process closes any
+    descriptor of OUT.lock, so nothing else here opens that file.)"""
     lp = lock_path(out_path)
-    fd = os.open(lp, os.O_RDWR | os.O_CREAT, 0o644)
     try:
-        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        fd = os.open(lp, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o644)
+    except IsADirectoryError:
+        raise UsageError(f"-o {out_path}: the lock file {lp} is a directory; move it away or choose another "
+                         "output name")
+    except OSError as e:
+        raise UsageError(f"-o {out_path}: cannot create the lock file {lp} ({e.strerror}); choose an output "
+                         "directory you can write to")
+    try:
+        fcntl.lockf(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
     except OSError:
         os.close(fd)
         raise InputError(f"another update is running on {out_path}; lock file {lp} is held "
@@ -123,7 +137,31 @@ def _load_state(path):
         return None
     except (OSError, ValueError):
         return None
-    return st if isinstance(st, dict) and st.get("version") == STATE_VERSION else None
+    return st if _state_shape_ok(st) else None
+
+
+def _state_shape_ok(st):
+    """A state of this version with the fields every step reads, of the right kinds (a damaged or
+    hand-edited state is rebuilt, with a line on stderr, like one from an older circtrack)."""
+    if not isinstance(st, dict) or st.get("version") != STATE_VERSION:
+        return False
+    kinds = {"params_hash": str, "source": str, "csv_sha256": str, "files": dict, "provenance": dict,
+             "metrics": (list, type(None)), "order": list, "repeats": dict, "notes": dict}
+    if not all(isinstance(st.get(k), t) for k, t in kinds.items()):
+        return False
+    for entry in st["files"].values():
+        if not isinstance(entry, dict) or not isinstance(entry.get("times"), list) or \
+                not all(isinstance(t, str) for t in entry["times"]):
+            return False
+        if not all(k in entry for k in ("size", "mtime_ns", "checksum")):
+            return False
+    try:
+        for entry in st["files"].values():
+            for t in entry["times"]:
+                time_key(t)
+    except (ValueError, TypeError):
+        return False
+    return all(isinstance(a, str) for a in st["order"])
 
 
 def _group_lines(lines, source):

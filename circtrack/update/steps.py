@@ -20,7 +20,7 @@ import click
 from circtrack.errors import InputError, UsageError
 from circtrack.update.state import (STATE_VERSION, _group_lines, _load_state, _pause_point, _record_step_days,
                                     _remove_stale_temps, _same_file, _sha_text, _source_paths, _step_class,
-                                    acquire_lock, file_record, params_hash, state_path, time_key)
+                                    acquire_lock, file_record, lock_path, params_hash, state_path, time_key)
 
 
 @dataclass
@@ -86,13 +86,25 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
     """Bring OUT up to date with ``paths``; returns the new state (None when nothing was new)."""
     from circtrack import output as O
 
+    from circtrack import guards as G
+    from circtrack.engine.locate import locate
+
     u = options(output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
                 repeated_times, echo or click.echo, vary)
-    O.check_output_path(u.output)
+    target = O.check_output_path(u.output, beside_names=("provenance.json", "state.json", "lock"), stream_ok=False)
+    G.refuse_data_file_as_output(u.output)
+    if os.path.islink(u.output):
+        u.output = target.path        # written through: sidecar, state and lock beside the target
+    # before anything is read: neither OUT nor a file beside it may be an input
+    files = locate(list(paths), stdin=stdin)
+    G.refuse_outputs_among_inputs([("-o", u.output), ("the sidecar of -o", O.sidecar_path(u.output)),
+                                   ("the state of -o", state_path(u.output)),
+                                   ("the lock of -o", lock_path(u.output))], files)
+    stamps = G.input_stamps(files)
     lock_fd = acquire_lock(u.output)
     try:
         load_state(u, rebuild)
-        if not diff_inputs(u, paths, stdin):
+        if not diff_inputs(u, files):
             u.echo(f"circtrack: nothing new for {u.output} ({len(u.ab)} files up to date)")
             return None
         read_new_files(u)
@@ -100,6 +112,7 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
         recompute(u)
         text = "\n".join([u.header, *[ln for t in sorted(u.blocks, key=time_key) for ln in u.blocks[t]]]) + "\n"
         new_state, prov = bookkeeping(u, text)
+        G.refuse_changed_inputs(stamps)
         write_atomically(u.output, text, prov, new_state)
         if not quiet:
             u.echo(f"circtrack: updated {u.output}: {len(u.processed)} file(s) processed, "
@@ -117,6 +130,7 @@ def options(output, config, variables, metrics, label, sectors, workers, schedul
     from circtrack import variants as V
     from circtrack.cli_support import parse_vars
     from circtrack.engine.sectors import merge_sectors, parse_sector
+    from circtrack.guards import check_cli_labels
 
     if output == "-":
         raise UsageError("update needs an output file (-o OUT.csv), not stdout; the state lives beside it")
@@ -125,6 +139,7 @@ def options(output, config, variables, metrics, label, sectors, workers, schedul
     cfg = V.apply(C.load(config), vary)        # variants are parameters: a change needs --rebuild
     user_ids = [m.strip() for m in metrics.split(",") if m.strip()] if metrics else None
     secs = [parse_sector(s) for s in sectors]
+    check_cli_labels(label, sectors, secs)
     overrides_cli = parse_vars(variables)
     phash = params_hash(cfg, user_ids, secs, overrides_cli)
     policy = on_bad_file or cfg["run"]["on_bad_file"]
@@ -171,12 +186,10 @@ def load_state(u, rebuild):
     u.state = state
 
 
-def diff_inputs(u, paths, stdin):
-    """Which inputs are new or changed, which were removed, and whether file order or the repeat
-    policy changed. Returns False when there is nothing to do."""
-    from circtrack.engine.locate import locate
-
-    u.files = locate(list(paths), stdin=stdin)
+def diff_inputs(u, files):
+    """Which inputs (``files``, located) are new or changed, which were removed, and whether file
+    order or the repeat policy changed. Returns False when there is nothing to do."""
+    u.files = list(files)
     u.ab = [os.path.abspath(p) for p in u.files]
     u.shown = dict(zip(u.ab, u.files))
     u.records = {a: file_record(a) for a in u.ab}
@@ -407,10 +420,11 @@ def sidecar(u, order, used, repeats, notes):
 
 
 def write_atomically(output, text, prov, new_state):
-    """CSV, sidecar, state, each atomically; the state last (see circtrack/update/__init__.py)."""
+    """CSV, sidecar and state written and synced to temp files first, then renamed in that order,
+    the state last (see circtrack/update/__init__.py): a failure before the renames changes nothing."""
     from circtrack import output as O
 
-    O.atomic_write_text(output, text, before_replace=lambda: _pause_point("before-csv-rename"))
-    O.atomic_write_text(O.sidecar_path(output), json.dumps(prov, indent=2, default=str) + "\n")
-    _pause_point("before-state-write")
-    O.atomic_write_text(state_path(output), json.dumps(new_state, indent=1, default=str) + "\n")
+    O.commit([(output, text), (O.sidecar_path(output), json.dumps(prov, indent=2, default=str) + "\n"),
+              (state_path(output), json.dumps(new_state, indent=1, default=str) + "\n")],
+             before_replace=lambda: _pause_point("before-csv-rename"),
+             between={2: lambda: _pause_point("before-state-write")})
