@@ -212,6 +212,7 @@ def spread(csv_path, output):
 
     if not os.path.exists(csv_path) or os.path.isdir(csv_path):
         raise InputError(f"{csv_path}: no such file; give a CSV written by 'circtrack track' or 'circtrack trend'")
+    (target,) = _outputs(csv_path, ("-o", output))
     try:
         df = S.read_csv(csv_path)
     except Exception as e:  # pandas raises several types for unreadable text
@@ -223,7 +224,7 @@ def spread(csv_path, output):
     if tab.empty:
         raise InputError(f"{csv_path}: nothing to compare: no 'variant' column (run 'circtrack track --vary "
                          "KEY=V1,V2') and no two metrics of one feature group with 'ok' values")
-    _emit(S.table_to_csv(tab, int_cols=("n", "n_positive", "n_negative")), output)
+    _emit([(target, S.table_to_csv(tab, int_cols=("n", "n_positive", "n_negative")))])
 
 
 @click.command()
