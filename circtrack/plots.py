@@ -46,6 +46,8 @@ def _label(row, keys, varying):
 
 def figure(df, metrics=None, calendar="standard", poleward_positive=False):
     """Build and return the matplotlib Figure for the cleaned circtrack table ``df`` (raw CSV table)."""
+    from circtrack import plot_variants as PV
+    df, band, shown = PV.split(df, calendar, poleward_positive)      # several definitions: default line + band
     data = S.clean(df)
     keys, extras = S.key_columns(df)
     if metrics:
@@ -78,6 +80,7 @@ def figure(df, metrics=None, calendar="standard", poleward_positive=False):
                 sel &= (ann["metric"] == mid).to_numpy()
                 a = ann[sel].sort_values("t")
                 g = g.sort_values("t")
+                PV.draw(ax_ts, band, row, mid, colour)
                 ax_ts.plot(g["t"], g["value"], color=colour, lw=0.5, alpha=0.35)
                 if len(a):
                     ax_ts.plot(a["t"], a["value"], "o-", color=colour, ms=3, lw=1.2, label=f"{label} annual mean")
@@ -94,7 +97,7 @@ def figure(df, metrics=None, calendar="standard", poleward_positive=False):
                 std = clim["std"].fillna(0).to_numpy()
                 ax_sc.fill_between(clim.index, clim["mean"] - std, clim["mean"] + std, color=colour, alpha=0.18, lw=0)
             suffix = " (SH sign flipped: poleward > 0)" if poleward_positive and units == "degrees_north" else ""
-            ax_ts.set_title(f"{mid}{suffix}", loc="left")
+            ax_ts.set_title(f"{mid}{suffix}" + (f"; line: {shown}" if shown else ""), loc="left")
             ax_ts.set_ylabel(f"{mid} ({units})")
             ax_ts.set_xlabel("year")
             # whole years on the axis (the data sit at fractional years, mid-month)

@@ -130,3 +130,27 @@ def test_trend_and_season_keep_variants_apart():
     clim, _ = S.seasonal_cycle(df)
     assert set(clim["variant"]) == {"a=1", "a=2"} and len(clim) == 24
     assert io.StringIO(S.table_to_csv(tr)).readline().startswith("source,variant,metric")
+
+
+def test_plot_draws_the_variant_band(tmp_path):
+    """The line is the variant with the packaged defaults; the band spans the variants' annual means."""
+    from circtrack import plot_variants as PV
+    rows = []
+    for y in range(2000, 2004):
+        for mth in range(1, 13):
+            for v, off in (("cells.level_hpa=400", -1.0), ("cells.level_hpa=500", 0.0), ("cells.level_hpa=600", 2.0)):
+                rows.append(["q", f"{y:04d}-{mth:02d}-15", "NH", "zonal", v, "hadley_edge_lat",
+                             str(30 + off + 0.1 * y), "degrees_north", "ok"])
+    df = pd.DataFrame(rows, columns=["source", "time", "hemisphere", "sector", "variant", "metric", "value", "units",
+                                     "flag"])
+    shown, band, name = PV.split(df)
+    assert name == "cells.level_hpa=500" and "variant" not in shown.columns and len(shown) == 48
+    assert band["lo"].to_numpy() == pytest.approx(29.0 + 0.1 * np.arange(2000, 2004))
+    assert band["hi"].to_numpy() == pytest.approx(32.0 + 0.1 * np.arange(2000, 2004))
+    assert PV.default_variant(["jets.subtropical_method=upper_wind", "jets.subtropical_method=shear"]) == \
+        "jets.subtropical_method=shear"
+    src = tmp_path / "v.csv"
+    df.to_csv(src, index=False)
+    r = CliRunner().invoke(main, ["plot", str(src), "-o", str(tmp_path / "p.png")])
+    assert r.exit_code == 0, r.output
+    assert (tmp_path / "p.png").stat().st_size > 1000
