@@ -64,6 +64,10 @@ def _same(a, b):
     ("jets.upper_level_hpa", [250.0, 150.0]),
     ("surface.olr_threshold_w_m2", [240.0, 260.0]),
     ("run.min_coverage", [0.5, 0.9]),
+    ("cells.psi_layer_hpa", [[], [300.0, 700.0]]),
+    ("cells.edge_fraction", [0.0, 0.25]),
+    ("jets.subtropical_method", ["shear", "upper_wind"]),
+    ("surface.olr_fraction_of_max", [0.0, 0.9]),
 ])
 def test_each_variant_equals_a_plain_run_with_that_setting(synth, key, values):
     text = f"{key}=" + ",".join(str(v) for v in values)
