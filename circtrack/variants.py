@@ -171,9 +171,11 @@ def apply(cfg, options):
 
 def expand(cfg):
     """The variants of ``cfg`` (empty list when nothing varies): product of the values, keys sorted."""
-    vary = cfg.get("vary") or {}
-    if not vary:
+    if not cfg.get("vary"):
         return []
+    from circtrack.config import defaults as _defaults
+
+    vary = from_table(cfg["vary"], _defaults())      # as written in a config file, or already checked
     keys = sorted(vary)
     out = []
     for combo in itertools.product(*[vary[k] for k in keys]):

@@ -206,3 +206,47 @@ def test_update_with_vary_equals_one_track(tmp_path):
     r = CliRunner().invoke(main, ["update", *files, "-o", str(up), "--metrics", "hadley_edge_lat,subtropical_jet_lat",
                                   "--vary", "cells.level_hpa=400,500"])
     assert r.exit_code == 2 and "--rebuild" in r.output
+
+
+def test_engine_takes_a_config_files_vary_table_as_it_is(tmp_path):
+    """engine.track with config.load() of a file holding [vary] (nested keys): no --vary needed."""
+    conf = tmp_path / "c.toml"
+    conf.write_text("[vary]\ncells.level_hpa = [400.0, 500.0]\n")
+    out = engine.track(FILES, config.load(str(conf)), metric_ids=["hadley_edge_lat"])
+    assert sorted(set(out.columns["variant"])) == ["cells.level_hpa=400", "cells.level_hpa=500"]
+    conf.write_text("[vary]\ncells.level_hpa = 400.0\n")
+    with pytest.raises(UsageError, match="expected a list of values"):
+        engine.track(FILES, config.load(str(conf)), metric_ids=["hadley_edge_lat"])
+
+
+def test_readme_worked_example_numbers(tmp_path):
+    """The numbers README.md quotes in "Several definitions in one read" come from these commands
+    (through the CSV files, as a user runs them: the SH jet's tiny slopes change sign with rounding)."""
+    from circtrack import stats as S
+
+    defs, trends = tmp_path / "defs.csv", tmp_path / "defs_trends.csv"
+    r = CliRunner().invoke(main, ["track", str(SAMPLE), "-o", str(defs), "-q", "--metrics",
+                                  "hadley_edge_lat,subtropical_jet_lat,eddy_jet_lat",
+                                  "--vary", "cells.edge_fraction=0,0.25", "--vary", "jets.subtropical_method=shear,upper_wind"])
+    assert r.exit_code == 0, r.output
+    for args in (["spread", str(defs), "-o", str(tmp_path / "s.csv")], ["trend", str(defs), "-o", str(trends)],
+                 ["spread", str(trends), "-o", str(tmp_path / "ts.csv")]):
+        r = CliRunner().invoke(main, args)
+        assert r.exit_code == 0, r.output
+    sp = S.read_csv(tmp_path / "s.csv")
+    sp["range"] = sp["range"].astype(float)
+    mean_range = sp.groupby(["metric", "hemisphere"])["range"].mean().round(2)
+    assert (mean_range["hadley_edge_lat", "NH"], mean_range["hadley_edge_lat", "SH"]) == (3.55, 4.12)
+    assert (mean_range["subtropical_jet_lat", "NH"], mean_range["subtropical_jet_lat", "SH"]) == (0.28, 0.08)
+    assert (mean_range["eddy_jet_lat", "NH"], mean_range["eddy_jet_lat", "SH"]) == (0.0, 0.0)
+    assert (mean_range["tropical_edge", "NH"], mean_range["tropical_edge", "SH"]) == (5.28, 4.12)
+    ts = S.read_csv(tmp_path / "ts.csv")
+    for col in ("min", "max"):
+        ts[col] = ts[col].astype(float)
+    ann = ts[(ts["season"] == "annual") & (ts["method"] == "ols_ar1")].set_index(["metric", "hemisphere"])
+    h = ann.loc[("hadley_edge_lat", "NH")]
+    assert (round(h["min"], 2), round(h["max"], 2), h["signs_agree"]) == (0.28, 0.40, "true")
+    h = ann.loc[("hadley_edge_lat", "SH")]
+    assert (round(h["min"], 2), round(h["max"], 2), h["signs_agree"]) == (-0.43, -0.28, "true")
+    assert ann.loc[("subtropical_jet_lat", "SH"), "signs_agree"] == "false"
+    assert abs(ann.loc[("subtropical_jet_lat", "NH"), "min"]) < 0.015
