@@ -14,7 +14,7 @@ from circtrack.errors import UsageError
 SAMPLE = Path(__file__).resolve().parent.parent / "sample_inputs" / "model_q"
 FILES = [str(p) for p in sorted(SAMPLE.glob("*.nc"))[:2]]
 METRICS = ["hadley_edge_lat", "hadley_strength", "subtropical_jet_lat", "eddy_jet_lat", "olr_edge_lat",
-           "surface_wind_zero_lat"]
+           "surface_wind_zero_lat", "tropopause_break_lat"]
 
 
 @pytest.fixture(scope="module")
@@ -26,11 +26,18 @@ def synth(tmp_path_factory):
     lat = np.deg2rad(ds["lat"].values)
     shape = (ds.sizes["time"], ds.sizes["lat"], ds.sizes["lon"])
     rlut = 290.0 - 120.0 * np.sin(lat) ** 2 - 30.0 * np.exp(-(np.rad2deg(lat) / 8.0) ** 2)
-    uas = -6.0 * np.cos(3.0 * lat) * np.cos(lat)
+    uas = -6.0 * np.sin(np.pi * np.abs(np.rad2deg(lat)) / 30.0)     # trades peak at 15, zero at 30 deg
     ds["rlut"] = (("time", "lat", "lon"), np.broadcast_to(rlut[None, :, None], shape).astype("float32"),
                   {"standard_name": "toa_outgoing_longwave_flux", "units": "W m-2"})
     ds["uas"] = (("time", "lat", "lon"), np.broadcast_to(uas[None, :, None], shape).astype("float32"),
                  {"standard_name": "eastward_wind", "units": "m s-1", "height": 10.0})
+    levels = ds["plev"].values
+    zkm = 7.4 * np.log(1000.0 / levels)          # as tests/metrics/test_tropopause.py: a break near 30 deg
+    H = 13.5 - 3.5 * np.tanh((np.abs(ds["lat"].values) - 30) / 6.0)
+    T = 300 - 6.5 * np.minimum(zkm[:, None], H[None, :])
+    ds["ta"] = (("time", "plev", "lat", "lon"),
+                np.broadcast_to(T[None, :, :, None], (shape[0], levels.size) + shape[1:]).astype("float32"),
+                {"standard_name": "air_temperature", "units": "K"})
     assert LAT.size == ds.sizes["lat"]
     return [write(ds, tmp_path_factory.mktemp("synth") / "synth.nc")]
 
@@ -68,6 +75,7 @@ def _same(a, b):
     ("cells.edge_fraction", [0.0, 0.25]),
     ("jets.subtropical_method", ["shear", "upper_wind"]),
     ("surface.olr_fraction_of_max", [0.0, 0.9]),
+    ("tropopause.break_method", ["steepest_slope", "height_threshold"]),
 ])
 def test_each_variant_equals_a_plain_run_with_that_setting(synth, key, values):
     text = f"{key}=" + ",".join(str(v) for v in values)
@@ -79,6 +87,8 @@ def test_each_variant_equals_a_plain_run_with_that_setting(synth, key, values):
     for v in values:
         plain = engine.track(synth, _cfg(**{key.replace(".", "__"): v}), metric_ids=METRICS)
         _same(_rows(out, variants.name_of({key: v})), _rows(plain))
+    bad = ~np.isfinite(out.columns["value"])
+    assert not bad.any(), set(zip(out.columns["metric"][bad], out.columns["flag"][bad]))
 
 
 def test_product_of_two_vary_options():
