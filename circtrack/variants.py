@@ -102,7 +102,10 @@ def check_value(defaults, key, value, where):
         merged = merge(defaults, {section: {name: value}})
     except UsageError as e:
         raise UsageError(f"{where}: {e}") from None
-    return merged[section][name]
+    value, default = merged[section][name], defaults[section][name]
+    if isinstance(default, float) and isinstance(value, int) and not isinstance(value, bool):
+        value = float(value)                # 400 and 400.0 are one setting
+    return value
 
 
 def parse_option(text, defaults):
