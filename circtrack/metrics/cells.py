@@ -34,7 +34,8 @@ EDGE_REF = ("Frierson, Lu & Chen (2007) GRL 34, L18804 (edge at the first psi500
 _PSI = ("psi = 2 pi a cos(lat)/g * integral of ([v] - c) dp from the top data level (psi = 0 there, cells.top) to p; "
         "[v] zero-filled below the ground (the mean over valid longitudes times their share); c removes the column's "
         "net mass flux where there is air, so psi = 0 at the bottom too (cells.balance); psi at cells.level_hpa "
-        "(500 hPa), interpolated linearly in log-p when that level is absent (note interpolated_level)")
+        "(500 hPa), or its pressure-weighted mean over cells.psi_layer_hpa when that is given, interpolated linearly "
+        "in log-p when a level is absent (note interpolated_level)")
 LAYER_REF = ("psi averaged over a layer (e.g. 700-300 hPa) instead of one level: among the streamfunction variants "
              "compared by Davis & Rosenlof (2012) J. Climate 25, 1061-1078 and Waugh et al. (2018) J. Climate 31, "
              "7565-7581 (from memory)")
@@ -114,9 +115,9 @@ def psi_layer(cfg):
 
 
 def psi_used(psi, plev, cfg):
-    """psi ``(N, J)`` where the metrics look: at cells.level_hpa, or the layer mean over
-    cells.psi_layer_hpa; with the coverage there, and whether a level was interpolated. None when
-    the data do not reach that level or layer."""
+    """``(psi (N, J), interpolated, where)``: psi where the metrics look, at cells.level_hpa or the
+    layer mean over cells.psi_layer_hpa; whether a level was interpolated; the level or the layer
+    (for the coverage there). psi is None when the data do not reach that level or layer."""
     tol = cfg["run"]["level_tolerance_hpa"]
     layer = psi_layer(cfg)
     if layer is None:
