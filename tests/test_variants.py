@@ -260,3 +260,33 @@ def test_readme_worked_example_numbers(tmp_path):
     assert (round(h["min"], 2), round(h["max"], 2), h["signs_agree"]) == (-0.43, -0.28, "true")
     assert ann.loc[("subtropical_jet_lat", "SH"), "signs_agree"] == "false"
     assert abs(ann.loc[("subtropical_jet_lat", "NH"), "min"]) < 0.015
+
+
+def test_a_family_no_varied_setting_touches_runs_once(monkeypatch):
+    from circtrack import registry
+
+    calls = {"jets": 0, "cells": 0}
+    for name in calls:
+        fam = registry._FAMILIES[name]
+        orig = fam.compute
+
+        def counted(fields, cfg, _orig=orig, _name=name):
+            calls[_name] += 1
+            return _orig(fields, cfg)
+        monkeypatch.setattr(fam, "compute", counted)
+    cfg = _cfg(["cells.level_hpa=400,500,600"])
+    cfg["run"]["time_chunk"] = 100                      # one batch of the two files' 24 steps
+    engine.track(FILES, cfg, metric_ids=["hadley_edge_lat", "eddy_jet_lat"])
+    assert calls["cells"] == 3 * calls["jets"] and calls["jets"] >= 1
+
+
+def test_recorded_settings_decide_reuse():
+    from circtrack.engine.features import _Reads, _setting
+
+    seen = set()
+    cfg = _Reads({"cells": {"level_hpa": 500.0, "top": "x"}, "jets": {"w": [1, 2]}}, seen)
+    assert cfg["cells"]["level_hpa"] == 500.0 and cfg["jets"].get("w") == [1, 2] and cfg["jets"].get("no") is None
+    assert seen == {"cells.level_hpa", "jets.w"}
+    dict(cfg["cells"])                                  # a whole table walked
+    assert "cells.*" in seen
+    assert _setting({"cells": {"a": 1}}, "cells.*") == {"a": 1} and _setting({"cells": {}}, "jets.w") is None

@@ -61,11 +61,28 @@ class Detector:
             for fam in self.rp.plan.families:
                 if sname != "zonal" and not fam.sectors:
                     continue
-                for v, cfg in enumerate(self.cfgs):
-                    results = fam.compute(fields, cfg)
+                for v, results in enumerate(self._per_variant(fam, fields)):
                     for m in fam.metrics:
                         if m.id in self.wanted:
                             self._append(tidx, eidx, v, sname, m, results[m.id])
+
+    def _per_variant(self, fam, fields):
+        """The family's results for each variant. A plain run calls it once with the run's config.
+        With variants, each call notes the settings the family looked up; a variant whose values of
+        all those settings equal an earlier variant's gets that variant's results (the family is a
+        function of the fields and the settings it reads), so a family no varied key touches runs once."""
+        if len(self.cfgs) == 1:
+            return [fam.compute(fields, self.cfgs[0])]
+        done, out = [], []
+        for cfg in self.cfgs:
+            same = next((res for seen, first, res in done
+                         if all(_setting(cfg, k) == _setting(first, k) for k in seen)), None)
+            if same is None:
+                seen = set()
+                same = fam.compute(fields, _Reads(cfg, seen))
+                done.append((seen, cfg, same))
+            out.append(same)
+        return out
 
     def _append(self, tidx, eidx, v, sname, m, res):
         cols = self.cols
@@ -78,3 +95,51 @@ class Detector:
             cols["metric"].append(np.full(tidx.size, m.id, dtype=object))
             cols["value"].append(res.value[:, h])
             cols["flag"].append(res.flag[:, h].astype(object))
+
+
+class _Reads(dict):
+    """A config that notes in ``seen`` every setting looked up (``section.key``; ``section.*`` when a
+    whole table is walked)."""
+
+    def __init__(self, d, seen, prefix=""):
+        super().__init__(d)
+        self._seen, self._prefix = seen, prefix
+
+    def __getitem__(self, key):
+        val = super().__getitem__(key)
+        if isinstance(val, dict):
+            return _Reads(val, self._seen, f"{self._prefix}{key}.")
+        self._seen.add(f"{self._prefix}{key}")
+        return val
+
+    def get(self, key, default=None):
+        return self[key] if key in self else default
+
+    def _whole(self):
+        self._seen.add(f"{self._prefix}*")
+
+    def items(self):
+        self._whole()
+        return super().items()
+
+    def values(self):
+        self._whole()
+        return super().values()
+
+    def keys(self):
+        self._whole()
+        return super().keys()
+
+    def __iter__(self):
+        self._whole()
+        return super().__iter__()
+
+
+def _setting(cfg, name):
+    """The value of ``section.key`` (``*``: the whole table) in a plain config."""
+    node = cfg
+    for part in name.split("."):
+        if part == "*":
+            return node
+        node = node.get(part) if isinstance(node, dict) else None
+    return node
