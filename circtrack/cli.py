@@ -21,15 +21,16 @@ def main(debug):
 
 def _run_track(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
                repeated_times=None, units=(), levels=(), fail_on_empty=False, anonymous=False, cache_dir=None,
-               profile=False, cores_by_longitude=None):
+               profile=False, cores_by_longitude=None, vary=()):
     from circtrack import config as C
+    from circtrack import variants as V
     from circtrack import engine, guards as G, output as O
     from circtrack.cluster import scheduler_context
     from circtrack.inputs.files import expand
 
     if workers and scheduler:
         raise UsageError("--workers and --scheduler exclude each other; give one")
-    cfg = apply_storage(apply_units(C.load(config), units, levels), anonymous, cache_dir)
+    cfg = apply_storage(apply_units(V.apply(C.load(config), vary), units, levels), anonymous, cache_dir)
     if repeated_times:
         cfg["run"]["repeated_times"] = repeated_times
     if on_bad_file:
@@ -120,7 +121,7 @@ def scan(paths, config, variables, units, levels, anonymous, cache_dir):
 @guarded
 def metrics_cmd(fmt):
     """List the metric catalogue: id, inputs, units, definition, published source."""
-    from circtrack.metrics import catalogue
+    from circtrack.metrics import catalogue, groups
     from circtrack.registry import hemispheres
 
     cat = catalogue()
@@ -136,18 +137,25 @@ def metrics_cmd(fmt):
         click.echo("| metric id | rows | inputs | units | definition | reference |\n|---|---|---|---|---|---|")
         for m in cat.values():
             click.echo(f"| `{m.id}` | {'/'.join(hemispheres(m))} | {' '.join(m.inputs)} | {m.units} | {m.definition} | {m.reference} |")
+        click.echo("\n| feature group | metrics | source |\n|---|---|---|")
+        for g in groups().values():
+            click.echo(f"| `{g.id}` ({g.long_name}) | {', '.join(f'`{i}`' for i in g.metric_ids)} | {g.reference} |")
         return
     for m in cat.values():
         click.echo(f"{m.id}  [{'/'.join(hemispheres(m))}; {m.units}; needs {' '.join(m.inputs)}"
                    f"{'; per sector too' if m.sectors else ''}]")
         click.echo(f"    {m.long_name}: {m.definition}")
         click.echo(f"    source: {m.reference}")
+    click.echo("\nfeature groups (metrics marking the same feature; 'circtrack spread' compares them):")
+    for g in groups().values():
+        click.echo(f"{g.id}: {g.long_name}: {', '.join(g.metric_ids)}")
+        click.echo(f"    source: {g.reference}")
 
 
-from circtrack.cli_findings import plot, season, trend  # noqa: E402
+from circtrack.cli_findings import plot, season, spread, trend  # noqa: E402
 from circtrack.cli_fields import zonal_means  # noqa: E402
 
-for _cmd in (trend, season, plot, zonal_means):
+for _cmd in (trend, season, spread, plot, zonal_means):
     main.add_command(_cmd)
 
 from circtrack.update import make_command as _make_update  # noqa: E402

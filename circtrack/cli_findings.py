@@ -219,6 +219,36 @@ def season(csv_path, output, base, anomalies, metrics, calendar):
     _emit([(targets[0], S.table_to_csv(clim))] + ([(targets[1], S.table_to_csv(anom))] if anomalies else []))
 
 
+@click.command("spread")
+@click.argument("csv_path", metavar="CSV")
+@click.option("-o", "--output", default=None, help="Output CSV (default: stdout).")
+@guarded
+def spread(csv_path, output):
+    """How far apart the definitions lie: per time (or season and trend method) the n, min, max, range,
+    mean and standard deviation across the variants of each metric (track --vary) and across the
+    metrics of each feature group ('circtrack metrics' lists them); on a 'trend' table also whether
+    the signs of the trends agree."""
+    from circtrack import spread as SP
+    from circtrack import stats as S
+    from circtrack.metrics import groups
+
+    if not os.path.exists(csv_path) or os.path.isdir(csv_path):
+        raise InputError(f"{csv_path}: no such file; give a CSV written by 'circtrack track' or 'circtrack trend'")
+    (target,) = _outputs(csv_path, ("-o", output))
+    try:
+        df = S.read_csv(csv_path)
+    except Exception as e:  # pandas raises several types for unreadable text
+        raise InputError(f"{csv_path}: not a readable CSV ({type(e).__name__}); give a CSV written by 'circtrack track'")
+    try:
+        tab = SP.spread(df, {g.id: g.metric_ids for g in groups().values()})
+    except SP.SpreadInputError as e:
+        raise InputError(f"{csv_path}: {e}; give a CSV written by 'circtrack track' or 'circtrack trend'")
+    if tab.empty:
+        raise InputError(f"{csv_path}: nothing to compare: no 'variant' column (run 'circtrack track --vary "
+                         "KEY=V1,V2') and no two metrics of one feature group with 'ok' values")
+    _emit([(target, S.table_to_csv(tab, int_cols=("n", "n_positive", "n_negative")))])
+
+
 @click.command()
 @click.argument("csv_path", metavar="CSV", required=False)
 @click.option("-o", "--output", required=True,

@@ -260,6 +260,9 @@ def track_options(fn):
         click.option("--repeated-times", type=click.Choice(["refuse", "keep-first", "keep-last"]), default=None,
                      help="A time step found in two files with different values: refuse (default) or keep the "
                           "one from the file given first/last."),
+        click.option("--vary", "vary", multiple=True, metavar="KEY=V1,V2,...",
+                     help="Compute with each of these values of config KEY (e.g. cells.level_hpa=400,500,600) from "
+                          "one read of the data; repeat for every combination; rows get a 'variant' column."),
         click.option("-q", "--quiet", is_flag=True, help="No progress output (the end-of-run summary stays)."),
         click.option("--fail-on-empty", "fail_on_empty", is_flag=True,
                      help="Exit 1 (after writing the output) when a metric has no value in any row, e.g. for "

@@ -22,7 +22,7 @@ def merge(base: dict, extra: dict, where="config") -> dict:
     out = copy.deepcopy(base)
     for key, val in extra.items():
         if key not in out:
-            if where in ("config.variables", "config.sectors", "config.units", "config.levels"):
+            if where in ("config.variables", "config.sectors", "config.units", "config.levels", "config.vary"):
                 out[key] = val
                 continue
             raise UsageError(f"unknown key '{key}' in {where}; known keys: {', '.join(sorted(base))}")

@@ -251,6 +251,8 @@ def _draw_time_series(ax, sub, keys, extras, rec, colours, calendar, min_years, 
             x, y = _values(g, mon, False)
         else:
             x, y = _values(g, mon, rec["submonthly"])
+        from circtrack import plot_variants as PV
+        PV.draw(ax, rec.get("band"), row, sub["metric"].iloc[0], colour)
         ann = _annual(mon)
         main = len(ann) < 2            # no annual means to draw: the values are the main line
         if rec["submonthly"] and not main and not ensemble:
@@ -360,11 +362,15 @@ def _page(data, rows, keys, extras, rec, colours, calendar, min_years, poleward_
 def pages(df, metrics=None, calendar="standard", poleward_positive=True, min_years=S.MIN_TREND_YEARS):
     """The figures of the raw circtrack table ``df``: a list of ``(page name, Figure)``, one page per
     metric family (continued on further pages beyond :data:`MAX_ROWS` panel rows)."""
+    from circtrack import plot_variants as PV
+
+    df, band, shown = PV.split(df, calendar, poleward_positive)      # several definitions: default line + band
     keys, extras = S.key_columns(df)
     with warnings.catch_warnings(), np.errstate(all="ignore"), plt.rc_context(STYLE):
         warnings.simplefilter("ignore")
         data = _prepare(df, metrics, calendar, poleward_positive)
         rec = describe_record(data, keys)
+        rec["band"], rec["variant_shown"] = band, shown
         colour_keys = data[["hemisphere", "source"]].drop_duplicates()
         colour_keys = sorted(map(tuple, colour_keys.to_numpy().tolist()),
                              key=lambda hs: ({"NH": 0, "SH": 1}.get(hs[0], 2), hs[0], hs[1]))
@@ -388,6 +394,8 @@ def pages(df, metrics=None, calendar="standard", poleward_positive=True, min_yea
                 title = ("" if fam == "selection" else f"{fam.replace('_', ' ')} ") + what
                 title = title[0].upper() + title[1:]
                 title = title + (f" ({j + 1}/{len(chunks)})" if len(chunks) > 1 else "")
+                if shown:
+                    title += f"; line: {shown}, shading: range of the definitions"
                 out.append((name, _page(data, chunk, keys, extras, rec, colours, calendar, min_years,
                                         poleward_positive, title)))
     return out

@@ -57,17 +57,21 @@ class Family:
     # array (t, *extra, *rest, S); the family sees fields.extras[name] as (N, *rest) per sector.
     # A reducer with a keyword parameter ``lat`` also receives the ascending latitudes (J,).
     reducers: dict = field(default_factory=dict)
+    # the config keys ("section.name") the reducers read; None: not declared (--vary then refused)
+    reducer_keys: tuple | None = None
 
 
 _FAMILIES: dict[str, Family] = {}
 _METRICS: dict[str, Metric] = {}
 
 
-def register_family(name, *, inputs, levels, sectors=False, metrics, optional_inputs=(), reducers=None):
+def register_family(name, *, inputs, levels, sectors=False, metrics, optional_inputs=(), reducers=None,
+                    reducer_keys=None):
     """Decorator registering a family's compute function and the metrics it produces."""
 
     def wrap(fn):
-        fam = Family(name, tuple(inputs), levels, fn, sectors, [], tuple(optional_inputs), dict(reducers or {}))
+        fam = Family(name, tuple(inputs), levels, fn, sectors, [], tuple(optional_inputs), dict(reducers or {}),
+                     None if reducer_keys is None else tuple(reducer_keys))
         for m in metrics:
             m = Metric(**{**m.__dict__, "family": name, "inputs": tuple(inputs), "sectors": sectors})
             if m.id in _METRICS:

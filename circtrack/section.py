@@ -91,7 +91,7 @@ def section_data(path, cfg, time=None, overrides=None, label=None):
     if float(cfg["jets"].get("eddy_lowpass_days", 0) or 0) > 0:
         raise UsageError("--section draws one time step, but jets.eddy_lowpass_days in the config filters the "
                          "eddy-driven jet over the whole record; set jets.eddy_lowpass_days = 0 for the section")
-    cfg = {**cfg, "sectors": {}}                       # the section is the full zonal mean
+    cfg = {**cfg, "sectors": {}, "vary": {}}           # the full zonal mean, one definition (the config's own)
     paths = _with_siblings(path)
     # planning only (reads no data): the time axis, to choose the time step
     plan = engine.Run(paths, cfg, metric_ids=METRIC_IDS, overrides=overrides, label=label)

@@ -66,11 +66,17 @@ class StatsInputError(ValueError):
 # ----------------------------------------------------------------------------- input handling
 
 def key_columns(df):
-    """Key columns other than time: source, any extra keys (e.g. member), hemisphere, sector, metric."""
+    """Key columns other than time: source, any extra keys, hemisphere, sector, metric.
+
+    Extra keys are the columns between ``time`` and ``hemisphere`` (e.g. ``member``) and those
+    between ``sector`` and ``metric`` (``variant``, from ``track --vary``): each gets its own series,
+    trend and climatology."""
     cols = list(df.columns)
     extras = []
     if "time" in cols and "hemisphere" in cols:
         extras = cols[cols.index("time") + 1: cols.index("hemisphere")]
+    if "sector" in cols and "metric" in cols:
+        extras += cols[cols.index("sector") + 1: cols.index("metric")]
     return ["source", *extras, "metric", "hemisphere", "sector"], extras
 
 

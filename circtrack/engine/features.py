@@ -6,6 +6,9 @@ the extra key (e.g. ensemble member along a dimension), hemisphere, sector, metr
 flag. The families see a :class:`~circtrack.metrics.common.Fields` per sector: N samples = time
 steps x extra keys, the zonal mean and the share of valid longitudes of every role, the
 reducers' extras, the record's time step and the filtered means.
+
+With variants (``--vary``), every family runs once per variant on the same fields, with that
+variant's config, and the column ``v`` holds the variant's index (0 in a plain run).
 """
 
 from __future__ import annotations
@@ -16,7 +19,7 @@ from circtrack.engine import profile
 from circtrack.metrics.common import Fields
 from circtrack.registry import hemispheres
 
-COLUMNS = ("t", "e", "hemisphere", "sector", "metric", "value", "flag")
+COLUMNS = ("t", "e", "v", "hemisphere", "sector", "metric", "value", "flag")
 
 
 class Detector:
@@ -36,6 +39,7 @@ class Detector:
                            if getattr(rd, "from_level_hpa", None) is not None}
         self.wanted = set(rp.plan.metric_ids)
         self.cols = {k: [] for k in COLUMNS}
+        self.cfgs = [v.cfg for v in rp.variants] or [rp.cfg]
 
     def fields(self, reduced, lowpassed, s, bt):
         """The :class:`Fields` of sector ``s`` for a batch of ``bt`` time steps."""
@@ -62,19 +66,87 @@ class Detector:
             for fam in self.rp.plan.families:
                 if sname != "zonal" and not fam.sectors:
                     continue
-                with profile.timed("families (parent)", fam.name):
-                    results = fam.compute(fields, self.cfg)
-                for m in fam.metrics:
-                    if m.id in self.wanted:
-                        self._append(tidx, eidx, sname, m, results[m.id])
+                for v, results in enumerate(self._per_variant(fam, fields)):
+                    for m in fam.metrics:
+                        if m.id in self.wanted:
+                            self._append(tidx, eidx, v, sname, m, results[m.id])
 
-    def _append(self, tidx, eidx, sname, m, res):
+    def _per_variant(self, fam, fields):
+        """The family's results for each variant. A plain run calls it once with the run's config.
+        With variants, each call notes the settings the family looked up; a variant whose values of
+        all those settings equal an earlier variant's gets that variant's results (the family is a
+        function of the fields and the settings it reads), so a family no varied key touches runs once."""
+        if len(self.cfgs) == 1:
+            with profile.timed("families (parent)", fam.name):
+                return [fam.compute(fields, self.cfgs[0])]
+        done, out = [], []
+        for cfg in self.cfgs:
+            same = next((res for seen, first, res in done
+                         if all(_setting(cfg, k) == _setting(first, k) for k in seen)), None)
+            if same is None:
+                seen = set()
+                with profile.timed("families (parent)", fam.name):
+                    same = fam.compute(fields, _Reads(cfg, seen))
+                done.append((seen, cfg, same))
+            out.append(same)
+        return out
+
+    def _append(self, tidx, eidx, v, sname, m, res):
         cols = self.cols
         for h, hemi in enumerate(hemispheres(m)):
             cols["t"].append(tidx)
             cols["e"].append(eidx)
+            cols["v"].append(np.full(tidx.size, v, dtype=np.int32))
             cols["hemisphere"].append(np.full(tidx.size, hemi, dtype=object))
             cols["sector"].append(np.full(tidx.size, sname, dtype=object))
             cols["metric"].append(np.full(tidx.size, m.id, dtype=object))
             cols["value"].append(res.value[:, h])
             cols["flag"].append(res.flag[:, h].astype(object))
+
+
+class _Reads(dict):
+    """A config that notes in ``seen`` every setting looked up (``section.key``; ``section.*`` when a
+    whole table is walked)."""
+
+    def __init__(self, d, seen, prefix=""):
+        super().__init__(d)
+        self._seen, self._prefix = seen, prefix
+
+    def __getitem__(self, key):
+        val = super().__getitem__(key)
+        if isinstance(val, dict):
+            return _Reads(val, self._seen, f"{self._prefix}{key}.")
+        self._seen.add(f"{self._prefix}{key}")
+        return val
+
+    def get(self, key, default=None):
+        return self[key] if key in self else default
+
+    def _whole(self):
+        self._seen.add(f"{self._prefix}*")
+
+    def items(self):
+        self._whole()
+        return super().items()
+
+    def values(self):
+        self._whole()
+        return super().values()
+
+    def keys(self):
+        self._whole()
+        return super().keys()
+
+    def __iter__(self):
+        self._whole()
+        return super().__iter__()
+
+
+def _setting(cfg, name):
+    """The value of ``section.key`` (``*``: the whole table) in a plain config."""
+    node = cfg
+    for part in name.split("."):
+        if part == "*":
+            return node
+        node = node.get(part) if isinstance(node, dict) else None
+    return node

@@ -66,13 +66,7 @@ class Plan:
                                  "sector metrics such as eddy_jet_lat")
         roles = {}
         for f in chosen:
-            for role, lev in f.levels(cfg).items():
-                if role in roles and (roles[role] is None or lev is None):
-                    roles[role] = None
-                elif role in roles:
-                    roles[role] = sorted(set(roles[role]) | set(lev))
-                else:
-                    roles[role] = lev
+            _add_levels(roles, f.levels(cfg))
         reducers = {}
         for f in chosen:
             for name, fn in f.reducers.items():
@@ -80,6 +74,24 @@ class Plan:
                     raise ValueError(f"reducer {name} declared by two families")
                 reducers[name] = fn
         return cls(metric_ids, chosen, roles, reducers)
+
+
+def _add_levels(roles, more):
+    """Join ``more`` ({role: levels or None}) into ``roles``: the union of levels, None (all) wins."""
+    for role, lev in more.items():
+        if role in roles and (roles[role] is None or lev is None):
+            roles[role] = None
+        elif role in roles:
+            roles[role] = sorted(set(roles[role]) | set(lev))
+        else:
+            roles[role] = lev
+
+
+def union_levels(plan, others):
+    """``plan`` reads every level the plans of the variants (``others``) need."""
+    for o in others:
+        _add_levels(plan.roles, o.roles)
+    return plan
 
 
 # --------------------------------------------------------------------------- inputs
@@ -306,6 +318,7 @@ class RunPlan:
     masks_of: list             # longitude masks per input (full circle first)
     lowpass: object            # lowpass.Lowpass or None
     batches: list              # (b0, b1) ranges of `times` gathered at once
+    variants: list = field(default_factory=list)   # variants.Variant per --vary combination (none: a plain run)
 
     def job(self, c):
         """The picklable job of chunk ``c`` for :func:`~circtrack.engine.reduce.reduce_chunk`."""
@@ -339,6 +352,8 @@ class RunPlan:
                  f"sectors: {', '.join(['zonal'] + [s[0] for s in self.sectors])}",
                  f"tasks: {len(self.chunks)}, batches: {len(self.batches)}",
                  f"low-pass: {'on' if self.lowpass else 'off'}"]
+        if self.variants:
+            lines.append(f"variants: {len(self.variants)} ({'; '.join(v.name for v in self.variants)})")
         return "\n".join(lines)
 
 

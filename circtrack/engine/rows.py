@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from circtrack import variants as V
 from circtrack.engine.locate import file_stat
 from circtrack.engine.plan import MEMBER_ATTRIBUTES
 from circtrack.engine.times import iso_time
@@ -73,6 +74,11 @@ def outcome(rp, cols, step_notes, label):
             out[name] = np.array([str(x) for x in np.asarray(vals)[g.ravel()]], dtype=object)[flat["e"]]
     out["hemisphere"] = flat["hemisphere"]
     out["sector"] = flat["sector"]
+    variant_key = []
+    if rp.variants:
+        names = np.array([v.name for v in rp.variants], dtype=object)
+        out["variant"] = names[flat["v"].astype(int)] if flat["v"].size else flat["v"].astype(object)
+        variant_key = ["variant"]
     out["metric"] = flat["metric"]
     out["value"] = flat["value"].astype(float)
     out["units"] = np.array([cat[m].units for m in flat["metric"]], dtype=object)
@@ -85,7 +91,8 @@ def outcome(rp, cols, step_notes, label):
     prov = provenance(rp, iso, notes, extra_names)
     # notes the metrics added to their flags (e.g. unbalanced_column, with its size): where they occur
     prov["flag_notes"] = note_summary(out["time"], out["hemisphere"], out["metric"], out["flag"], out["value"])
-    return Outcome(out, ["source", "time", *extra_names, "hemisphere", "sector", "metric"], prov, flat["t"])
+    return Outcome(out, ["source", "time", *extra_names, "hemisphere", "sector", *variant_key, "metric"], prov,
+                   flat["t"])
 
 
 def provenance(rp, iso, notes, extra_names):
@@ -118,6 +125,9 @@ def provenance(rp, iso, notes, extra_names):
     }
     if rp.lowpass:
         prov["lowpass"] = rp.lowpass.describe()
+    if rp.variants:
+        prov["variants"] = [{"variant": v.name, "settings": v.settings} for v in rp.variants]
+        prov["variant_equal_to_parameters"] = V.base_name(rp.cfg)
     return prov
 
 

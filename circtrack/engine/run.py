@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from circtrack import variants as V
 from circtrack.engine import plan as P
 from circtrack.engine import profile
 from circtrack.engine.features import Detector
@@ -105,6 +106,10 @@ class Run:
         self.cores_by_longitude = cores_by_longitude
         if cores_by_longitude:             # the per-longitude table: its in-task reducer, ua on every level
             add_to_plan(plan)
+        variants = V.expand(cfg)
+        if variants:          # one read for all: every level any variant needs
+            V.check_keys(cfg, plan.families)
+            P.union_levels(plan, [P.Plan.make(metric_ids, v.cfg, sectors) for v in variants])
         for role in all_levels:            # e.g. the cross-section: [u] on every level, not just 200/850 hPa
             plan.roles[role] = None
         with profile.timed(STAGES, "open and detect every file"):
@@ -118,7 +123,7 @@ class Run:
             partial_run = only_times is not None or time_step_days is not None
             rest = P.batches_and_lowpass(cfg, axis["times"], plan, infos, partial_run)
         self.record = P.RunPlan(cfg=cfg, plan=plan, sectors=sectors, infos=infos, skipped=skipped,
-                                masks_of=masks_of, **axis, **layout, **rest)
+                                masks_of=masks_of, variants=variants, **axis, **layout, **rest)
 
     def __getattr__(self, name):
         # the plan's fields (times, infos, chunks, skipped, ...) and methods (tasks, job, describe)

@@ -177,6 +177,26 @@ def at_level(field, p, target, *, tolerance):
     return field[..., a, :] + t * (field[..., b, :] - field[..., a, :])
 
 
+def layer_mean(field, p, bounds, *, tolerance):
+    """Pressure-weighted mean of ``field (..., L, J)`` over the layer ``bounds = [low, high]`` (same
+    units as ``p``): trapezoids in pressure over the levels inside the layer, the two bounds taken by
+    :func:`at_level` (a level within ``tolerance``, else linear in log-p). ``None`` when the levels do
+    not reach both bounds.
+    """
+    lo, hi = float(bounds[0]), float(bounds[1])
+    p = np.asarray(p, dtype=float)
+    field = np.asarray(field, dtype=float)
+    top, bottom = at_level(field, p, lo, tolerance=tolerance), at_level(field, p, hi, tolerance=tolerance)
+    if top is None or bottom is None or not hi > lo:
+        return None
+    inside = np.flatnonzero((p > lo + tolerance) & (p < hi - tolerance))
+    inside = inside[np.argsort(p[inside])]
+    ps = np.concatenate([[lo], p[inside], [hi]])
+    prof = np.concatenate([top[..., None, :], field[..., inside, :], bottom[..., None, :]], axis=-2)
+    dp = np.diff(ps)[:, None]
+    return np.sum(0.5 * (prof[..., 1:, :] + prof[..., :-1, :]) * dp, axis=-2) / (hi - lo)
+
+
 def hypsometric_heights(t, p):
     """Heights (m) of pressure levels above the lowest valid level from temperature.
 

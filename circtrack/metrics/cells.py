@@ -23,7 +23,7 @@ from circtrack.errors import UsageError
 from circtrack.kernels.crossings import find_crossing
 from circtrack.kernels.extrema import parabola_vertex, window_extremum
 from circtrack.kernels.vertical import (BALANCE_RULES, TOP_RULES, at_level, column_net_mass_flux, interpolated,
-                                        mass_streamfunction)
+                                        layer_mean, mass_streamfunction)
 from circtrack.metrics.common import HEMISPHERES, add_note, crossing, hemisphere_view, missing, peak, signed
 from circtrack.registry import Metric, Result, register_family
 
@@ -34,7 +34,15 @@ EDGE_REF = ("Frierson, Lu & Chen (2007) GRL 34, L18804 (edge at the first psi500
 _PSI = ("psi = 2 pi a cos(lat)/g * integral of ([v] - c) dp from the top data level (psi = 0 there, cells.top) to p; "
         "[v] zero-filled below the ground (the mean over valid longitudes times their share); c removes the column's "
         "net mass flux where there is air, so psi = 0 at the bottom too (cells.balance); psi at cells.level_hpa "
-        "(500 hPa), interpolated linearly in log-p when that level is absent (note interpolated_level)")
+        "(500 hPa), or its pressure-weighted mean over cells.psi_layer_hpa when that is given, interpolated linearly "
+        "in log-p when a level is absent (note interpolated_level)")
+LAYER_REF = ("psi averaged over a layer (e.g. 700-300 hPa) instead of one level: among the streamfunction variants "
+             "compared by Davis & Rosenlof (2012) J. Climate 25, 1061-1078 and Waugh et al. (2018) J. Climate 31, "
+             "7565-7581 (from memory)")
+FRACTION_REF = ("the edge where psi falls to a fraction of its extremum instead of to zero: among the streamfunction "
+                "variants compared by Davis & Rosenlof (2012) J. Climate 25, 1061-1078 (from memory)")
+_ALT = ("; alternatives: psi averaged (pressure-weighted) over cells.psi_layer_hpa (e.g. [300, 700]; empty: at "
+        "cells.level_hpa, the default) [" + LAYER_REF + "]")
 _RULES = ("; a crossing is never taken across missing latitudes or onto a pole row, an extremum never on the window "
           "edge, a pole row or next to a missing latitude (NaN with a flag naming which); NaN (too_little_data) when "
           "fewer than run.min_coverage of the longitudes are valid at that level on average")
@@ -43,8 +51,10 @@ METRICS = [
     Metric("hadley_edge_lat", "Poleward edge of the Hadley cell", "degrees_north", "hemisphere",
            "first zero of psi500 poleward of the cell's extremum (searched in cells.extremum_window, 0-50 deg "
            "poleward), up to cells.edge_search_limit (70 deg); linear interpolation between grid latitudes; NaN "
-           "(weak_cell) when the cell is weaker than cells.weak_cell_kg_s; " + _PSI + _RULES,
-           EDGE_REF + "; " + PSI_REF),
+           "(weak_cell) when the cell is weaker than cells.weak_cell_kg_s; " + _PSI + _RULES + _ALT +
+           "; and the first latitude poleward of the extremum where psi falls to cells.edge_fraction of it (0, the "
+           "zero, by default; e.g. 0.25) [" + FRACTION_REF + "]",
+           EDGE_REF + "; " + PSI_REF + "; " + LAYER_REF + "; " + FRACTION_REF),
     Metric("hadley_strength", "Hadley cell strength", "kg s-1", "hemisphere",
            "abs(psi500) at the cell's extremum (3-point parabola vertex); " + _PSI + _RULES, PSI_REF),
     Metric("ferrel_edge_lat", "Poleward edge of the Ferrel cell", "degrees_north", "hemisphere",
@@ -83,7 +93,37 @@ def column_rules(cfg):
 
 def _levels(cfg):
     column_rules(cfg)
+    psi_layer(cfg)
+    frac = cfg["cells"]["edge_fraction"]
+    if not 0.0 <= frac < 1.0:
+        raise UsageError(f"cells.edge_fraction = {frac!r} in the config: expected a number from 0 (the zero of psi) "
+                         "up to but not including 1, e.g. 0.25")
     return {"va": None}
+
+
+def psi_layer(cfg):
+    """cells.psi_layer_hpa: None (psi at cells.level_hpa) or ``(low, high)`` hPa; refused with one line
+    when it is not two increasing pressures."""
+    layer = cfg["cells"]["psi_layer_hpa"]
+    if not layer:
+        return None
+    if len(layer) != 2 or not all(isinstance(x, (int, float)) and not isinstance(x, bool) for x in layer) \
+            or not 0 < layer[0] < layer[1]:
+        raise UsageError(f"cells.psi_layer_hpa = {layer!r} in the config: expected [] (psi at cells.level_hpa) or two "
+                         "pressures [low, high] in hPa, lower first, e.g. [300.0, 700.0]")
+    return float(layer[0]), float(layer[1])
+
+
+def psi_used(psi, plev, cfg):
+    """``(psi (N, J), interpolated, where)``: psi where the metrics look, at cells.level_hpa or the
+    layer mean over cells.psi_layer_hpa; whether a level was interpolated; the level or the layer
+    (for the coverage there). psi is None when the data do not reach that level or layer."""
+    tol = cfg["run"]["level_tolerance_hpa"]
+    layer = psi_layer(cfg)
+    if layer is None:
+        level = cfg["cells"]["level_hpa"]
+        return at_level(psi, plev, level, tolerance=tol), interpolated(plev, level, tolerance=tol), level
+    return layer_mean(psi, plev, layer, tolerance=tol), any(interpolated(plev, b, tolerance=tol) for b in layer), layer
 
 
 def streamfunction(fields, cfg=None):
@@ -112,11 +152,12 @@ def compute(fields, cfg):
     psi = streamfunction(fields, cfg)
     plev = fields.plev["va"]
     tol = cfg["run"]["level_tolerance_hpa"]
-    psi_l = at_level(psi, plev, c["level_hpa"], tolerance=tol)
+    psi_l, was_interpolated, where = psi_used(psi, plev, cfg)
     if psi_l is None:
         missing(out.values(), "level_missing")
         return out
-    cov = at_level(fields.coverage["va"], plev, c["level_hpa"], tolerance=tol)
+    cov = (at_level(fields.coverage["va"], plev, where, tolerance=tol) if np.ndim(where) == 0
+           else layer_mean(fields.coverage["va"], plev, where, tolerance=tol))
     thin = cov.mean(axis=-1) < cfg["run"]["min_coverage"]
     lat = fields.lat
     top, _ = column_rules(cfg)
@@ -131,6 +172,9 @@ def compute(fields, cfg):
         weak = np.isfinite(strength.value[:, h]) & ~(ext.value >= c["weak_cell_kg_s"])
         strength.flag[weak, h] = "weak_cell"
         zero = crossing(edge, h, hemi, y, x, ext, direction="down", stop=c["edge_search_limit"])
+        if c["edge_fraction"] > 0:      # where psi falls to that fraction of its extremum (the Ferrel cell still starts at the zero)
+            crossing(edge, h, hemi, y, x, ext, direction="down", stop=c["edge_search_limit"],
+                     level=c["edge_fraction"] * ext.value)
         edge.flag[weak & (ext.flag == "ok"), h] = "weak_cell"
         for r in (edge, strength):
             r.flag[thin, h] = "too_little_data"
@@ -149,7 +193,7 @@ def compute(fields, cfg):
                  unbalanced[:, h], h)
     _boundary(psi_l, lat, c, cfg, out["cell_boundary_lat"], thin)
     add_note([out["cell_boundary_lat"]], "unbalanced_column", unbalanced.any(axis=1))
-    if interpolated(plev, c["level_hpa"], tolerance=tol):
+    if was_interpolated:
         add_note(out.values(), "interpolated_level")
     return out
 

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from circtrack.errors import UsageError
 from circtrack.kernels.crossings import find_level_crossing, reverse
 from circtrack.kernels.extrema import interp_at
 from circtrack.kernels.vertical import at_level
@@ -21,6 +22,10 @@ from circtrack.registry import Metric, Result, register_family
 SHEAR_REF = ("Davis & Rosenlof (2012) J. Climate 25, 1061-1078 and Waugh et al. (2018) J. Climate 31, 7565-7581 "
              "(the subtropical jet from the maximum of the upper- minus lower-level wind)")
 EDDY_REF = "Barnes & Polvani (2013) J. Climate 26, 7117-7135 (latitude and speed of the [u]850 maximum)"
+UPPER_REF = ("the subtropical jet from the maximum of the upper-level [u] itself (no shear): among the jet measures "
+             "compared by Davis & Rosenlof (2012) J. Climate 25, 1061-1078 and Waugh et al. (2018) J. Climate 31, "
+             "7565-7581 (from memory)")
+SUBTROPICAL_METHODS = ("shear", "upper_wind")
 OURS = "; this project's companion diagnostic, not defined in the paper"
 _RULES = ("; points with fewer than run.min_coverage of the longitudes valid are missing; levels absent from the data "
           "are interpolated linearly in log-p (note interpolated_level); an extremum is never taken on the window "
@@ -29,8 +34,9 @@ _RULES = ("; points with fewer than run.min_coverage of the longitudes valid are
 
 METRICS = [
     Metric("subtropical_jet_lat", "Subtropical jet latitude", "degrees_north", "hemisphere",
-           "maximum of [u]200 - [u]850 in jets.subtropical_window (10-60 deg poleward), 3-point parabola" + _RULES,
-           SHEAR_REF),
+           "maximum of [u]200 - [u]850 in jets.subtropical_window (10-60 deg poleward), 3-point parabola" + _RULES +
+           "; alternative (jets.subtropical_method = \"upper_wind\"; default \"shear\"): the maximum of [u]200 itself "
+           "[" + UPPER_REF + "]", SHEAR_REF + "; " + UPPER_REF),
     Metric("subtropical_jet_speed", "Subtropical jet speed", "m s-1", "hemisphere",
            "[u]200 at the subtropical jet latitude (linear interpolation)" + _RULES, SHEAR_REF + OURS),
     Metric("eddy_jet_lat", "Eddy-driven jet latitude", "degrees_north", "hemisphere",
@@ -45,8 +51,18 @@ METRICS = [
 ]
 
 
+def subtropical_method(cfg):
+    """jets.subtropical_method, refused with one line when unknown."""
+    m = cfg["jets"]["subtropical_method"]
+    if m not in SUBTROPICAL_METHODS:
+        raise UsageError(f"jets.subtropical_method = {m!r} in the config: expected one of "
+                         + ", ".join(f'"{a}"' for a in SUBTROPICAL_METHODS))
+    return m
+
+
 def _levels(cfg):
     j = cfg["jets"]
+    subtropical_method(cfg)
     return {"ua": sorted({float(j["upper_level_hpa"]), float(j["lower_level_hpa"])})}
 
 
@@ -74,7 +90,8 @@ def compute(fields, cfg):
         u_up, u_lo = upper[:, idx], eddy_wind[:, idx]
 
         stj_lat, stj_speed = out["subtropical_jet_lat"], out["subtropical_jet_speed"]
-        ext = peak(u_up - lower[:, idx], x, j["subtropical_window"], cfg, stj_lat, None, h)
+        shear = subtropical_method(cfg) == "shear"
+        ext = peak(u_up - lower[:, idx] if shear else u_up, x, j["subtropical_window"], cfg, stj_lat, None, h)
         stj_speed.value[:, h] = interp_at(u_up, x, stj_lat.value[:, h])
         stj_speed.flag[:, h] = stj_lat.flag[:, h]
         stj_lat.value[:, h] = signed(hemi, stj_lat.value[:, h])

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from circtrack.errors import UsageError
 from circtrack.metrics.common import HEMISPHERES, add_note, crossing, hemisphere_view, peak, signed
 from circtrack.registry import Metric, Result, register_family
 
@@ -118,12 +119,26 @@ PE_METRICS = [
            "surface.p_minus_e_window, 0-45 deg poleward); evaporation is made positive upward when the file "
            "stores it negative (global mean < 0); linear interpolation" + _RULES, PE_REF),
 ]
+OLR_FRACTION_REF = ("an edge relative to the OLR maximum rather than a fixed threshold: Davis & Rosenlof (2012) J. "
+                    "Climate 25, 1061-1078 used a fixed drop below the maximum (from memory); the fraction is this "
+                    "project's form of it")
 OLR_METRICS = [
     Metric("olr_edge_lat", "Tropical edge from outgoing longwave radiation", "degrees_north", "hemisphere",
            "latitude where [rlut] falls below surface.olr_threshold_w_m2 (250 W m-2) poleward of its subtropical "
-           "maximum (searched in surface.olr_max_window, 0-40 deg poleward); linear interpolation" + _RULES,
-           OLR_REF + " (the 250 W m-2 threshold; the search from the subtropical maximum is this project's)"),
+           "maximum (searched in surface.olr_max_window, 0-40 deg poleward); linear interpolation" + _RULES +
+           "; alternative (surface.olr_fraction_of_max > 0, e.g. 0.9; 0 by default): where [rlut] falls to that "
+           "fraction of the subtropical maximum [" + OLR_FRACTION_REF + "]",
+           OLR_REF + " (the 250 W m-2 threshold; the search from the subtropical maximum is this project's); "
+           + OLR_FRACTION_REF),
 ]
+
+
+def _olr_levels(cfg):
+    frac = cfg["surface"]["olr_fraction_of_max"]
+    if not 0.0 <= frac < 1.0:
+        raise UsageError(f"surface.olr_fraction_of_max = {frac!r} in the config: expected 0 (the fixed threshold "
+                         "surface.olr_threshold_w_m2) or a fraction below 1, e.g. 0.9")
+    return {"rlut": None}
 
 
 @register_family("water_balance", inputs=("pr", "evspsbl"), levels=lambda cfg: {"pr": None, "evspsbl": None},
@@ -146,7 +161,7 @@ def compute_p_minus_e(fields, cfg):
     return {"p_minus_e_zero_lat": res}
 
 
-@register_family("outgoing_longwave", inputs=("rlut",), levels=lambda cfg: {"rlut": None}, sectors=True,
+@register_family("outgoing_longwave", inputs=("rlut",), levels=_olr_levels, sectors=True,
                  metrics=OLR_METRICS)
 def compute_olr(fields, cfg):
     s = cfg["surface"]
@@ -156,5 +171,7 @@ def compute_olr(fields, cfg):
         idx, x = hemisphere_view(fields.lat, hemi)
         y = olr[:, idx]
         ext = peak(y, x, s["olr_max_window"], cfg, None, None, h)
-        crossing(res, h, hemi, y, x, ext, direction="down", level=np.full(y.shape[0], s["olr_threshold_w_m2"]))
+        frac = s["olr_fraction_of_max"]
+        level = frac * ext.value if frac > 0 else np.full(y.shape[0], s["olr_threshold_w_m2"])
+        crossing(res, h, hemi, y, x, ext, direction="down", level=level)
     return {"olr_edge_lat": res}

@@ -142,7 +142,8 @@ def _momentum_levels(cfg):
 
 
 @register_family("eddy_momentum", inputs=("ua", "va"), levels=_momentum_levels, metrics=MOMENTUM_METRICS,
-                 reducers={"eddy_momentum_flux": eddy_momentum_reducer})
+                 reducers={"eddy_momentum_flux": eddy_momentum_reducer},
+                 reducer_keys=("eddies.momentum_level_hpa", "run.level_tolerance_hpa"))
 def compute_momentum(fields, cfg):
     e = cfg["eddies"]
     out = {m.id: Result.empty(fields.n, 2) for m in MOMENTUM_METRICS}
@@ -228,7 +229,7 @@ def _energy_levels(cfg):
 
 
 @register_family("energy_transport", inputs=ENERGY_ROLES, levels=_energy_levels, metrics=ENERGY_METRICS,
-                 reducers={"energy_column_sums": energy_reducer})
+                 reducers={"energy_column_sums": energy_reducer}, reducer_keys=("cells.top",))
 def compute_energy(fields, cfg):
     out = {m.id: Result.empty(fields.n, 2) for m in ENERGY_METRICS}
     levels, _ = _common_levels(fields.plev, ENERGY_ROLES)

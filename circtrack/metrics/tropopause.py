@@ -12,6 +12,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from circtrack.errors import UsageError
+from circtrack.kernels.crossings import find_crossing
 from circtrack.kernels.vertical import lapse_rate_tropopause
 from circtrack.metrics.common import HEMISPHERES, hemisphere_view, peak, signed
 from circtrack.registry import Metric, Result, register_family
@@ -19,6 +21,9 @@ from circtrack.registry import Metric, Result, register_family
 WMO_REF = "WMO (1957) WMO Bulletin 4, 134-138"
 BREAK_REF = ("Birner (2010) JGR 115, D23109; Seidel & Randel (2007) JGR 112, D20113 (the subtropical tropopause break "
              "as a tropical-width measure; the steepest-slope definition on the zonal mean is this project's)")
+THRESHOLD_REF = ("Seidel & Randel (2007) JGR 112, D20113 (tropopause heights above 15 km as tropical, from memory); "
+                 "the first crossing of the zonal-mean height is this project's reading of it")
+BREAK_METHODS = ("steepest_slope", "height_threshold")
 _WMO = ("WMO lapse-rate tropopause of [T] at each latitude: the lowest level between tropopause.search_hpa "
         "(75-550 hPa) where the lapse rate falls to tropopause.threshold_k_per_km (2 K/km), provided the mean lapse "
         "rate from it to every level within tropopause.depth_m (2 km) above, and to the level 2 km above, stays at or "
@@ -36,12 +41,38 @@ METRICS = [
     Metric("tropopause_break_lat", "Latitude of the subtropical tropopause break", "degrees_north", "hemisphere",
            "latitude of the steepest poleward decrease of the lapse-rate tropopause height of [T] in "
            "tropopause.break_window (15-50 deg poleward); centred differences, 3-point parabola; an extremum is never "
-           "taken on the window edge, a pole row or next to a latitude without a tropopause; tropopause: " + _WMO,
-           BREAK_REF),
+           "taken on the window edge, a pole row or next to a latitude without a tropopause; alternative "
+           "(tropopause.break_method = \"height_threshold\"; default \"steepest_slope\"): the first latitude in the "
+           "window, going poleward, where the tropopause height (above the lowest data level) falls below "
+           "tropopause.break_height_m (15 km), linear interpolation [" + THRESHOLD_REF + "]; tropopause: " + _WMO,
+           BREAK_REF + "; " + THRESHOLD_REF),
 ]
 
 
-@register_family("tropopause", inputs=("ta",), levels=lambda cfg: {"ta": None}, metrics=METRICS)
+def break_method(cfg):
+    """tropopause.break_method, refused with one line when unknown."""
+    m = cfg["tropopause"]["break_method"]
+    if m not in BREAK_METHODS:
+        raise UsageError(f"tropopause.break_method = {m!r} in the config: expected one of "
+                         + ", ".join(f'"{a}"' for a in BREAK_METHODS))
+    return m
+
+
+def _levels(cfg):
+    break_method(cfg)
+    return {"ta": None}
+
+
+def height_threshold_break(z, x, window, height):
+    """Poleward latitude where the tropopause height ``z (N, J)`` first falls below ``height``, going
+    poleward from ``window[0]`` up to ``window[1]``; returns the :class:`Crossing` (NaN with its reason
+    when there is none, e.g. already below at the window's start)."""
+    start = int(np.searchsorted(x, window[0]))
+    start = start if start < x.size else -1
+    return find_crossing(np.asarray(z, float) - height, x, start, stop=window[1], direction="down")
+
+
+@register_family("tropopause", inputs=("ta",), levels=_levels, metrics=METRICS)
 def compute(fields, cfg):
     c = cfg["tropopause"]
     n = fields.n
@@ -66,8 +97,12 @@ def compute(fields, cfg):
     for h, hemi in enumerate(HEMISPHERES):
         idx, x = hemisphere_view(lat, hemi)
         z = z_trop[:, idx]
-        slope = np.gradient(z, x, axis=-1) if x.size > 2 else np.full_like(z, np.nan)
-        peak(-slope, x, c["break_window"], cfg, brk, None, h)
+        if break_method(cfg) == "height_threshold":
+            cr = height_threshold_break(z, x, c["break_window"], c["break_height_m"])
+            brk.value[:, h], brk.flag[:, h] = cr.position, cr.reason
+        else:
+            slope = np.gradient(z, x, axis=-1) if x.size > 2 else np.full_like(z, np.nan)
+            peak(-slope, x, c["break_window"], cfg, brk, None, h)
         brk.value[:, h] = signed(hemi, brk.value[:, h])
         inwin = (x >= c["break_window"][0]) & (x <= c["break_window"][1])
         short = (why[:, idx][:, inwin] == "data_end_within_2km").any(axis=-1)

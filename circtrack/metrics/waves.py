@@ -84,7 +84,9 @@ def jet_waviness_reducer(slabs, plev, lon, masks, cfg, lat):
 
 @register_family("jet_waviness", inputs=("ua",), sectors=True, metrics=WAVINESS_METRICS,
                  levels=lambda cfg: {"ua": [float(cfg["waves"]["jet_level_hpa"])]},
-                 reducers={"jet_latitude_spread": jet_waviness_reducer})
+                 reducers={"jet_latitude_spread": jet_waviness_reducer},
+                 reducer_keys=("waves.jet_level_hpa", "run.level_tolerance_hpa", "jets.eddy_window",
+                               "run.min_window_fraction"))
 def compute_waviness(fields, cfg):
     res = Result.empty(fields.n, 2)
     if not _level_available(fields.plev.get("ua"), cfg["waves"]["jet_level_hpa"], cfg["run"]["level_tolerance_hpa"]):
@@ -115,7 +117,8 @@ def planetary_wave_reducer(slabs, plev, lon, masks, cfg):
 
 @register_family("planetary_waves", inputs=("va",), metrics=WAVE_METRICS,
                  levels=lambda cfg: {"va": [float(cfg["waves"]["level_hpa"])]},
-                 reducers={"wave_amplitudes": planetary_wave_reducer})
+                 reducers={"wave_amplitudes": planetary_wave_reducer},
+                 reducer_keys=("waves.level_hpa", "run.level_tolerance_hpa"))
 def compute_waves(fields, cfg):
     w = cfg["waves"]
     out = {m.id: Result.empty(fields.n, 2) for m in WAVE_METRICS}

@@ -90,8 +90,10 @@ def time_key(iso):
 
 
 def params_hash(cfg, metrics, sectors, overrides):
-    # how inputs are reached ([storage]: credentials, local copies) never changes the rows
-    blob = json.dumps({"config": {k: v for k, v in cfg.items() if k != "storage"}, "metrics": metrics, "sectors": [list(s) for s in sectors],
+    # how inputs are reached ([storage]: credentials, local copies) never changes the rows; no
+    # variants: as before [vary] existed
+    cfg = {k: v for k, v in cfg.items() if k != "storage" and not (k == "vary" and not v)}
+    blob = json.dumps({"config": cfg, "metrics": metrics, "sectors": [list(s) for s in sectors],
                        "variables": overrides}, sort_keys=True, default=str)
     return hashlib.sha256(blob.encode()).hexdigest()
 

@@ -86,7 +86,7 @@ class Update:
 
 def run_update(paths, output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file,
                quiet, rebuild=False, repeated_times=None, stdin=None, echo=None, units=(), levels=(),
-               fail_on_empty=False, anonymous=False, cache_dir=None):
+               fail_on_empty=False, anonymous=False, cache_dir=None, vary=()):
     """Bring OUT up to date with ``paths``; returns the new state (None when nothing was new)."""
     from circtrack import output as O
 
@@ -94,7 +94,7 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
     from circtrack.engine.locate import locate
 
     u = options(output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-                repeated_times, echo or click.echo, units, levels, anonymous, cache_dir)
+                repeated_times, echo or click.echo, units, levels, anonymous, cache_dir, vary)
     target = O.check_output_path(u.output, beside_names=("provenance.json", "state.json", "lock"), stream_ok=False)
     G.refuse_data_file_as_output(u.output)
     if os.path.islink(u.output):
@@ -129,9 +129,10 @@ def run_update(paths, output, config, variables, metrics, label, sectors, worker
 
 
 def options(output, config, variables, metrics, label, sectors, workers, scheduler, on_bad_file, quiet,
-            repeated_times, echo, units=(), levels=(), anonymous=False, cache_dir=None):
+            repeated_times, echo, units=(), levels=(), anonymous=False, cache_dir=None, vary=()):
     """The command's options checked and combined with the config, as ``circtrack track`` does."""
     from circtrack import config as C
+    from circtrack import variants as V
     from circtrack.cli_support import apply_storage, apply_units, parse_vars
     from circtrack.engine.sectors import merge_sectors, parse_sector
     from circtrack.guards import check_cli_labels
@@ -140,7 +141,7 @@ def options(output, config, variables, metrics, label, sectors, workers, schedul
         raise UsageError("update needs an output file (-o OUT.csv), not stdout; the state lives beside it")
     if workers and scheduler:
         raise UsageError("--workers and --scheduler exclude each other; give one")
-    cfg = apply_storage(apply_units(C.load(config), units, levels), anonymous, cache_dir)
+    cfg = apply_storage(apply_units(V.apply(C.load(config), vary), units, levels), anonymous, cache_dir)   # variants are parameters: a change needs --rebuild
     user_ids = [m.strip() for m in metrics.split(",") if m.strip()] if metrics else None
     secs = [parse_sector(s) for s in sectors]
     check_cli_labels(label, sectors, secs)
