@@ -143,7 +143,10 @@ def per_longitude_reducer(slabs, plev, lon, masks, cfg, lat):
 
 
 @register_family("jet_core_geography", inputs=("ua",), levels=_levels, sectors=True, metrics=GEO_METRICS,
-                 reducers={"jet_core_summary": per_longitude_reducer})
+                 reducers={"jet_core_summary": per_longitude_reducer},
+                 reducer_keys=("cores.subtropical_lat_window", "cores.subtropical_pressure_window",
+                               "cores.eddy_lat_window", "cores.eddy_pressure_window", "cores.min_core_speed_m_s",
+                               "cores.longitude_band_deg", "run.min_coverage", "run.min_window_fraction"))
 def compute_geography(fields, cfg):
     out = {m.id: Result.empty(fields.n, 2) for m in GEO_METRICS}
     arr = fields.extras["jet_core_summary"]                       # (N, 2, 8)

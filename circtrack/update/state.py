@@ -51,7 +51,7 @@ def checksum(path):
     return h.hexdigest()
 
 
-def file_record(path, cfg=None, old=None):
+def file_record(path, old=None, cfg=None):
     """Size, mtime and checksum of ``path``; the checksum of ``old`` (the state's record) is reused
     when size and mtime are both unchanged, and the file is hashed again when either moved. An object
     in object storage: size and ETag (its modification time says when it was uploaded, not whether

@@ -198,7 +198,7 @@ def diff_inputs(u, files):
     u.ab = [input_key(p) for p in u.files]
     u.shown = dict(zip(u.ab, u.files))
     old_files, state = u.old_files, u.state
-    u.records = {a: file_record(a, u.cfg, old_files.get(a)) for a in u.ab}
+    u.records = {a: file_record(a, old_files.get(a), u.cfg) for a in u.ab}
     u.unchanged = [a for a in u.ab if _same_file(old_files.get(a), u.records[a])]
     u.fresh = [a for a in u.ab if a not in u.unchanged]
     u.removed = [a for a in old_files if a not in u.records]
