@@ -100,3 +100,20 @@ def test_log_percentages_are_the_share_done(monkeypatch):
              for ln in buf.getvalue().splitlines()]
     assert shown == [(30, 30), (50, 50), (80, 80), (100, 100)]
     assert all(done == pct for done, pct in shown)
+
+
+def test_update_sidecar_lists_flag_notes_as_track_does(tmp_path):
+    """The sidecar's flag_notes (e.g. ok;interpolated_level) after an incremental update equal those
+    of one clean track over the same files."""
+    files = [monthly(tmp_path, k) for k in range(2)]
+    out = tmp_path / "out.csv"
+    assert invoke("update", files[0], "-o", out, "-q", "--label", "L").exit_code == 0
+    assert invoke("update", *files, "-o", out, "-q", "--label", "L").exit_code == 0
+    ref = tmp_path / "ref.csv"
+    assert invoke("track", *files, "-o", ref, "-q", "--label", "L").exit_code == 0
+    assert out.read_bytes() == ref.read_bytes()
+    got = json.loads((tmp_path / "out.provenance.json").read_text())["flag_notes"]
+    want = json.loads((tmp_path / "ref.provenance.json").read_text())["flag_notes"]
+    assert got == want
+    if ";" in ref.read_text():          # notes in the rows: the summary must list them
+        assert want

@@ -392,6 +392,8 @@ def bookkeeping(u, text):
         if a in u.new_prov:
             entries[a]["provenance"] = u.new_prov[a]
     prov = sidecar(u, order, used, repeats, notes)
+    from circtrack.flags import note_summary_from_csv
+    prov["flag_notes"] = note_summary_from_csv(text)      # as track writes it (e.g. ok;unbalanced_column)
     new_state = {
         "version": STATE_VERSION, "params_hash": u.phash, "source": u.source, "metrics": u.ids,
         "csv_sha256": _sha_text(text), "provenance": u.base_prov, "order": ab,
