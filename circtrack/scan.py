@@ -48,9 +48,9 @@ def _implausible(ds, det, cfg):
     return out
 
 
-def report(paths, cfg, overrides) -> str:
-    files = expand(paths, cfg=cfg)
-    lines = []
+def _detect_all(files, cfg, overrides):
+    """Every input opened for metadata and detected: (detections with their variable names, error
+    lines of unreadable inputs, dimensions per input, implausible roles per input)."""
     dets, bad = [], []
     det_dims, implausible = {}, {}
     for p in files:
@@ -65,6 +65,13 @@ def report(paths, cfg, overrides) -> str:
                 ds.close()
         except InputError as e:
             bad.append(str(e))
+    return dets, bad, det_dims, implausible
+
+
+def report(paths, cfg, overrides) -> str:
+    files = expand(paths, cfg=cfg)
+    lines = []
+    dets, bad, det_dims, implausible = _detect_all(files, cfg, overrides)
     lines.append(f"{len(files)} input(s), {len(dets)} readable")
     for b in bad:
         lines.append(f"  unreadable: {b}")
@@ -129,6 +136,14 @@ def report(paths, cfg, overrides) -> str:
                     joined[role] = name
                     lines.append(f"  {role:8s} = '{name}' in {other.path} (same time steps; {other.why[role]}; "
                                  f"units '{other.units.get(role, '')}')")
+    lines += _metric_lines(det, joined, names)
+    return "\n".join(lines)
+
+
+def _metric_lines(det, joined, names):
+    """Which metrics can run with the roles found (``joined``: role -> variable, over joined
+    inputs), and what to name for the rest."""
+    lines = []
     lines.append("metrics:")
     missing_roles = set()
     for fam in families().values():
@@ -157,4 +172,4 @@ def report(paths, cfg, overrides) -> str:
                          f"[variables] {r} = \"{name}\"" + (f"  ({hint})" if hint else ""))
         if spare:
             lines.append(f"  unassigned variables in the file: {', '.join(spare)}")
-    return "\n".join(lines)
+    return lines
