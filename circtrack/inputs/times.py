@@ -81,16 +81,9 @@ def open_with_time_units(path, engine, extra, cfg, coder):
         ds.close()
         raise InputError(f"{path}: --units time='{attrs.get('units', '')}' is not a CF time unit; give e.g. "
                          "--units time=\"days since 1979-01-01\" or --units time=\"months since 1988-01-01\"")
-    try:
-        return _decode_times_ourselves(ds, path, cfg, coder)
-    except InputError:
-        ds.close()
-        raise
-    except (ValueError, OverflowError) as e:
-        ds.close()
-        raise InputError(f"{path}: the time axis cannot be decoded with --units time='{attrs.get('units', '')}' "
-                         f"calendar '{attrs.get('calendar', 'standard')}' ({str(e).splitlines()[0]}); check the "
-                         "--units time and --units calendar values")
+    return _decode_or_close(ds, path, cfg, coder, lambda why: (
+        f"{path}: the time axis cannot be decoded with --units time='{attrs.get('units', '')}' "
+        f"calendar '{attrs.get('calendar', 'standard')}' ({why}); check the --units time and --units calendar values"))
 
 
 _GIVEN_MARK = "_circtrack_time_units_given"
@@ -200,6 +193,14 @@ def _open_months_since(path, engine, extra, cfg, coder, target=None):
     except (ValueError, OSError, RuntimeError, KeyError, IndexError, TypeError) as e:
         raise InputError(f"{path}: cannot be opened with the {engine} engine ({str(e).splitlines()[0]}); check "
                          "that it is a complete netCDF/Zarr file, or pass --on-bad-file skip")
+    return _decode_or_close(ds, path, cfg, coder, lambda why: (
+        f"{path}: the time axis cannot be decoded ({why}); fix its 'units'/'calendar' attributes or convert "
+        "the file with CF time units ('days since ...')"))
+
+
+def _decode_or_close(ds, path, cfg, coder, message):
+    """:func:`_decode_times_ourselves`, closing ``ds`` on failure; a decoding error becomes one
+    InputError line ``message(first line of the error)``."""
     try:
         return _decode_times_ourselves(ds, path, cfg, coder)
     except InputError:
@@ -207,8 +208,7 @@ def _open_months_since(path, engine, extra, cfg, coder, target=None):
         raise
     except (ValueError, OverflowError) as e:
         ds.close()
-        raise InputError(f"{path}: the time axis cannot be decoded ({str(e).splitlines()[0]}); fix its "
-                         "'units'/'calendar' attributes or convert the file with CF time units ('days since ...')")
+        raise InputError(message(str(e).splitlines()[0]))
 
 
 def _decode_times_ourselves(ds, path, cfg, coder):
