@@ -121,3 +121,14 @@ def missing(results, flag):
 
 def new_results(ids, n, scope_of):
     return {i: Result.empty(n, 2 if scope_of(i) == "hemisphere" else 1) for i in ids}
+
+
+def method_choice(cfg, section, key, allowed):
+    """The text setting ``[section] key``, refused with one line when it is not one of ``allowed``."""
+    from circtrack.errors import UsageError
+
+    m = cfg[section][key]
+    if m not in allowed:
+        raise UsageError(f"{section}.{key} = {m!r} in the config: expected one of "
+                         + ", ".join(f'"{a}"' for a in allowed))
+    return m

@@ -12,11 +12,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from circtrack.errors import UsageError
 from circtrack.kernels.crossings import find_level_crossing, reverse
 from circtrack.kernels.extrema import interp_at
 from circtrack.kernels.vertical import at_level
-from circtrack.metrics.common import HEMISPHERES, add_note, hemisphere_view, missing, peak, signed
+from circtrack.metrics.common import HEMISPHERES, add_note, hemisphere_view, method_choice, missing, peak, signed
 from circtrack.registry import Metric, Result, register_family
 
 SHEAR_REF = ("Davis & Rosenlof (2012) J. Climate 25, 1061-1078 and Waugh et al. (2018) J. Climate 31, 7565-7581 "
@@ -53,11 +52,7 @@ METRICS = [
 
 def subtropical_method(cfg):
     """jets.subtropical_method, refused with one line when unknown."""
-    m = cfg["jets"]["subtropical_method"]
-    if m not in SUBTROPICAL_METHODS:
-        raise UsageError(f"jets.subtropical_method = {m!r} in the config: expected one of "
-                         + ", ".join(f'"{a}"' for a in SUBTROPICAL_METHODS))
-    return m
+    return method_choice(cfg, "jets", "subtropical_method", SUBTROPICAL_METHODS)
 
 
 def _levels(cfg):

@@ -12,10 +12,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from circtrack.errors import UsageError
 from circtrack.kernels.crossings import find_crossing
 from circtrack.kernels.vertical import lapse_rate_tropopause
-from circtrack.metrics.common import HEMISPHERES, hemisphere_view, peak, signed
+from circtrack.metrics.common import HEMISPHERES, hemisphere_view, method_choice, peak, signed
 from circtrack.registry import Metric, Result, register_family
 
 WMO_REF = "WMO (1957) WMO Bulletin 4, 134-138"
@@ -51,11 +50,7 @@ METRICS = [
 
 def break_method(cfg):
     """tropopause.break_method, refused with one line when unknown."""
-    m = cfg["tropopause"]["break_method"]
-    if m not in BREAK_METHODS:
-        raise UsageError(f"tropopause.break_method = {m!r} in the config: expected one of "
-                         + ", ".join(f'"{a}"' for a in BREAK_METHODS))
-    return m
+    return method_choice(cfg, "tropopause", "break_method", BREAK_METHODS)
 
 
 def _levels(cfg):
