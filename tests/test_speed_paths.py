@@ -278,6 +278,31 @@ def test_another_layout_among_them_is_detected_by_itself(tmp_path, monkeypatch):
     assert str(tmp_path / "odd.nc") in calls
 
 
+def test_headers_read_by_worker_processes_give_the_same_rows(tmp_path, monkeypatch):
+    """Many files: worker processes read the headers in parallel; the parent reads none itself."""
+    import os
+
+    from circtrack.engine import run as R
+
+    paths = one_day_files(tmp_path, 6)
+    ref = rows(paths, sync_cfg())
+    cfg = C.load(None)
+    cfg["run"]["processes"] = 2
+    monkeypatch.setattr(R, "HEADERS_IN_WORKERS", 4)
+    in_workers = (os.cpu_count() or 1) >= 2
+    heads = R.read_headers(paths, cfg)
+    if in_workers:
+        assert set(heads) == set(paths) and all(heads[p]["key"] == LY._header(p, cfg)["key"] for p in paths)
+    assert R.read_headers(paths, sync_cfg()) is None and R.read_headers(paths[:3], cfg) is None
+    parent, real = [], LY._header
+    monkeypatch.setattr(LY, "_header", lambda p, c: parent.append(p) or real(p, c))   # counts in this process only
+    calls = counting_prepare(monkeypatch)
+    assert rows(paths, cfg) == ref
+    assert calls == [paths[0]]
+    if in_workers:
+        assert parent == []
+
+
 # --------------------------------------------------------------------------- --profile
 def test_profile_prints_where_the_time_went_and_changes_nothing(tmp_path):
     path = write(full_set(2, members=1), tmp_path / "p.nc")

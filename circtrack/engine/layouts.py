@@ -27,16 +27,35 @@ VOLATILE = {"history", "tracking_id", "creation_date", "date_created", "date_mod
 SMALL = 1 << 16          # two-dimensional variables up to this many values (e.g. cell bounds) are compared by value
 
 
-class LayoutCache:
-    """The detections of the layouts seen so far in one run (parent process only)."""
+def read_headers(job):
+    """``(paths, cfg)`` -> the header of each path (or None), as :class:`LayoutCache` reads them;
+    run in worker processes when there are many files (run.py), so that they are read in parallel."""
+    paths, cfg = job
+    return [_header(p, cfg) for p in paths]
 
-    def __init__(self, cfg):
+
+class LayoutCache:
+    """The detections of the layouts seen so far in one run (parent process only).
+
+    ``headers``: path -> header already read (:func:`read_headers`, e.g. by worker processes);
+    the other files' headers are read here."""
+
+    def __init__(self, cfg, headers=None):
         self.cfg = cfg
         self.known = {}          # header key -> (path, outcome, time name, header) or None (never share)
+        self.headers = dict(headers or {})
+        self.last = None         # (path, header) of the last file asked about (remember() follows shared())
+
+    def _head(self, path):
+        if self.last is not None and self.last[0] == path:
+            return self.last[1]
+        head = self.headers.pop(path) if path in self.headers else _header(path, self.cfg)
+        self.last = (path, head)
+        return head
 
     def shared(self, path):
         """The outcome of an earlier file with this file's layout, for this file; or None."""
-        head = _header(path, self.cfg)
+        head = self._head(path)
         if head is None:
             return None
         entry = self.known.get(head["key"])
@@ -52,7 +71,7 @@ class LayoutCache:
 
     def remember(self, path, outcome):
         """After a full detection of ``path`` (a FileInfo or a MissingRoles error): share it when safe."""
-        head = _header(path, self.cfg)
+        head = self._head(path)
         if head is None or head["key"] in self.known:
             return
         info = outcome if not hasattr(outcome, "info") else outcome.info

@@ -20,7 +20,6 @@ import copy
 import os
 from dataclasses import dataclass, field
 
-import dask
 import numpy as np
 
 from circtrack.engine import profile
@@ -95,11 +94,12 @@ def union_levels(plan, others):
 
 
 # --------------------------------------------------------------------------- inputs
-def prepare_inputs(files, plan, cfg, overrides, policy):
+def prepare_inputs(files, plan, cfg, overrides, policy, headers=None):
     """Every file prepared (prepare.py), split variables joined, the bad-file policy applied and the
-    inputs checked to fit together. Returns ``(infos, skipped)``."""
+    inputs checked to fit together. Returns ``(infos, skipped)``. ``headers``: netCDF-4 headers
+    already read (path -> header, :func:`~circtrack.engine.layouts.read_headers`)."""
     infos, skipped, partial = [], [], []
-    layouts = LayoutCache(cfg)         # files of one layout: a header read each, one detection
+    layouts = LayoutCache(cfg, headers)   # files of one layout: a header read each, one detection
     for p in files:
         try:
             shared = layouts.shared(p)
@@ -195,12 +195,15 @@ def check_consistent(infos):
     first = infos[0]
     lat0 = np.sort(first.detected.lat)
     for inf in infos[1:]:
-        lat = np.sort(inf.detected.lat)
-        if lat.shape != lat0.shape or not np.allclose(lat, lat0, atol=1e-4):
+        # files of one layout share the coordinate arrays of its first file (layouts.py): nothing to compare
+        lat = lat0 if inf.detected.lat is first.detected.lat else np.sort(inf.detected.lat)
+        if lat is not lat0 and (lat.shape != lat0.shape or not np.allclose(lat, lat0, atol=1e-4)):
             raise InputError(f"{inf.path}: its latitude grid ({lat.size} points) differs from {first.path} "
                              f"({lat0.size} points); regrid to one grid or run the files separately")
         for role in first.readers:
             a, b = first.plev[role], inf.plev[role]
+            if a is b:
+                continue
             if (a is None) != (b is None) or (a is not None and (a.shape != b.shape or not np.allclose(a, b))):
                 raise InputError(f"{inf.path}: the pressure levels of {role} differ from {first.path}; "
                                  "interpolate to common levels or run the files separately")
@@ -332,6 +335,8 @@ class RunPlan:
 
     def tasks(self):
         """The dask.delayed reduce calls of every chunk; building them reads nothing."""
+        import dask
+
         return [dask.delayed(reduce_chunk, pure=False, traverse=False)(self.job(c)) for c in range(len(self.chunks))]
 
     def needed_chunks(self):
