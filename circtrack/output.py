@@ -61,9 +61,10 @@ def sorted_lines(outcome):
     order = np.lexsort(sort_keys) if n else np.array([], dtype=int)
     names = list(cols)
     lines = [",".join(names)]
-    text = {k: (np.array([format_value(x) for x in cols[k]], dtype=object) if k == "value" else cols[k]) for k in names}
-    for i in order:
-        lines.append(",".join(str(text[k][i]) for k in names))
+    # column by column, then joined row by row (tens of thousands of rows for one-day files)
+    texts = [[format_value(col[i]) for i in order] if k == "value" else [str(col[i]) for i in order]
+             for k, col in cols.items()]
+    lines.extend(",".join(row) for row in zip(*texts))
     return lines
 
 

@@ -20,12 +20,14 @@ from circtrack.errors import CircError
 
 def counts(metrics, values, flags):
     """``{metric: (Counter of base flags, rows, rows with a value)}`` in order of first appearance."""
+    names = [str(m) for m in metrics]
+    pairs = collections.Counter(zip(names, [str(f).split(";", 1)[0] for f in flags]))   # first-seen order
+    valued = collections.Counter(m for m, ok in zip(names, np.isfinite(np.asarray(values, dtype=float))) if ok)
     out = {}
-    for m, v, f in zip(metrics, values, flags):
-        c = out.setdefault(str(m), [collections.Counter(), 0, 0])
-        c[0][str(f).split(";", 1)[0]] += 1
-        c[1] += 1
-        c[2] += int(np.isfinite(v))
+    for (m, flag), n in pairs.items():
+        c = out.setdefault(m, [collections.Counter(), 0, valued.get(m, 0)])
+        c[0][flag] += n
+        c[1] += n
     return out
 
 
