@@ -84,7 +84,10 @@ def check_text_columns(cols, names):
     for name in names:
         if name in _OWN_COLUMNS or name not in cols:
             continue
-        for v in set(str(x) for x in cols[name]):
+        col = cols[name]
+        texts = set(map(str, col.tolist())) if getattr(col, "dtype", None) is not None and col.dtype.kind in "UO" \
+            else set(str(x) for x in col)
+        for v in texts:
             why = text_problem(v)
             if why:
                 fix = ("give --label NAME (letters, digits, '_' or '-')" if name == "source"

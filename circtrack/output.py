@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import errno
 import json
+import math
 import os
 import platform
 import stat
@@ -62,10 +63,29 @@ def sorted_lines(outcome):
     names = list(cols)
     lines = [",".join(names)]
     # column by column, then joined row by row (tens of thousands of rows for one-day files)
-    texts = [[format_value(col[i]) for i in order] if k == "value" else [str(col[i]) for i in order]
+    texts = [_values_text(col, order) if k == "value" else [str(x) for x in _in_order(col, order)]
              for k, col in cols.items()]
     lines.extend(",".join(row) for row in zip(*texts))
     return lines
+
+
+def _values_text(col, order):
+    """:func:`format_value` of the values in ``order`` (plain floats: the same text, faster checks)."""
+    if isinstance(col, np.ndarray) and col.dtype == np.float64:
+        out = []
+        for v in col[order].tolist():
+            s = f"{v:.6g}" if math.isfinite(v) else "NaN"
+            out.append("0" if s == "-0" else s)
+        return out
+    return [format_value(x) for x in _in_order(col, order)]
+
+
+def _in_order(col, order):
+    """The column's elements in ``order``: python str for text arrays (``str`` of a numpy str is the
+    same text), the elements themselves otherwise."""
+    if isinstance(col, np.ndarray) and col.dtype.kind in "UO":
+        return col[order].tolist()
+    return [col[i] for i in order.tolist()]
 
 
 # --------------------------------------------------------------------------- where outputs go

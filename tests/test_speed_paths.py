@@ -303,6 +303,56 @@ def test_headers_read_by_worker_processes_give_the_same_rows(tmp_path, monkeypat
         assert parent == []
 
 
+# --------------------------------------------------------------------------- the CSV and its summary
+def ref_sorted_lines(outcome):
+    """Row by row, every field formatted on its own (the plain way)."""
+    from circtrack.output import format_value
+
+    cols, keys = outcome.columns, outcome.key_columns
+    sort_keys = [outcome.time_order if k == "time" else np.asarray(cols[k], dtype=str) for k in reversed(keys)]
+    lines = [",".join(cols)]
+    for i in np.lexsort(sort_keys):
+        lines.append(",".join(format_value(cols[k][i]) if k == "value" else str(cols[k][i]) for k in cols))
+    return lines
+
+
+def ref_counts(metrics, values, flags):
+    import collections
+
+    out = {}
+    for m, v, f in zip(metrics, values, flags):
+        c = out.setdefault(str(m), [collections.Counter(), 0, 0])
+        c[0][str(f).split(";", 1)[0]] += 1
+        c[1] += 1
+        c[2] += int(np.isfinite(v))
+    return out
+
+
+def test_csv_lines_and_summary_counts_equal_the_row_by_row_way():
+    from circtrack import summary
+    from circtrack.engine.rows import Outcome
+    from circtrack.output import sorted_lines
+
+    rng = np.random.default_rng(3)
+    n = 400
+    values = rng.choice([0.0, -0.0, 1e-7, -2.5e-12, 123456789.0, 1 / 3, np.nan, np.inf, -np.inf, 12.5], n)
+    values = values * rng.choice([1.0, -1.0, 1e5, 1e-5], n)
+    cols = {"source": np.array(["b", "a"] * (n // 2), dtype=object),
+            "time": np.array([f"2001-01-{1 + k % 9:02d}" for k in range(n)], dtype=object),
+            "hemisphere": rng.choice(np.array(["NH", "SH"], dtype=object), n),
+            "metric": rng.choice(np.array(["m1", "m2", "m3"], dtype=object), n),
+            "value": values,
+            "units": np.array(["deg"] * n, dtype=object),
+            "flag": rng.choice(np.array(["ok", "weak_peak", "weak_peak;note", "too_little_data"], dtype=object), n)}
+    out = Outcome(cols, ["source", "time", "hemisphere", "metric"], {}, np.array([k % 9 for k in range(n)]))
+    assert sorted_lines(out) == ref_sorted_lines(out)
+    got = summary.counts(cols["metric"], values, cols["flag"])
+    ref = ref_counts(cols["metric"], values, cols["flag"])
+    assert list(got) == list(ref)
+    for m in ref:           # same counts, and the flags in the same order (most_common breaks ties by it)
+        assert got[m][1:] == ref[m][1:] and list(got[m][0].items()) == list(ref[m][0].items())
+
+
 # --------------------------------------------------------------------------- --profile
 def test_profile_prints_where_the_time_went_and_changes_nothing(tmp_path):
     path = write(full_set(2, members=1), tmp_path / "p.nc")
