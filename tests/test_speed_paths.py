@@ -303,6 +303,25 @@ def test_headers_read_by_worker_processes_give_the_same_rows(tmp_path, monkeypat
         assert parent == []
 
 
+def test_time_steps_decoded_at_once_equal_file_by_file(tmp_path):
+    paths = one_day_files(tmp_path, 3)
+    for k, (units, cal, dtype) in enumerate([("hours since 2000-01-01", "noleap", "float64"),
+                                             ("days since 1850-01-01", "360_day", "int32"),
+                                             ("days since 1850-01-01 12:00", "standard", "float64")]):
+        ds = full_set(2, members=1, seed=k, start=7 * k)
+        ds["time"].encoding = {}
+        p = str(tmp_path / f"enc{k}.nc")
+        ds.to_netcdf(p, encoding={"time": {"units": units, "calendar": cal, "dtype": dtype}})
+        paths.append(p)
+    cfg = C.load(None)
+    heads = {p: LY._header(p, cfg) for p in paths}
+    many = LY._decode_many(heads, "time")
+    assert set(many) == set(paths)
+    for p in paths:
+        one = LY._decode_times(heads[p], "time")
+        assert [(type(a), repr(a)) for a in many[p]] == [(type(a), repr(a)) for a in one], p
+
+
 # --------------------------------------------------------------------------- the CSV and its summary
 def ref_sorted_lines(outcome):
     """Row by row, every field formatted on its own (the plain way)."""
