@@ -57,6 +57,28 @@ class Runner:
             return list(dask.compute(*tasks, scheduler="processes", pool=self.pool, chunksize=1))
         return list(dask.compute(*tasks, scheduler=self.mode))
 
+    @property
+    def streams(self):
+        """True when tasks sent with :meth:`submit` run in the background at once (worker processes):
+        the caller may send the next tasks before collecting these."""
+        return self.client is None and self.mode == "processes"
+
+    def submit(self, fn, jobs):
+        """Send ``fn(job)`` for every job; returns a :class:`Sent` whose ``results()`` waits for them.
+
+        With worker processes the tasks start at once, so a caller can keep the workers busy with
+        the next tasks while it works on earlier results (no pause between batches); elsewhere the
+        tasks run when ``results()`` is called, as :meth:`run` does."""
+        if not self.streams or not jobs:
+            return Sent(lambda: self.run(fn, jobs))
+        if self.pool is None:
+            close_cached()       # the children must not inherit open HDF5 handles
+            self.pool = _start_pool(self.nproc)
+        import cloudpickle        # as dask sends tasks: closures and partials of reducers travel too
+
+        futures = [self.pool.submit(_call_pickled, cloudpickle.dumps((fn, j), protocol=5)) for j in jobs]
+        return Sent(lambda: [f.result() for f in futures])
+
     def close(self, interrupted=False):
         """Shut the pool down; after Ctrl-C or an error the workers are stopped at once."""
         if self.pool is None:
@@ -71,6 +93,26 @@ class Runner:
         else:
             self.pool.shutdown(wait=True, cancel_futures=True)
         self.pool = None
+
+
+class Sent:
+    """Tasks sent by :meth:`Runner.submit`; ``results()`` waits for them (once) and returns them in order."""
+
+    def __init__(self, wait):
+        self._wait, self._results = wait, None
+
+    def results(self):
+        if self._results is None:
+            self._results = self._wait()
+            self._wait = None
+        return self._results
+
+
+def _call_pickled(payload):
+    import cloudpickle
+
+    fn, job = cloudpickle.loads(payload)
+    return fn(job)
 
 
 # --------------------------------------------------------------------------- workers die with their parent
