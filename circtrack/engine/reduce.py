@@ -20,6 +20,7 @@ import time as _time
 
 import numpy as np
 
+from circtrack.inputs import chunks as CH
 from circtrack.inputs import dataset as D
 from circtrack.inputs.plausible import check_slabs
 
@@ -84,6 +85,7 @@ def _open_cached(path, cfg, keep=_OPEN_MAX, raw=False):
 
 
 def _forget(path):
+    CH.close_all()
     mine = _my_open()
     for key in [(path, False), (path, True)]:
         ds = mine.pop(key, None)
@@ -108,6 +110,7 @@ def close_thread_cached():
 
 def close_cached():
     """Close every handle this process holds (all threads; call when no task is running)."""
+    CH.close_all()
     with _OPEN_LOCK:
         groups = [g for k, g in _OPEN.items() if k[0] == os.getpid()]
         for k in [k for k in _OPEN if k[0] == os.getpid()]:
