@@ -42,6 +42,8 @@ class Runner:
         self.pool = None
         if self.client is None and (n_tasks < 2 or self.nproc < 2) and self.mode == "processes":
             self.mode = "sync"
+        if self.client is None and self.mode != "processes":
+            keep_freed_memory()       # the tasks run in this process: as the workers do (see below)
 
     def run(self, fn, jobs):
         if not jobs:
