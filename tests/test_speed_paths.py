@@ -335,3 +335,14 @@ def test_profile_prints_where_the_time_went_and_changes_nothing(tmp_path):
                  "reducer eddy_momentum_flux", "reducer energy_column_sums", "cells", "energy_transport"):
         assert part in text, part
     assert "circtrack profile" not in plain.output
+
+
+def test_tasks_run_blas_on_one_thread():
+    """BLAS threads spinning on cores busy with other tasks made the wave amplitudes 4-15x slower."""
+    import threadpoolctl
+
+    from circtrack.engine import reduce as RD
+
+    RD.reduce_chunks([])
+    blas = [i for i in threadpoolctl.threadpool_info() if i["user_api"] == "blas"]
+    assert blas and all(i["num_threads"] == 1 for i in blas)
