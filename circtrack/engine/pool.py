@@ -49,14 +49,10 @@ class Runner:
             return []
         if self.mode == "sync" and self.client is None:
             return [fn(j) for j in jobs]
-        if self.mode == "processes" and self.client is None:
-            if self.pool is None:
-                close_cached()   # the children must not inherit open HDF5 handles
-                self.pool = _start_pool(self.nproc)
+        if self.streams:
             # straight to the pool, one job per call, results in the order of the jobs: dask's
-            # process scheduler did the same but imported dask.distributed (0.4 s) on every run to
-            # look for a client
-            return list(self.pool.map(fn, jobs))
+            # process scheduler did the same but imported dask.distributed (0.4 s) to look for a client
+            return self.submit(fn, jobs).results()
         import dask
         import dask.threaded
 
