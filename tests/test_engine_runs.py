@@ -270,6 +270,67 @@ def test_fast_read_equals_xarray_decoding(tmp_path, layout):
         xds.close()
 
 
+@pytest.mark.parametrize("layout", ["plain", "lat_descending", "levels_in_pa_descending", "fill_below_ground",
+                                    "lon_first", "packed", "uncompressed"])
+def test_direct_read_without_netcdf4_equals_xarray_decoding(tmp_path, layout, monkeypatch):
+    """Readers that carry their variable's header read the chunks without a netCDF4 open and give
+    exactly what xarray's CF decoding gives, or step aside (packed values; chunks HDF5 must decode)."""
+    from circtrack.engine import reduce as R
+    from circtrack.inputs import chunks as CH
+
+    ds = make_dataset(3)
+    enc = {v: {"zlib": True, "complevel": 1, "shuffle": True} for v in ("ua", "va")}
+    if layout == "lat_descending":
+        ds = ds.isel(lat=slice(None, None, -1))
+    elif layout == "levels_in_pa_descending":
+        ds = ds.assign_coords(plev=ds["plev"] * 100.0)
+        ds["plev"].attrs.update(units="Pa")
+    elif layout == "fill_below_ground":
+        for v in ("ua", "va"):
+            ds[v][:, 0, :, ::3] = np.nan
+            ds[v][:, 1, :, ::5] = 1.0e20
+            enc[v].update(_FillValue=np.float32(1.0e20), dtype="float32")
+    elif layout == "lon_first":
+        ds = ds.transpose("time", "lon", "plev", "lat")
+    elif layout == "packed":
+        for v in ("ua", "va"):
+            enc[v].update(dtype="int16", scale_factor=0.01, add_offset=0.0, _FillValue=np.int16(-32767))
+    elif layout == "uncompressed":
+        enc = {}
+    path = str(tmp_path / f"{layout}.nc")
+    ds.to_netcdf(path, encoding={**synthetic.time_encoding("noleap"), **enc})
+    cfg = C.load(None)
+    run = engine.Run([path], cfg, metric_ids=["hadley_edge_lat", "subtropical_jet_lat", "eddy_jet_lat"])
+    xds = D.open_dataset(path, cfg)
+    try:
+        for role, reader in run.infos[0].readers.items():
+            slow, _ = reader.read_noted(xds, 1, 3)
+            direct = reader.read_direct(1, 3)
+            if layout == "packed":
+                assert reader.direct is None and direct is None
+                continue
+            assert reader.direct is not None and reader.direct["dims"][0] == "time"
+            if layout == "uncompressed" or not CH.available():
+                assert direct is None                    # HDF5 reads these chunks itself
+                continue
+            assert direct is not None and direct.shape == slow.shape and direct.dtype == slow.dtype, role
+            assert np.array_equal(direct, slow, equal_nan=True), role
+    finally:
+        xds.close()
+        CH.close_all()
+    # a whole run: no netCDF4 open in the tasks when every role reads directly; rows as without
+    opened = []
+    real = D.open_raw
+    monkeypatch.setattr(D, "open_raw", lambda p, c: opened.append(p) or real(p, c))
+    sync = C.load(None)
+    sync["run"]["scheduler"] = "sync"
+    rows = csv_rows(engine.track([path], sync, label="x"))
+    assert (opened == []) == (layout not in ("packed", "uncompressed") and CH.available())
+    monkeypatch.setattr(type(run.infos[0].readers["ua"]), "read_direct", lambda self, t0, t1: None)
+    R.close_cached()
+    assert csv_rows(engine.track([path], sync, label="x")) == rows
+
+
 def test_fast_read_of_shuffled_latitudes_and_scattered_levels(tmp_path):
     import netCDF4
 

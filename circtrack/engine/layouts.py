@@ -77,9 +77,12 @@ class LayoutCache:
     def remember(self, path, outcome):
         """After a full detection of ``path`` (a FileInfo or a MissingRoles error): share it when safe."""
         head = self._head(path)
-        if head is None or head["key"] in self.known:
+        if head is None:
             return
         info = outcome if not hasattr(outcome, "info") else outcome.info
+        _note_direct(info, head)
+        if head["key"] in self.known:
+            return
         det = info.detected
         tname = det.coords.get("time")
         ok = (tname is not None and det.streams is None and tname in head["vars"] and det.times is not None
@@ -89,6 +92,24 @@ class LayoutCache:
             ok = (times is not None and times.shape == det.times.shape and times.size > 0
                   and type(times.flat[0]) is type(det.times.flat[0]) and bool(np.all(times == det.times)))
         self.known[head["key"]] = (path, outcome, tname, head) if ok else None
+
+
+def _note_direct(info, head):
+    """Give the readers of plain float variables their header (dimensions, fill values), so that
+    workers read their chunks without opening the file with netCDF4 (``RoleReader.read_direct``);
+    the files sharing this layout get copies of these readers (same header, same variables)."""
+    from circtrack.inputs.readers import FILL_ATTRS, fill_values
+
+    if not str(head["key"][0]).startswith("NETCDF4"):
+        return
+    for reader in info.readers.values():
+        v = head["vars"].get(reader.name)
+        if reader.path != info.path or v is None or reader.stream is not None or reader.hybrid is not None \
+                or reader.ground is not None or np.dtype(v["dtype"]).kind != "f" \
+                or any(a in v["attr_values"] for a in ("scale_factor", "add_offset")):
+            continue
+        reader.direct = {"dims": tuple(v["dims"]),
+                         "fills": fill_values(v["attr_values"][a] for a in FILL_ATTRS if a in v["attr_values"])}
 
 
 def _extra_dims_static(det, head, tname):
