@@ -102,7 +102,7 @@ def _find_cores(u, x, p, lat_window, p_window, *, min_fraction, min_speed):
     if j1 - j0 < 3:
         return Core(nan, nan.copy(), nan.copy(), none, none.copy(), np.full(shape, TOO_LITTLE))
     w = u[..., k0:k1, j0:j1, :]                                # a view: no copy of the window
-    w = w.reshape((-1,) + w.shape[-3:])                        # (N, nl, nj, I)
+    w = w.reshape((int(np.prod(shape[:-1])),) + w.shape[-3:])  # (N, nl, nj, I)
     lat, logp, speed, jj, kk, reason = _search(w, x[j0:j1], np.log(p[k0:k1]), min_fraction, min_speed)
     good = reason == OK
     return Core(*(a.reshape(shape) for a in (
@@ -240,7 +240,7 @@ def _hemisphere_cores(u, lat, p, windows, *, min_fraction, min_speed):
     in blocks of time steps and columns."""
     lead = u.shape[:-3]
     nl, nj, ni = u.shape[-3:]
-    u = u.reshape((-1, nl, nj, ni))
+    u = u.reshape((int(np.prod(lead)), nl, nj, ni))
     out = np.full((u.shape[0], 2, 2, 4, ni), np.nan)
     hemis = []
     for hemi in ("NH", "SH"):
