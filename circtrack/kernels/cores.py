@@ -110,48 +110,66 @@ def _find_cores(u, x, p, lat_window, p_window, *, min_fraction, min_speed):
         np.where(good, jj + j0, -1), np.where(good, kk + k0, -1), reason)))
 
 
+_DK, _DJ = np.array([0, 0, -1, 0, 1]), np.array([0, -1, 0, 1, 0])   # centre, south, above, north, below
+BLOCK = 1 << 18     # grid points of a window searched at once (the temporaries stay in cache)
+
+
 def _search(w, xs, ls, min_fraction, min_speed):
     """The search of :func:`find_core` in one window ``w (N, nl, nj, I)`` (any float type, any strides),
     ``xs (nj,)`` its latitudes and ``ls (nl,)`` its ln p. Returns ``(lat, ln p, speed, j, k, reason)``,
     each ``(N, I)``, positions and speed unmasked (only meaningful where the reason is ok)."""
     n, nl, nj, ni = w.shape
+    best = np.zeros((n, ni), np.intp)
+    has = np.zeros((n, ni), bool)
+    count = np.zeros((n, ni), np.int64)
+    step = max(BLOCK // (nl * nj * ni), 1)
+    for t0 in range(0, n, step):                        # a few time steps at a time
+        best[t0:t0 + step], has[t0:t0 + step], count[t0:t0 + step] = _locate(w[t0:t0 + step])
+    kk, jj = np.divmod(best, nj - 2)
+    kk, jj = kk + 1, jj + 1                                              # indices inside w
+    # the core and its neighbours (south, above, north, below) in one gather, as float64
+    t, i = np.arange(n)[:, None, None], np.arange(ni)[:, None]
+    pts = w[t, kk[..., None] + _DK, jj[..., None] + _DJ, i].astype(float)
+    uc, y0, y2 = pts[..., 0], np.moveaxis(pts[..., 1:3], -1, 0), np.moveaxis(pts[..., 3:5], -1, 0)
+    # the parabola in latitude and the one in ln p in one call (elementwise: the same numbers)
+    (xv, sv), (ylat, yp) = parabola_vertex(np.stack((xs[jj - 1], ls[kk - 1])), np.stack((xs[jj], ls[kk])),
+                                           np.stack((xs[jj + 1], ls[kk + 1])), y0, uc, y2)
+    speed = uc + (ylat - uc) + (yp - uc)
+    reason = np.full((n, ni), OK)
+    none = ~has
+    if none.any():                      # why not: only for the columns without a core
+        wn = w.transpose(0, 3, 1, 2)[none]
+        reason[none] = _no_core_reason(wn, np.isfinite(wn))
+    with np.errstate(invalid="ignore"):
+        reason = np.where(has & (speed < min_speed), WEAK, reason)
+    reason = np.where(count / (nl * nj) < min_fraction, TOO_LITTLE, reason)   # as isfinite(w).mean: exact
+    return xv, sv, speed, jj, kk, reason
+
+
+def _locate(w):
+    """For :func:`_search`: the flat index (in ``(nl-2, nj-2)``) of the strongest candidate of each
+    column of ``w (n, nl, nj, I)``, whether there is one, and the number of finite points."""
+    n, nl, nj, ni = w.shape
     c = w[:, 1:-1, 1:-1]
     # neighbours' maxima (NaN propagates, so a missing neighbour makes no candidate): the six to the
     # sides (>=), and the two above and below (>, a column constant with height has no core)
-    sides = np.maximum(w[:, :, :-2], w[:, :, 2:])                        # (N, nl, nj-2, I)
+    sides = np.maximum(w[:, :, :-2], w[:, :, 2:])                        # (n, nl, nj-2, I)
     around = np.maximum(sides[:, :-2], sides[:, 1:-1])
     np.maximum(around, sides[:, 2:], out=around)
     vert = np.maximum(w[:, :-2, 1:-1], w[:, 2:, 1:-1])
     with np.errstate(invalid="ignore"):
         cand = np.greater_equal(c, around)
         cand &= np.greater(c, vert)
-    score = np.where(cand, c, c.dtype.type(-np.inf)).reshape(n, -1, ni)
+    # score: c at the candidates, -inf elsewhere (fmin ignores NaN: the same as a select, without one)
+    sel = cand.view(np.int8).astype(c.dtype)
+    sel -= 0.5
+    sel *= np.inf                                                        # +inf at candidates, -inf elsewhere
+    score = np.fmin(c, sel).reshape(n, -1, ni)
     best = np.argmax(score, axis=1)                                      # first of the largest, k-major
-    t, i = np.arange(n)[:, None], np.arange(ni)
-    has = np.isfinite(score[t, best, i])
-    kk, jj = np.divmod(best, nj - 2)
-    kk, jj = kk + 1, jj + 1                                              # indices inside w
-
-    def at(dk, dj):                                                      # the core's neighbours, float64
-        return w[t, kk + dk, jj + dj, i].astype(float)
-
-    # the parabola in latitude and the one in ln p in one call (elementwise: the same numbers)
-    uc = at(0, 0)
-    (xv, sv), (ylat, yp) = parabola_vertex(np.stack((xs[jj - 1], ls[kk - 1])), np.stack((xs[jj], ls[kk])),
-                                           np.stack((xs[jj + 1], ls[kk + 1])), np.stack((at(0, -1), at(-1, 0))),
-                                           uc, np.stack((at(0, 1), at(1, 0))))
-    speed = uc + (ylat - uc) + (yp - uc)
-    fin = np.isfinite(w)
-    count = np.add.reduce(fin.reshape(n, -1, ni).view(np.uint8), axis=1, dtype=np.int64)
-    frac = count / (nl * nj)                         # as fin.mean: exact counts, one division
-    reason = np.full((n, ni), OK)
-    none = ~has
-    if none.any():                      # why not: only for the columns without a core
-        reason[none] = _no_core_reason(w.transpose(0, 3, 1, 2)[none], fin.transpose(0, 3, 1, 2)[none])
-    with np.errstate(invalid="ignore"):
-        reason = np.where(has & (speed < min_speed), WEAK, reason)
-    reason = np.where(frac < min_fraction, TOO_LITTLE, reason)
-    return xv, sv, speed, jj, kk, reason
+    has = np.isfinite(score[np.arange(n)[:, None], best, np.arange(ni)])
+    fin = np.isfinite(w).reshape(n, -1, ni).view(np.uint8)
+    count = np.add.reduce(fin, axis=1, dtype=np.uint16 if nl * nj < 1 << 16 else np.int64)
+    return best, has, count
 
 
 def _no_core_reason(w, fin):
@@ -232,40 +250,25 @@ def hemisphere_cores(u, lat, p, windows, *, min_fraction, min_speed):
     return _hemisphere_cores(u[..., None], lat, p, windows, min_fraction=min_fraction, min_speed=min_speed)[..., 0]
 
 
-BLOCK = 1 << 16     # grid points of u per block of time steps x longitudes (the temporaries stay in cache)
-
-
 def _hemisphere_cores(u, lat, p, windows, *, min_fraction, min_speed):
-    """:func:`hemisphere_cores` for every column ``i`` of ``u (..., L, J, I)`` -> ``(..., 2, 2, 4, I)``,
-    in blocks of time steps and columns."""
-    lead = u.shape[:-3]
-    nl, nj, ni = u.shape[-3:]
-    u = u.reshape((int(np.prod(lead)), nl, nj, ni))
-    out = np.full((u.shape[0], 2, 2, 4, ni), np.nan)
-    hemis = []
-    for hemi in ("NH", "SH"):
+    """:func:`hemisphere_cores` for every column ``i`` of ``u (..., L, J, I)`` -> ``(..., 2, 2, 4, I)``."""
+    out = np.full(u.shape[:-3] + (2, 2, 4, u.shape[-1]), np.nan)
+    for h, hemi in enumerate(("NH", "SH")):
         idx, x = hemisphere_columns(lat, hemi)
-        hemis.append((_as_slice(idx), x, 1.0 if hemi == "NH" else -1.0))
-    step_i = ni
-    step_n = max(BLOCK // max(nl * nj * step_i, 1), 1)
-    for n0 in range(0, u.shape[0], step_n):
-        for i0 in range(0, ni, step_i):
-            blk = u[n0:n0 + step_n, :, :, i0:i0 + step_i]
-            o = out[n0:n0 + step_n, ..., i0:i0 + step_i]
-            for h, (cols, x, sign) in enumerate(hemis):
-                uh = blk[:, :, cols]
-                cores = [_find_cores(uh, x, p, *windows[jet], min_fraction=min_fraction, min_speed=min_speed)
-                         for jet in JETS]
-                merged = same_core(*cores)
-                for q, c in enumerate(cores):
-                    reason = np.where(merged, MERGED, c.reason) if q == 1 else c.reason
-                    keep = reason == OK
-                    o[:, h, q, 0] = np.where(keep, sign * c.lat, np.nan)
-                    o[:, h, q, 1] = np.where(keep, c.pressure, np.nan)
-                    o[:, h, q, 2] = np.where(keep, c.speed, np.nan)
-                    o[:, h, q, 3] = reason
-                o[:, h, 0, 3] = np.where(merged, -MERGED, o[:, h, 0, 3])   # negative: ok, merged with the other
-    return out.reshape(lead + out.shape[1:])
+        uh = u[..., _as_slice(idx), :]
+        cores = [_find_cores(uh, x, p, *windows[jet], min_fraction=min_fraction, min_speed=min_speed)
+                 for jet in JETS]
+        merged = same_core(*cores)
+        sign = 1.0 if hemi == "NH" else -1.0
+        for q, c in enumerate(cores):
+            reason = np.where(merged, MERGED, c.reason) if q == 1 else c.reason
+            keep = reason == OK
+            out[..., h, q, 0, :] = np.where(keep, sign * c.lat, np.nan)
+            out[..., h, q, 1, :] = np.where(keep, c.pressure, np.nan)
+            out[..., h, q, 2, :] = np.where(keep, c.speed, np.nan)
+            out[..., h, q, 3, :] = reason
+        out[..., h, 0, 3, :] = np.where(merged, -MERGED, out[..., h, 0, 3, :])   # negative: ok, merged with the other
+    return out
 
 
 def _as_slice(idx):
