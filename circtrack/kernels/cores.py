@@ -110,7 +110,7 @@ def _find_cores(u, x, p, lat_window, p_window, *, min_fraction, min_speed):
         np.where(good, jj + j0, -1), np.where(good, kk + k0, -1), reason)))
 
 
-_DK, _DJ = np.array([0, 0, -1, 0, 1]), np.array([0, -1, 0, 1, 0])   # centre, south, above, north, below
+_DK, _DJ = np.array([0, 0, -1, 0, 1]), np.array([0, -1, 0, 1, 0])   # centre, equatorward, above, poleward, below
 BLOCK = 1 << 18     # grid points of a window searched at once (the temporaries stay in cache)
 
 
@@ -127,10 +127,10 @@ def _search(w, xs, ls, min_fraction, min_speed):
         best[t0:t0 + step], has[t0:t0 + step], count[t0:t0 + step] = _locate(w[t0:t0 + step])
     kk, jj = np.divmod(best, nj - 2)
     kk, jj = kk + 1, jj + 1                                              # indices inside w
-    # the core and its neighbours (south, above, north, below) in one gather, as float64
-    t, i = np.arange(n)[:, None, None], np.arange(ni)[:, None]
-    pts = w[t, kk[..., None] + _DK, jj[..., None] + _DJ, i].astype(float)
-    uc, y0, y2 = pts[..., 0], np.moveaxis(pts[..., 1:3], -1, 0), np.moveaxis(pts[..., 3:5], -1, 0)
+    # the core and its neighbours (equatorward, above, poleward, below) in one gather, as float64
+    t, i = np.arange(n)[:, None], np.arange(ni)
+    pts = w[t, kk + _DK[:, None, None], jj + _DJ[:, None, None], i].astype(float)      # (5, N, I)
+    uc, y0, y2 = pts[0], pts[1:3], pts[3:5]
     # the parabola in latitude and the one in ln p in one call (elementwise: the same numbers)
     (xv, sv), (ylat, yp) = parabola_vertex(np.stack((xs[jj - 1], ls[kk - 1])), np.stack((xs[jj], ls[kk])),
                                            np.stack((xs[jj + 1], ls[kk + 1])), y0, uc, y2)
