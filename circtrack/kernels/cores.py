@@ -225,7 +225,7 @@ def band_means(a, band, nbands):
     longitudes themselves."""
     a = np.asarray(a, float)
     band = np.asarray(band)
-    if nbands == band.size:
+    if nbands == band.size and np.array_equal(band, np.arange(band.size)):
         return a
     order = np.argsort(band, kind="stable")
     a = a[..., order]
@@ -305,6 +305,8 @@ def cores_by_longitude(u, lat, p, lon, windows, *, band_width, min_fraction, min
         u = u.astype(float)
     if centres.size != band.size:                              # bands of several longitudes: float64 means
         u = band_means(u, band, centres.size)                  # (..., L, J, B)
+    elif not np.array_equal(band, np.arange(band.size)):       # a longitude per band, bands in another order
+        u = u[..., np.argsort(band, kind="stable")]            # (e.g. a grid from -180 and bands from 0 east)
     cores = _hemisphere_cores(u, lat, p, windows, min_fraction=min_fraction, min_speed=min_speed)
     return cores, centres, band
 
