@@ -335,10 +335,13 @@ def test_headers_read_by_worker_processes_give_the_same_rows(tmp_path, monkeypat
     cfg["run"]["processes"] = 2
     monkeypatch.setattr(R, "HEADERS_IN_WORKERS", 4)
     in_workers = (os.cpu_count() or 1) >= 2
-    heads = R.read_headers(paths, cfg)
+    heads = R.read_headers(paths, cfg).wait()
     if in_workers:
         assert set(heads) == set(paths) and all(heads[p]["key"] == LY._header(p, cfg)["key"] for p in paths)
-    assert R.read_headers(paths, sync_cfg()) is None and R.read_headers(paths[:3], cfg) is None
+    assert R.read_headers(paths, sync_cfg()).wait() is None and R.read_headers(paths[:3], cfg).wait() is None
+    pending = R.read_headers(paths, cfg)          # an error while they are read: the pool is stopped
+    pending.cancel()
+    assert pending.runner is None and pending.wait() is None
     parent, real = [], LY._header
     monkeypatch.setattr(LY, "_header", lambda p, c: parent.append(p) or real(p, c))   # counts in this process only
     calls = counting_prepare(monkeypatch)

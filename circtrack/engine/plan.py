@@ -97,7 +97,7 @@ def union_levels(plan, others):
 def prepare_inputs(files, plan, cfg, overrides, policy, headers=None):
     """Every file prepared (prepare.py), split variables joined, the bad-file policy applied and the
     inputs checked to fit together. Returns ``(infos, skipped)``. ``headers``: netCDF-4 headers
-    already read (path -> header, :func:`~circtrack.engine.layouts.read_headers`)."""
+    already read (path -> header, :func:`~circtrack.engine.layouts.read_headers`, e.g. by worker processes)."""
     infos, skipped, partial = [], [], []
     layouts = LayoutCache(cfg, headers)   # files of one layout: a header read each, one detection
     for p in files:

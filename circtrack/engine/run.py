@@ -75,24 +75,48 @@ HEADERS_IN_WORKERS = 32     # from this many files on, worker processes read the
 
 
 def read_headers(files, cfg):
-    """The netCDF-4 headers of many files (layouts.py), read by a short-lived pool of worker
-    processes in parallel (a header read is mostly netCDF-C's file open, about 2 ms, the same in
-    the parent and in a worker). None for fewer files, other engines, other schedulers, a cluster
-    (the parent then reads them one by one, as it does whenever this fails)."""
+    """Start reading the netCDF-4 headers of many files (layouts.py) in a short-lived pool of worker
+    processes, in parallel and while this process goes on (e.g. detects the first file); a header
+    read is mostly netCDF-C's file open, about 2 ms, the same here and in a worker. Returns a
+    :class:`Headers` whose ``wait()`` gives ``{path: header}``, or None for fewer files, other
+    engines, other schedulers or a cluster (the parent then reads them one by one)."""
     if len(files) < HEADERS_IN_WORKERS or cfg["run"]["netcdf_engine"] != "netcdf4":
-        return None
+        return Headers(None, None, None)
     runner = Runner(cfg, len(files))
     if runner.mode != "processes" or runner.client is not None:
-        return None
+        return Headers(None, None, None)
     n = max(1, min(len(files), 4 * runner.nproc))
     groups = [files[i * len(files) // n:(i + 1) * len(files) // n] for i in range(n)]
     try:
-        heads = runner.run(LY.read_headers, [(g, cfg) for g in groups])
+        sent = runner.submit(LY.read_headers, [(g, cfg) for g in groups])
     except BaseException:
         runner.close(interrupted=True)
         raise
-    runner.close()
-    return {p: h for g, hs in zip(groups, heads) for p, h in zip(g, hs)}
+    return Headers(runner, groups, sent)
+
+
+class Headers:
+    """Headers being read by :func:`read_headers`; ``wait()`` once, or ``cancel()`` after an error."""
+
+    def __init__(self, runner, groups, sent):
+        self.runner, self.groups, self.sent = runner, groups, sent
+
+    def wait(self):
+        if self.runner is None:
+            return None
+        try:
+            heads = self.sent.results()
+        except BaseException:
+            self.cancel()
+            raise
+        self.runner.close()
+        self.runner = None
+        return {p: h for g, hs in zip(self.groups, heads) for p, h in zip(g, hs)}
+
+    def cancel(self):
+        if self.runner is not None:
+            self.runner.close(interrupted=True)
+            self.runner = None
 
 
 class Run:
@@ -122,6 +146,16 @@ class Run:
         sectors = merge_sectors(sectors, cfg)
         with profile.timed(STAGES, "locate files"):
             files = locate(paths, stdin=stdin, cfg=cfg)
+        headers = read_headers(files, cfg)     # in worker processes, while this process goes on
+        try:
+            self._plan(files, cfg, headers, metric_ids, sectors, overrides, on_bad_file, only_times,
+                       time_step_days, all_levels, cores_by_longitude)
+        finally:
+            headers.cancel()                   # after an error: the header pool stops at once
+
+    def _plan(self, files, cfg, headers, metric_ids, sectors, overrides, on_bad_file, only_times,
+              time_step_days, all_levels, cores_by_longitude):
+        progress = self.progress
         policy = on_bad_file or cfg["run"]["on_bad_file"]
         self.left_out = []                 # default metrics left out: (family, ids, missing roles)
         if metric_ids is None:
@@ -137,10 +171,10 @@ class Run:
             P.union_levels(plan, [P.Plan.make(metric_ids, v.cfg, sectors) for v in variants])
         for role in all_levels:            # e.g. the cross-section: [u] on every level, not just 200/850 hPa
             plan.roles[role] = None
-        with profile.timed(STAGES, "read the headers of many files (worker processes)"):
-            headers = read_headers(files, cfg)
+        with profile.timed(STAGES, "wait for the headers of many files (worker processes)"):
+            heads = headers.wait()
         with profile.timed(STAGES, "open and detect every file"):
-            infos, skipped = P.prepare_inputs(files, plan, cfg, overrides, policy, headers)
+            infos, skipped = P.prepare_inputs(files, plan, cfg, overrides, policy, heads)
         if getattr(progress, "describe_inputs", True):
             progress.line(f"{len(infos)} file(s), metrics: {', '.join(plan.metric_ids)}")
         with profile.timed(STAGES, "plan (time axis, tasks)"):
