@@ -37,7 +37,7 @@ ZARR_SUFFIX = ".zarr"
 _CLASSIC_MAGIC = (b"CDF\x01", b"CDF\x02", b"CDF\x05")
 
 DEFAULTS = {"anonymous": False, "endpoint_url": "", "cache_dir": "", "block_bytes": 16 * 2 ** 20,
-            "cached_blocks": 4}
+            "cached_blocks": 4, "request_bytes": 16 * 2 ** 20}
 
 
 def is_url(path) -> bool:
@@ -316,14 +316,26 @@ def open_target(url, cfg):
 
 class RawObject:
     """h5netcdf's netCDF4-like API (``variables``, ``ncattrs``, ``dimensions``, raw values) on an
-    object, for :meth:`~circtrack.inputs.readers.RoleReader.read_fast`; closed with its file."""
+    object, for :meth:`~circtrack.inputs.readers.RoleReader.read_fast`; closed with its file.
+    Every read of a variable first fetches the HDF5 chunks it touches in a few concurrent requests
+    (:mod:`circtrack.inputs.ranges`)."""
 
-    def __init__(self, nc, close):
+    def __init__(self, nc, close, rfile=None, request_bytes=0):
         self._nc, self._close = nc, close
+        self._rfile, self._request_bytes = rfile, request_bytes
 
     @property
     def variables(self):
-        return self._nc.variables
+        if self._rfile is None:
+            return self._nc.variables
+        from circtrack.inputs.ranges import PrefetchingVariables
+
+        return PrefetchingVariables(self._nc.variables, self._rfile, self._request_bytes)
+
+    @property
+    def requests(self):
+        """Range requests made so far to fetch chunks (not counting metadata reads)."""
+        return self._rfile.requests if self._rfile is not None else 0
 
     def close(self):
         try:
@@ -334,18 +346,27 @@ class RawObject:
 
 def open_raw(url, cfg):
     """A :class:`RawObject` of a netCDF4/HDF5 object, or None where it does not apply (netCDF
-    classic objects, which open_dataset refuses with its own line)."""
+    classic objects, which open_dataset refuses with its own line).
+
+    Metadata and coordinates are read in ranges of at most 1 MiB (:func:`for_metadata`); the data a
+    read needs are fetched at its start, its HDF5 chunks merged into runs and fetched in concurrent
+    requests of at most ``[storage] request_bytes`` (:mod:`circtrack.inputs.ranges`)."""
     try:
-        target, _engine, _kw, close = open_target(url, cfg)
+        target, _engine, _kw, close = open_target(url, for_metadata(cfg))
     except InputError:
         return None
     import h5netcdf.legacyapi
 
+    from circtrack.inputs.ranges import RangeFile
+
+    fs, path = filesystem(url, cfg)
+    rfile = RangeFile(target, fs, path)
     try:
-        return RawObject(h5netcdf.legacyapi.Dataset(target, "r"), close)
+        nc = h5netcdf.legacyapi.Dataset(rfile, "r")
     except BaseException:
         close()
         raise
+    return RawObject(nc, lambda: (rfile.drop(), close()), rfile, int(_settings(cfg)["request_bytes"]))
 
 
 def _release(f):
@@ -371,6 +392,23 @@ def _quiet_inherited_sessions():
     log = logging.getLogger("asyncio")
     if not any(isinstance(f, _InheritedSessions) for f in log.filters):
         log.addFilter(_InheritedSessions())
+
+
+def _detach_inherited_sessions():
+    """In a forked worker: forget the parent's S3 sessions. s3fs closes a filesystem's session in a
+    finalizer bound to the parent's event loop; run in the child (on its own loop) it printed an
+    "attached to a different loop" traceback at exit. The sessions belong to the parent anyway."""
+    import weakref
+
+    registry = getattr(weakref.finalize, "_registry", None) or {}
+    for fin, info in list(registry.items()):
+        func = getattr(info, "func", None)
+        if getattr(func, "__module__", "") == "s3fs.core" and getattr(func, "__name__", "") == "close_session":
+            fin.detach()
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_detach_inherited_sessions)
 
 
 METADATA_BLOCK_BYTES = 2 ** 20

@@ -1,0 +1,236 @@
+"""Reading a hyperslab of a netCDF4/HDF5 object in object storage in a few concurrent requests.
+
+In: an fsspec file object of the object (for the reads nobody planned: metadata, coordinates, in
+small blocks), its filesystem and path, and per read the h5py dataset and the index being read.
+Out: a read-only file object (:class:`RangeFile`) that h5py reads through, and variables
+(:class:`PrefetchingVariable`) that, before each read, find the byte ranges of the HDF5 chunks the
+index touches (h5py's chunk query, from the chunk index alone: no data read), merge neighbouring
+chunks into runs, fetch the runs in pieces of at most ``request_bytes`` all at once
+(``fs.cat_ranges``: concurrent requests), and keep them until the read is done. HDF5 then finds
+every chunk it needs in memory and decodes it as it does from a local file, so values are
+identical to a local read. Memory: the compressed bytes of one read (one task's slab of one
+variable), never the object.
+"""
+
+from __future__ import annotations
+
+import bisect
+import io
+import itertools
+
+import numpy as np
+
+MERGE_GAP = 256 * 1024        # chunks closer than this are fetched in one run (the gap is read and dropped)
+MAX_CHUNKS = 100_000          # more chunks than this in one read: no prefetch (each chunk read as it comes)
+
+
+class RangeFile(io.RawIOBase):
+    """A read-only, seekable file over ``f`` (an fsspec file) that serves reads from prefetched
+    extents when one covers them, and from ``f`` otherwise."""
+
+    def __init__(self, f, fs, path):
+        super().__init__()
+        self._f, self._fs, self._path = f, fs, path
+        self._pos = 0
+        self._starts, self._data = [], []       # sorted extents: start offset -> bytes
+        self.requests = 0                       # range requests made by prefetch (for tests and profiles)
+
+    # -- the file protocol h5py's file-object driver uses
+    def readable(self):
+        return True
+
+    def seekable(self):
+        return True
+
+    def seek(self, offset, whence=io.SEEK_SET):
+        if whence == io.SEEK_SET:
+            self._pos = offset
+        elif whence == io.SEEK_CUR:
+            self._pos += offset
+        else:
+            self._pos = self._f.size + offset
+        return self._pos
+
+    def tell(self):
+        return self._pos
+
+    def readinto(self, buf):
+        n = len(buf)
+        got = self._from_extents(self._pos, n)
+        if got is None:
+            self._f.seek(self._pos)
+            got = self._f.read(n)
+        buf[:len(got)] = got
+        self._pos += len(got)
+        return len(got)
+
+    def read(self, n=-1):
+        if n is None or n < 0:
+            n = max(0, self._f.size - self._pos)
+        buf = bytearray(n)
+        k = self.readinto(buf)
+        return bytes(buf[:k])
+
+    def close(self):
+        self.drop()
+        try:
+            self._f.close()
+        finally:
+            super().close()
+
+    # -- prefetched extents
+    def _from_extents(self, pos, n):
+        k = bisect.bisect_right(self._starts, pos) - 1
+        if k < 0:
+            return None
+        start, data = self._starts[k], self._data[k]
+        if pos + n > start + len(data):
+            return None
+        return memoryview(data)[pos - start:pos - start + n]
+
+    def prefetch(self, ranges, request_bytes):
+        """Fetch ``ranges`` (``(offset, size)`` pairs) concurrently: merged into runs, each run
+        fetched in pieces of at most ``request_bytes``; kept until :meth:`drop`."""
+        runs = merge_ranges(ranges, MERGE_GAP)
+        runs = [r for r in runs if self._from_extents(r[0], r[1] - r[0]) is None]
+        if not runs:
+            return
+        pieces = [p for r in runs for p in split_run(r, request_bytes)]
+        got = self._fs.cat_ranges([self._path] * len(pieces), [p[0] for p in pieces], [p[1] for p in pieces])
+        for part in got:
+            if isinstance(part, BaseException):
+                raise part
+        self.requests += len(pieces)
+        it = iter(zip(pieces, got))
+        for start, end in runs:
+            parts = []
+            for (a, b), part in itertools.islice(it, len(split_run((start, end), request_bytes))):
+                if len(part) != b - a:
+                    raise OSError(f"short read from the object store: {len(part)} bytes of {b - a} at offset {a}")
+                parts.append(part)
+            self._add(start, parts[0] if len(parts) == 1 else b"".join(parts))
+
+    def _add(self, start, data):
+        k = bisect.bisect_left(self._starts, start)
+        self._starts.insert(k, start)
+        self._data.insert(k, data)
+
+    def drop(self):
+        """Forget every prefetched extent (frees their memory)."""
+        self._starts, self._data = [], []
+
+
+def merge_ranges(ranges, gap):
+    """``(offset, size)`` pairs -> sorted ``(start, end)`` runs; ranges closer than ``gap`` join."""
+    runs = []
+    for off, size in sorted(ranges):
+        end = off + size
+        if runs and off - runs[-1][1] <= gap:
+            runs[-1][1] = max(runs[-1][1], end)
+        else:
+            runs.append([off, end])
+    return [tuple(r) for r in runs]
+
+
+def split_run(run, request_bytes):
+    """A ``(start, end)`` run -> pieces of at most ``request_bytes`` (equal sizes)."""
+    start, end = run
+    n = max(1, -(-(end - start) // max(1, int(request_bytes))))
+    step = -(-(end - start) // n)
+    return [(a, min(a + step, end)) for a in range(start, end, step)]
+
+
+def _axis_span(i, n):
+    """``(first, last + 1)`` of the elements index ``i`` (int, slice or list) selects on an axis of ``n``."""
+    if isinstance(i, (int, np.integer)):
+        i = int(i) % n if n else 0
+        return i, i + 1
+    if isinstance(i, slice):
+        ids = range(*i.indices(n))
+        if not ids:
+            return 0, 0
+        return min(ids[0], ids[-1]), max(ids[0], ids[-1]) + 1
+    ids = [int(k) % n for k in i]
+    return (min(ids), max(ids) + 1) if ids else (0, 0)
+
+
+def chunk_ranges(ds, index):
+    """``(offset, size)`` byte ranges in the file of the HDF5 chunks that ``ds[index]`` reads (``ds``
+    an h5py dataset; ``index`` a tuple of ints, slices and index lists, one per axis), or None when
+    they cannot be told (compact storage, too many chunks). Unallocated chunks (fill values) have none."""
+    index = tuple(index) + (slice(None),) * (len(ds.shape) - len(tuple(index)))
+    spans = [_axis_span(i, n) for i, n in zip(index, ds.shape)]
+    if any(a >= b for a, b in spans):
+        return []
+    if ds.chunks is None:
+        return _contiguous_range(ds, spans)
+    if not hasattr(ds.id, "get_chunk_info_by_coord"):      # HDF5 before 1.10.5: no chunk query
+        return None
+    axes = [range(a // c, (b - 1) // c + 1) for (a, b), c in zip(spans, ds.chunks)]
+    if np.prod([len(r) for r in axes], dtype=float) > MAX_CHUNKS:
+        return None
+    out = []
+    for coord in itertools.product(*axes):
+        info = ds.id.get_chunk_info_by_coord(tuple(k * c for k, c in zip(coord, ds.chunks)))
+        if info.byte_offset is not None and info.size:
+            out.append((int(info.byte_offset), int(info.size)))
+    return out
+
+
+def _contiguous_range(ds, spans):
+    """The one byte range of an unchunked dataset that holds every element of ``spans``."""
+    offset = ds.id.get_offset()
+    if offset is None:                      # compact storage, or nothing written yet
+        return None
+    shape = ds.shape
+    first = last = 0
+    for (a, b), n in zip(spans, shape):
+        first = first * n + a
+        last = last * n + (b - 1)
+    item = ds.dtype.itemsize
+    return [(int(offset) + first * item, (last - first + 1) * item)]
+
+
+class PrefetchingVariable:
+    """An h5netcdf variable whose reads first fetch the chunks they touch (see the module doc);
+    everything else is the variable's own."""
+
+    def __init__(self, var, rfile, request_bytes):
+        self._var, self._rfile, self._request_bytes = var, rfile, request_bytes
+
+    def __getattr__(self, name):
+        return getattr(self._var, name)
+
+    def __getitem__(self, index):
+        key = index if isinstance(index, tuple) else (index,)
+        ranges = None
+        if not any(k is Ellipsis or k is None for k in key):
+            ranges = chunk_ranges(self._var._h5ds, key)
+        try:
+            if ranges:
+                self._rfile.prefetch(ranges, self._request_bytes)
+            return self._var[index]
+        finally:
+            self._rfile.drop()
+
+
+class PrefetchingVariables:
+    """``nc.variables`` with every variable wrapped in :class:`PrefetchingVariable`."""
+
+    def __init__(self, variables, rfile, request_bytes):
+        self._vars, self._rfile, self._request_bytes = variables, rfile, request_bytes
+
+    def __contains__(self, name):
+        return name in self._vars
+
+    def __getitem__(self, name):
+        return PrefetchingVariable(self._vars[name], self._rfile, self._request_bytes)
+
+    def __iter__(self):
+        return iter(self._vars)
+
+    def __len__(self):
+        return len(self._vars)
+
+    def keys(self):
+        return self._vars.keys()
