@@ -21,6 +21,7 @@ import itertools
 import numpy as np
 
 MERGE_GAP = 256 * 1024        # chunks closer than this are fetched in one run (the gap is read and dropped)
+MAX_PENDING = 16              # background fetches kept waiting for their read, at most
 MAX_CHUNKS = 100_000          # more chunks than this in one read: no prefetch (each chunk read as it comes)
 
 
@@ -33,6 +34,7 @@ class RangeFile(io.RawIOBase):
         self._f, self._fs, self._path = f, fs, path
         self._pos = 0
         self._starts, self._data = [], []       # sorted extents: start offset -> bytes
+        self._pending = []                      # background fetches: (runs, pieces, future)
         self.requests = 0                       # range requests made by prefetch (for tests and profiles)
 
     # -- the file protocol h5py's file-object driver uses
@@ -56,13 +58,13 @@ class RangeFile(io.RawIOBase):
 
     def readinto(self, buf):
         n = len(buf)
-        got = self._from_extents(self._pos, n)
-        if got is None:
+        if not self._copy_from_extents(self._pos, buf):
             self._f.seek(self._pos)
             got = self._f.read(n)
-        buf[:len(got)] = got
-        self._pos += len(got)
-        return len(got)
+            buf[:len(got)] = got
+            n = len(got)
+        self._pos += n
+        return n
 
     def read(self, n=-1):
         if n is None or n < 0:
@@ -79,45 +81,100 @@ class RangeFile(io.RawIOBase):
             super().close()
 
     # -- prefetched extents
-    def _from_extents(self, pos, n):
+    def _covered(self, pos, n):
+        """The extents (index range) that hold bytes ``pos .. pos + n`` without a gap, or None."""
         k = bisect.bisect_right(self._starts, pos) - 1
         if k < 0:
             return None
-        start, data = self._starts[k], self._data[k]
-        if pos + n > start + len(data):
-            return None
-        return memoryview(data)[pos - start:pos - start + n]
+        j, end = k, pos + n
+        while self._starts[j] + len(self._data[j]) < end:
+            if j + 1 >= len(self._starts) or self._starts[j + 1] != self._starts[j] + len(self._data[j]):
+                return None
+            j += 1
+        return k, j
+
+    def _copy_from_extents(self, pos, buf):
+        """Copy bytes ``pos ..`` into ``buf`` from the extents (a read may span adjacent pieces, which
+        are kept as fetched: never joined into one copy); False when they do not hold them all."""
+        n = len(buf)
+        found = self._covered(pos, n) if n else None
+        if found is None:
+            return False
+        out = memoryview(buf).cast("B")
+        done = 0
+        for i in range(found[0], found[1] + 1):
+            start, data = self._starts[i], self._data[i]
+            a = pos + done - start
+            take = min(len(data) - a, n - done)
+            out[done:done + take] = memoryview(data)[a:a + take]
+            done += take
+        return True
+
+    def _missing(self, runs):
+        return [r for r in runs if self._covered(r[0], r[1] - r[0]) is None]
+
+    def start(self, ranges, request_bytes):
+        """Start fetching ``ranges`` (``(offset, size)`` pairs) in the background (merged into runs,
+        each run in concurrent pieces of at most ``request_bytes``); :meth:`prefetch` waits for them.
+        Extents left from earlier reads are dropped first (they are installed only by the read that
+        needs them and released after it), so memory holds one task's reads."""
+        self._starts, self._data = [], []
+        if len(self._pending) > MAX_PENDING:          # fetches nobody read (never expected): forget them
+            self.drop()
+        runs = self._missing(merge_ranges(ranges, MERGE_GAP))
+        coro = getattr(self._fs, "_cat_ranges", None)
+        loop = getattr(self._fs, "loop", None)
+        if not runs or coro is None or loop is None:
+            return
+        import asyncio
+
+        pieces = [p for r in runs for p in split_run(r, request_bytes)]
+        fut = asyncio.run_coroutine_threadsafe(
+            coro([self._path] * len(pieces), [p[0] for p in pieces], [p[1] for p in pieces]), loop)
+        self._pending.append((runs, pieces, fut))
 
     def prefetch(self, ranges, request_bytes):
-        """Fetch ``ranges`` (``(offset, size)`` pairs) concurrently: merged into runs, each run
-        fetched in pieces of at most ``request_bytes``; kept until :meth:`drop`."""
+        """Make ``ranges`` available in memory: wait for the background fetches that hold them, and
+        fetch what none holds now, all pieces at once; kept until :meth:`release`."""
         runs = merge_ranges(ranges, MERGE_GAP)
-        runs = [r for r in runs if self._from_extents(r[0], r[1] - r[0]) is None]
+        for entry in [e for e in self._pending if _overlaps(e[0], runs)]:
+            self._pending.remove(entry)
+            self._install(entry[0], entry[1], entry[2].result())
+        runs = self._missing(runs)
         if not runs:
             return
         pieces = [p for r in runs for p in split_run(r, request_bytes)]
         got = self._fs.cat_ranges([self._path] * len(pieces), [p[0] for p in pieces], [p[1] for p in pieces])
+        self._install(runs, pieces, got)
+
+    def _install(self, runs, pieces, got):
         for part in got:
             if isinstance(part, BaseException):
                 raise part
         self.requests += len(pieces)
-        it = iter(zip(pieces, got))
-        for start, end in runs:
-            parts = []
-            for (a, b), part in itertools.islice(it, len(split_run((start, end), request_bytes))):
-                if len(part) != b - a:
-                    raise OSError(f"short read from the object store: {len(part)} bytes of {b - a} at offset {a}")
-                parts.append(part)
-            self._add(start, parts[0] if len(parts) == 1 else b"".join(parts))
+        for (a, b), part in zip(pieces, got):
+            if len(part) != b - a:
+                raise OSError(f"short read from the object store: {len(part)} bytes of {b - a} at offset {a}")
+            j = bisect.bisect_left(self._starts, a)
+            self._starts.insert(j, a)
+            self._data.insert(j, part)
 
-    def _add(self, start, data):
-        k = bisect.bisect_left(self._starts, start)
-        self._starts.insert(k, start)
-        self._data.insert(k, data)
+    def release(self, ranges):
+        """Forget the extents that hold ``ranges`` (a read is done with them)."""
+        runs = merge_ranges(ranges, MERGE_GAP)
+        keep = [(s, d) for s, d in zip(self._starts, self._data) if not _overlaps([(s, s + len(d))], runs)]
+        self._starts, self._data = [s for s, _ in keep], [d for _, d in keep]
 
     def drop(self):
-        """Forget every prefetched extent (frees their memory)."""
+        """Forget every prefetched extent and background fetch (frees their memory)."""
+        for _runs, _pieces, fut in self._pending:
+            fut.cancel()
+        self._pending = []
         self._starts, self._data = [], []
+
+
+def _overlaps(runs_a, runs_b):
+    return any(a0 < b1 and b0 < a1 for a0, a1 in runs_a for b0, b1 in runs_b)
 
 
 def merge_ranges(ranges, gap):
@@ -166,7 +223,8 @@ def chunk_ranges(ds, index):
         return _contiguous_range(ds, spans)
     if not hasattr(ds.id, "get_chunk_info_by_coord"):      # HDF5 before 1.10.5: no chunk query
         return None
-    axes = [range(a // c, (b - 1) // c + 1) for (a, b), c in zip(spans, ds.chunks)]
+    axes = [sorted({int(k) % n // c for k in i}) if isinstance(i, list) else range(a // c, (b - 1) // c + 1)
+            for i, n, (a, b), c in zip(index, ds.shape, spans, ds.chunks)]
     if np.prod([len(r) for r in axes], dtype=float) > MAX_CHUNKS:
         return None
     out = []
@@ -206,12 +264,13 @@ class PrefetchingVariable:
         ranges = None
         if not any(k is Ellipsis or k is None for k in key):
             ranges = chunk_ranges(self._var._h5ds, key)
+        if not ranges:
+            return self._var[index]
         try:
-            if ranges:
-                self._rfile.prefetch(ranges, self._request_bytes)
+            self._rfile.prefetch(ranges, self._request_bytes)
             return self._var[index]
         finally:
-            self._rfile.drop()
+            self._rfile.release(ranges)
 
 
 class PrefetchingVariables:

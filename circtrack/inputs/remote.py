@@ -27,6 +27,7 @@ import logging
 import os
 import posixpath
 import tempfile
+import weakref
 
 from circtrack.errors import InputError
 
@@ -96,6 +97,9 @@ def filesystem(url, cfg):
     import fsspec
 
     fs = fsspec.filesystem(scheme, **storage_options(url, cfg))
+    loop = getattr(fs, "_loop", None) or getattr(fs, "loop", None)
+    if loop is not None:
+        _LOOPS.add(loop)
     path = url.split("://", 1)[1] if scheme == "s3" else url
     return fs, path
 
@@ -332,6 +336,17 @@ class RawObject:
 
         return PrefetchingVariables(self._nc.variables, self._rfile, self._request_bytes)
 
+    def prefetch(self, name, index):
+        """Start fetching the chunks that ``variables[name][index]`` reads (in the background; the
+        read waits for them)."""
+        if self._rfile is None:
+            return
+        from circtrack.inputs.ranges import chunk_ranges
+
+        ranges = chunk_ranges(self._nc.variables[name]._h5ds, index)
+        if ranges:
+            self._rfile.start(ranges, self._request_bytes)
+
     @property
     def requests(self):
         """Range requests made so far to fetch chunks (not counting metadata reads)."""
@@ -394,12 +409,34 @@ def _quiet_inherited_sessions():
         log.addFilter(_InheritedSessions())
 
 
-def _detach_inherited_sessions():
-    """In a forked worker: forget the parent's S3 sessions. s3fs closes a filesystem's session in a
-    finalizer bound to the parent's event loop; run in the child (on its own loop) it printed an
-    "attached to a different loop" traceback at exit. The sessions belong to the parent anyway."""
-    import weakref
+_LOOPS = weakref.WeakSet()      # event loops of this process's filesystems (fsspec's I/O loop)
 
+
+def _after_fork_in_child():
+    """In a forked worker: let nothing of the parent's S3 sessions touch the parent's connections.
+
+    * A forked child shares the parent's epoll instance (the kernel object, not a copy). When the
+      child dropped the connections it inherited, asyncio unregistered their sockets from that
+      shared epoll, so the parent never heard its next response: measured, the parent's last
+      request of a run (the object's size and ETag for the provenance) waited for the 15 s read
+      timeout. The child's copy of the parent's loop gets an epoll of its own.
+    * s3fs closes a filesystem's session in a finalizer bound to the parent's loop; run in the child
+      (on its own loop) it printed an "attached to a different loop" traceback at exit. Without it,
+      aiohttp's own "unclosed session" messages for those sessions are dropped as for Zarr stores.
+    """
+    import select
+
+    if _LOOPS:
+        _quiet_inherited_sessions()
+
+    for loop in list(_LOOPS):
+        sel = getattr(getattr(loop, "_selector", None), "_selector", None)
+        if sel is not None and hasattr(select, "epoll") and isinstance(sel, select.epoll):
+            try:
+                sel.close()                      # the child's descriptor only; the parent's stays open
+            except OSError:
+                pass
+            loop._selector._selector = select.epoll()
     registry = getattr(weakref.finalize, "_registry", None) or {}
     for fin, info in list(registry.items()):
         func = getattr(info, "func", None)
@@ -408,7 +445,7 @@ def _detach_inherited_sessions():
 
 
 if hasattr(os, "register_at_fork"):
-    os.register_at_fork(after_in_child=_detach_inherited_sessions)
+    os.register_at_fork(after_in_child=_after_fork_in_child)
 
 
 METADATA_BLOCK_BYTES = 2 ** 20
