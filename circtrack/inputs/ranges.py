@@ -3,13 +3,16 @@
 In: an fsspec file object of the object (for the reads nobody planned: metadata, coordinates, in
 small blocks), its filesystem and path, and per read the h5py dataset and the index being read.
 Out: a read-only file object (:class:`RangeFile`) that h5py reads through, and variables
-(:class:`PrefetchingVariable`) that, before each read, find the byte ranges of the HDF5 chunks the
-index touches (h5py's chunk query, from the chunk index alone: no data read), merge neighbouring
-chunks into runs, fetch the runs in pieces of at most ``request_bytes`` all at once
-(``fs.cat_ranges``: concurrent requests), and keep them until the read is done. HDF5 then finds
-every chunk it needs in memory and decodes it as it does from a local file, so values are
-identical to a local read. Memory: the compressed bytes of one read (one task's slab of one
-variable), never the object.
+(:class:`PrefetchingVariable`) whose reads are served from memory.
+
+:func:`chunk_ranges` finds the byte ranges of the HDF5 chunks an index touches (h5py's chunk
+query, from the chunk index alone: no data read). :meth:`RangeFile.start` merges neighbouring
+chunks into runs and starts fetching them in pieces of at most ``request_bytes`` on fsspec's
+event loop (``_cat_ranges``: every piece concurrently), in the background, so a task starts the
+fetches of all its variables before it reads the first. The read waits for the pieces it needs
+(:meth:`RangeFile.prefetch`), HDF5 decodes the chunks from memory as it does from a local file
+(values identical to a local read), and the pieces are released. Memory: the compressed bytes of
+one task's reads, never the object.
 """
 
 from __future__ import annotations
