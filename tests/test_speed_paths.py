@@ -192,6 +192,51 @@ def test_covariance_and_fourier_fast_paths_equal_the_masked_formulas():
                                   equal_nan=True)
 
 
+def test_covariance_in_blocks_of_rows_equals_the_whole_array_at_once(monkeypatch):
+    """Rows are reduced a block at a time (cache-sized): the same numbers as one pass over everything."""
+    rng = np.random.default_rng(3)
+    a = rng.standard_normal((7, 61, 144)) * 12 + 5
+    b = (rng.standard_normal((7, 61, 144)) * 4).astype(np.float32)
+    monkeypatch.setattr(Z, "_BLOCK_VALUES", 1000)          # 6 rows per block, 427 rows: many blocks
+    got = Z.zonal_covariance(a, b)
+    assert np.array_equal(got[0], ref_zonal_covariance(a, b)[0])
+    monkeypatch.setattr(Z, "_BLOCK_VALUES", 1 << 30)       # one block
+    assert np.array_equal(got[0], Z.zonal_covariance(a, b)[0])
+
+
+def ref_per_longitude_peak(y, lat, hemi, window, *, min_fraction):
+    from circtrack.kernels.extrema import window_extremum
+
+    lat = np.asarray(lat, float)
+    idx = np.flatnonzero(lat >= 0) if hemi == "NH" else np.flatnonzero(lat <= 0)[::-1]
+    yh = np.moveaxis(np.asarray(y, float)[..., idx, :], -1, -2)
+    ext = window_extremum(yh, np.abs(lat[idx]), window[0], window[1], kind="max")
+    good = (ext.reason(min_fraction) == "ok") & np.isfinite(ext.position)
+    return np.where(good, ext.position, np.nan)
+
+
+def test_per_longitude_peak_on_the_window_rows_equals_the_whole_hemisphere():
+    """Only the window's rows and a neighbour each side are searched: same positions and verdicts,
+    also with windows reaching the equator or the pole, gaps next to the maximum and maxima on the edge."""
+    rng = np.random.default_rng(4)
+    lat = np.arange(-90.0, 90.1, 2.5)
+    lon = np.arange(0.0, 360.0, 15.0)
+    jet = 40.0 + 15.0 * np.sin(np.deg2rad(lon))                      # 25..55 degrees: some at the edges
+    y = 30.0 * np.exp(-((np.abs(lat)[:, None] - jet[None, :]) / 8.0) ** 2) + rng.standard_normal((3, lat.size, lon.size))
+    y[1, 60:62, 4] = np.nan                                          # a gap next to the NH maximum
+    y[2, :, 9] = np.nan
+    seen = set()
+    for arr in (y, y.astype(np.float32)):
+        for hemi in ("NH", "SH"):
+            for window in ((15.0, 70.0), (30.0, 50.0), (0.0, 45.0), (60.0, 90.0), (0.0, 90.0), (91.0, 95.0)):
+                got = Z.per_longitude_peak(arr, lat, hemi, window, min_fraction=0.5)
+                want = ref_per_longitude_peak(arr, lat, hemi, window, min_fraction=0.5)
+                assert np.array_equal(got, want, equal_nan=True), (hemi, window)
+                seen.update({"finite"} if np.isfinite(got).any() else set())
+                seen.update({"nan"} if np.isnan(got).any() else set())
+    assert seen == {"finite", "nan"}
+
+
 # --------------------------------------------------------------------------- whole runs
 def test_rows_identical_to_float64_copies_with_missing_data_sectors_and_members(tmp_path, monkeypatch):
     paths = [write(full_set(4, seed=k, start=4 * k), tmp_path / f"f{k}.nc") for k in range(2)]
@@ -290,3 +335,14 @@ def test_profile_prints_where_the_time_went_and_changes_nothing(tmp_path):
                  "reducer eddy_momentum_flux", "reducer energy_column_sums", "cells", "energy_transport"):
         assert part in text, part
     assert "circtrack profile" not in plain.output
+
+
+def test_tasks_run_blas_on_one_thread():
+    """BLAS threads spinning on cores busy with other tasks made the wave amplitudes 4-15x slower."""
+    import threadpoolctl
+
+    from circtrack.engine import reduce as RD
+
+    RD.reduce_chunks([])
+    blas = [i for i in threadpoolctl.threadpool_info() if i["user_api"] == "blas"]
+    assert blas and all(i["num_threads"] == 1 for i in blas)

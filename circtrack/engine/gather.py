@@ -79,29 +79,61 @@ class BatchReader:
         self.cache = {}
         self.batch_of_pos, self.last_use = schedule(rp)
         self.pending = None        # (batch index, thread, box) being read while the families run
+        self.sent = {}             # batch index -> chunks sent for it and their Sent handle
+        self.inflight = {}         # chunk -> (chunks, Sent) while its task is with the workers
         self._rows = functools.partial(gather_rows, self.cache, chunk_of=rp.chunk_of, chunks=rp.chunks,
                                        starts=rp.starts)
+
+    def _repeats(self, bi):
+        rp = self.rp
+        return [(d, p) for d, p in zip(rp.dropped, rp.partner) if self.batch_of_pos[d] == bi]
+
+    def submit(self, bi):
+        """Send the tasks of batch ``bi`` that are neither cached nor already with the workers (with
+        worker processes they start at once; see :meth:`Runner.submit`)."""
+        if bi in self.sent:
+            return
+        rp = self.rp
+        t0, t1 = rp.batches[bi]
+        wanted = list(rp.keep[t0:t1]) + [d for d, _ in self._repeats(bi)]
+        need = sorted({int(rp.chunk_of[q]) for q in wanted} - set(self.cache) - set(self.inflight))
+        sizes = {c: rp.chunks[c][2] - rp.chunks[c][1] for c in need}
+        groups = group_chunks(need, sizes, int(rp.cfg["run"]["time_chunk"]), 2 * self.runner.nproc)
+        sent = self.runner.submit(reduce_chunks, [[rp.job(c) for c in g] for g in groups])
+        self.sent[bi] = (need, sent)
+        for c in need:
+            self.inflight[c] = (need, sent)
+
+    def _collect(self, bi):
+        """Wait for every chunk batch ``bi`` needs that is still with the workers, into the cache."""
+        rp = self.rp
+        t0, t1 = rp.batches[bi]
+        wanted = list(rp.keep[t0:t1]) + [d for d, _ in self._repeats(bi)]
+        handles = {id(h[1]): h for c in {int(rp.chunk_of[q]) for q in wanted} if (h := self.inflight.get(c))}
+        for need, sent in handles.values():
+            try:
+                results = [r for rs in sent.results() for r in rs]
+            except (OSError, RuntimeError, ValueError, KeyError, IndexError) as e:
+                involved = sorted({rp.infos[rp.chunks[c][0]].path for c in need})
+                msg = str(e).splitlines()[0] if str(e) else type(e).__name__
+                raise InputError(f"{involved[0]}: reading data failed ({msg}) for time steps "
+                                 f"{iso_time(rp.times[t0])}..{iso_time(rp.times[t1 - 1])} in {', '.join(involved)}; "
+                                 "one of these files is damaged: re-copy it or leave it out")
+            for r in results:
+                profile.add_task_timing(r.pop("timing", None))
+            self.cache.update(zip(need, results))
+            for c in need:
+                self.inflight.pop(c, None)
 
     def reduce(self, bi):
         """Reduced stats/extras of batch ``bi`` in chronological order (reads what is not cached)."""
         rp, cache = self.rp, self.cache
         t0, t1 = rp.batches[bi]
         positions = rp.keep[t0:t1]
-        mine = [(d, p) for d, p in zip(rp.dropped, rp.partner) if self.batch_of_pos[d] == bi]
-        need = sorted({int(rp.chunk_of[q]) for q in list(positions) + [d for d, _ in mine]} - set(cache))
-        sizes = {c: rp.chunks[c][2] - rp.chunks[c][1] for c in need}
-        groups = group_chunks(need, sizes, int(rp.cfg["run"]["time_chunk"]), 2 * self.runner.nproc)
-        try:
-            results = [r for rs in self.runner.run(reduce_chunks, [[rp.job(c) for c in g] for g in groups]) for r in rs]
-        except (OSError, RuntimeError, ValueError, KeyError, IndexError) as e:
-            involved = sorted({rp.infos[rp.chunks[c][0]].path for c in need})
-            msg = str(e).splitlines()[0] if str(e) else type(e).__name__
-            raise InputError(f"{involved[0]}: reading data failed ({msg}) for time steps {iso_time(rp.times[t0])}.."
-                             f"{iso_time(rp.times[t1 - 1])} in {', '.join(involved)}; one of these files is damaged: "
-                             "re-copy it or leave it out")
-        for r in results:
-            profile.add_task_timing(r.pop("timing", None))
-        cache.update(zip(need, results))
+        mine = self._repeats(bi)
+        self.submit(bi)
+        self._collect(bi)
+        self.sent.pop(bi, None)
         for d, p in mine:
             if rp.provisional[d] and not rp.provisional[p]:
                 continue                   # provisional data replaced by final data: expected to differ
@@ -134,14 +166,19 @@ class BatchReader:
         nb = len(self.rp.batches)
         reduced = {}
         for bi in range(nb):
+            if self.runner.streams:
+                # worker processes: the next batch's tasks are sent before this one is gathered, so
+                # the workers never wait for the families, nor for the slowest task of a batch
+                for bj in range(bi, min(nb, bi + ahead + 1)):
+                    self.submit(bj)
             for bj in range(bi, min(nb, bi + ahead)):
                 if self.pending is not None and self.pending[0] == bj:
                     reduced[bj] = self._take_pending()
                 if bj not in reduced:
                     reduced[bj] = self.reduce(bj)
-            # read the next batch in the background so the workers never wait for the families
+            # elsewhere: read the next batch in a background thread while the families run
             nxt = bi + ahead
-            if nxt < nb and self.pending is None and nxt not in reduced:
+            if not self.runner.streams and nxt < nb and self.pending is None and nxt not in reduced:
                 self._prefetch(nxt)
             yield bi, reduced
             reduced.pop(bi - 1 if ahead > 1 else bi, None)

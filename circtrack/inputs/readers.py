@@ -16,6 +16,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from circtrack.errors import InputError
+from circtrack.inputs import chunks as CH
 from circtrack.inputs import model_levels as ML
 from circtrack.inputs import plausible as PL
 from circtrack.inputs import streams as S
@@ -331,7 +332,9 @@ class RoleReader:
         if getattr(type(var), "set_auto_maskandscale", None) is not None:   # netCDF4; h5netcdf reads raw
             var.set_auto_maskandscale(False)
         index, post = _fast_index(var.dimensions, self.time_dim, self.selection, t0, t1)
-        arr = _read_hyperslabs(var, index)
+        arr = _read_direct(nc, self.name, index)
+        if arr is None:
+            arr = _read_hyperslabs(var, index)
         for k, p in enumerate(post):                         # reversed axes as views
             if isinstance(p, np.ndarray):
                 arr = np.take(arr, p, axis=k)
@@ -449,6 +452,23 @@ def _fast_index(dims, time_dim, selection, t0, t1):
                 index.append(ids)                        # read level by level, in this order
                 post.append(slice(None))
     return index, post
+
+
+def _read_direct(nc, name, index):
+    """``nc[name][index]`` with the chunks inflated by inputs/chunks.py (deflate-compressed netCDF4
+    files on disk), else None. ``index`` is updated as :func:`_read_hyperslabs` does."""
+    if not CH.available() or not str(getattr(nc, "data_model", "")).startswith("NETCDF4"):
+        return None
+    try:
+        path = nc.filepath()
+    except (AttributeError, ValueError):
+        return None
+    arr = CH.read(path, name, index)
+    if arr is not None:
+        for k, i in enumerate(index):
+            if isinstance(i, list):
+                index[k] = slice(0, len(i))          # now a plain axis of arr
+    return arr
 
 
 def _read_hyperslabs(var, index):

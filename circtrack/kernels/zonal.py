@@ -64,11 +64,22 @@ def _covariance_all_valid(a, b):
     n = a.shape[-1]
     if n == 0:
         return None
+    cov = np.empty(sa.shape)
+    # a few rows at a time, so the deviations stay in the processor's cache (each row is summed on
+    # its own, so the blocks give the same numbers as the whole array at once)
+    a2, b2 = a.reshape(-1, n), b.reshape(-1, n)
+    ma, mb, c = (sa / n).reshape(-1), (sb / n).reshape(-1), cov.reshape(-1)
+    step = max(1, _BLOCK_VALUES // n)
     with np.errstate(invalid="ignore", divide="ignore"):
-        ma = sa / n
-        mb = sb / n
-        cov = ((a - ma[..., None]) * (b - mb[..., None])).sum(axis=-1) / n
+        for r0 in range(0, a2.shape[0], step):
+            r1 = r0 + step
+            da = a2[r0:r1] - ma[r0:r1, None]
+            da *= b2[r0:r1] - mb[r0:r1, None]
+            c[r0:r1] = da.sum(axis=-1) / n
     return cov, np.ones(cov.shape)
+
+
+_BLOCK_VALUES = 1 << 16     # float64 values per block of rows (512 KiB): fits a core's cache
 
 
 def slab_at_level(arr, p, target, *, tolerance):
@@ -164,7 +175,9 @@ def fourier_amplitudes(y, lon, wavenumbers):
     lam = np.deg2rad(np.mod(np.asarray(lon, float), 360.0))
     order = np.argsort(lam, kind="stable")       # sum in one longitude order whatever the file's convention
     lam = lam[order]
-    y = np.asarray(y, dtype=np.float64)[..., order]
+    y = np.asarray(y, dtype=np.float64)
+    if np.any(order != np.arange(order.size)):   # already in order (the usual grid): no reordered copy
+        y = y[..., order]
     gaps = np.diff(np.concatenate([lam, [lam[0] + 2 * np.pi]]))          # to the next point, cyclic
     w = 0.5 * (gaps + np.roll(gaps, 1))
     ks = np.asarray(wavenumbers, dtype=float)
@@ -190,7 +203,13 @@ def per_longitude_peak(y, lat, hemi, window, *, min_fraction):
     lat = np.asarray(lat, float)
     idx = np.flatnonzero(lat >= 0) if hemi == "NH" else np.flatnonzero(lat <= 0)[::-1]
     x = np.abs(lat[idx])
-    yh = np.moveaxis(np.asarray(y, float)[..., idx, :], -1, -2)         # (..., I, Jh)
+    # only the window's rows and one neighbour on each side (all the extremum rule looks at), copied
+    # once with latitude last so the search runs along contiguous memory
+    inwin = np.flatnonzero((x >= window[0]) & (x <= window[1]))
+    if inwin.size:
+        keep = slice(max(inwin[0] - 1, 0), inwin[-1] + 2)
+        idx, x = idx[keep], x[keep]
+    yh = np.ascontiguousarray(np.moveaxis(np.asarray(y)[..., idx, :], -1, -2), dtype=float)   # (..., I, Jh)
     ext = window_extremum(yh, x, window[0], window[1], kind="max")
     good = (ext.reason(min_fraction) == "ok") & np.isfinite(ext.position)
     return np.where(good, ext.position, np.nan)
