@@ -456,14 +456,20 @@ def _fast_index(dims, time_dim, selection, t0, t1):
 
 def _read_direct(nc, name, index):
     """``nc[name][index]`` with the chunks inflated by inputs/chunks.py (deflate-compressed netCDF4
-    files on disk), else None. ``index`` is updated as :func:`_read_hyperslabs` does."""
-    if not CH.available() or not str(getattr(nc, "data_model", "")).startswith("NETCDF4"):
+    files on disk, and objects in object storage), else None. ``index`` is updated as :func:`_read_hyperslabs` does."""
+    if not CH.available():
         return None
-    try:
-        path = nc.filepath()
-    except (AttributeError, ValueError):
+    remote_read = getattr(type(nc), "read_direct", None)     # an object in object storage (remote.RawObject)
+    if remote_read is not None:
+        arr = remote_read(nc, name, index)
+    elif not str(getattr(nc, "data_model", "")).startswith("NETCDF4"):
         return None
-    arr = CH.read(path, name, index)
+    else:
+        try:
+            path = nc.filepath()
+        except (AttributeError, ValueError):
+            return None
+        arr = CH.read(path, name, index)
     if arr is not None:
         for k, i in enumerate(index):
             if isinstance(i, list):

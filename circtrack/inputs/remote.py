@@ -327,6 +327,7 @@ class RawObject:
     def __init__(self, nc, close, rfile=None, request_bytes=0):
         self._nc, self._close = nc, close
         self._rfile, self._request_bytes = rfile, request_bytes
+        self._layouts = {}            # variable -> chunk layout, for inputs/chunks.py
 
     @property
     def variables(self):
@@ -346,6 +347,25 @@ class RawObject:
         ranges = chunk_ranges(self._nc.variables[name]._h5ds, index)
         if ranges:
             self._rfile.start(ranges, self._request_bytes)
+
+    def read_direct(self, name, index):
+        """``variables[name][index]`` with its chunks fetched at once (:mod:`circtrack.inputs.ranges`)
+        and inflated by :mod:`circtrack.inputs.chunks` as for files on disk, or None (the caller
+        then reads through :attr:`variables`; the fetched chunks stay for that read)."""
+        if self._rfile is None:
+            return None
+        from circtrack.inputs import chunks
+        from circtrack.inputs.ranges import chunk_ranges
+
+        dset = self._nc.variables[name]._h5ds
+        ranges = chunk_ranges(dset, index)
+        if not ranges:
+            return None
+        self._rfile.prefetch(ranges, self._request_bytes)
+        arr = chunks.read_dataset(dset, index, self._layouts)
+        if arr is not None:
+            self._rfile.release(ranges)
+        return arr
 
     @property
     def requests(self):

@@ -126,3 +126,29 @@ def test_track_reads_each_chunk_once(aws, local_data, tmp_path, monkeypatch):
         assert len(calls) <= 4                           # a run per variable, in pieces of 16 MiB
     finally:
         raw.close()
+
+
+def test_direct_read_inflates_fetched_chunks_as_on_disk(aws, local_data, monkeypatch):
+    """Objects take the same chunk decoder as files on disk (inputs/chunks.py), on chunks fetched at once."""
+    from circtrack.inputs import chunks as CH
+
+    if not CH.available():
+        pytest.skip("isal not installed")
+    used = []
+    real = CH.read_dataset
+    monkeypatch.setattr(CH, "read_dataset", lambda *a: used.append(a[0].name) or real(*a))
+    raw = R.open_raw(f"s3://{BUCKET}/reanalysis/daily/uv_01.nc", cfg())
+    try:
+        with netCDF4.Dataset(local_data["files"][1]) as nc:
+            for name, index in [("ua", [slice(0, 2), slice(None), slice(None), slice(None)]),
+                                ("va", [1, [3, 0], slice(2, 9), slice(None)])]:
+                raw.prefetch(name, index)
+                got = raw.read_direct(name, index)
+                ref = nc[name]
+                ref.set_auto_maskandscale(False)
+                want = np.stack([ref[1, 3, 2:9], ref[1, 0, 2:9]]) if name == "va" else ref[tuple(index)]
+                np.testing.assert_array_equal(got, want)
+                assert raw._rfile._data == [] and raw._rfile._pending == []
+        assert used == ["/ua", "/va"]
+    finally:
+        raw.close()
