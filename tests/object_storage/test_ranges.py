@@ -4,6 +4,8 @@ S3 server of conftest.py."""
 
 from __future__ import annotations
 
+import os
+import time
 import zlib
 
 import h5py
@@ -152,3 +154,53 @@ def test_direct_read_inflates_fetched_chunks_as_on_disk(aws, local_data, monkeyp
         assert used == ["/ua", "/va"]
     finally:
         raw.close()
+
+
+@pytest.fixture
+def keep_alive_server(local_data):
+    """A plain HTTP/1.1 server on 127.0.0.1 that keeps connections alive (as object stores do; moto
+    closes each connection after its response), serving the test files."""
+    import functools
+    import http.server
+    import threading
+
+    class Handler(http.server.SimpleHTTPRequestHandler):
+        protocol_version = "HTTP/1.1"
+
+        def log_message(self, *args):
+            pass
+
+    handler = functools.partial(Handler, directory=str(local_data["files"][0].parent))
+    server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), handler)
+    thread = threading.Thread(target=server.serve_forever, daemon=True)
+    thread.start()
+    try:
+        yield f"http://127.0.0.1:{server.server_address[1]}"
+    finally:
+        server.shutdown()
+        server.server_close()
+
+
+@pytest.mark.skipif(not hasattr(os, "fork"), reason="needs fork")
+def test_a_forked_child_leaves_the_parents_connections_alone(keep_alive_server):
+    """A forked worker that drops the connections it inherited must not take them from the parent.
+    They share the kernel's epoll instance: the child took the parent's socket out of it, and the
+    parent's next request on that kept-alive connection was never heard (s3fs waited for its 15 s
+    read timeout at the end of every run whose workers were forked)."""
+    import fsspec.asyn
+
+    url = f"{keep_alive_server}/uv_00.nc"
+    fs, _path = R.filesystem(url, cfg())
+    fsspec.asyn.sync(fs.loop, fs._info, url, timeout=10)      # a kept-alive connection, in the loop's epoll
+    session = fsspec.asyn.sync(fs.loop, fs.set_session)
+    assert session.connector._conns
+    pid = os.fork()
+    if pid == 0:
+        try:      # the child drops the pool it inherited, as aiohttp does when its connector goes
+            session.connector._close()
+        finally:
+            os._exit(0)
+    os.waitpid(pid, 0)
+    t0 = time.perf_counter()
+    fsspec.asyn.sync(fs.loop, fs._info, url, timeout=5)      # FSTimeoutError when the answer is never heard
+    assert time.perf_counter() - t0 < 5
