@@ -24,6 +24,7 @@ import itertools
 import numpy as np
 
 MERGE_GAP = 256 * 1024        # chunks closer than this are fetched in one run (the gap is read and dropped)
+SETTLE_S = 30.0               # fetches in flight when an object is closed: waited for this long at most
 MAX_PENDING = 16              # background fetches kept waiting for their read, at most
 MAX_CHUNKS = 100_000          # more chunks than this in one read: no prefetch (each chunk read as it comes)
 
@@ -169,9 +170,18 @@ class RangeFile(io.RawIOBase):
         self._starts, self._data = [s for s, _ in keep], [d for _, d in keep]
 
     def drop(self):
-        """Forget every prefetched extent and background fetch (frees their memory)."""
+        """Forget every prefetched extent and background fetch (frees their memory). Fetches still
+        in flight are waited for (at most ``SETTLE_S`` in all) and their bytes dropped: cancelled,
+        fsspec's requests were left half-read ("Unclosed connection", "Task was destroyed but it is
+        pending" at exit)."""
+        import time
+
+        deadline = time.monotonic() + SETTLE_S
         for _runs, _pieces, fut in self._pending:
-            fut.cancel()
+            try:
+                fut.result(timeout=max(0.0, deadline - time.monotonic()))
+            except Exception:  # noqa: BLE001 - its bytes are not wanted; its error is not ours to report
+                fut.cancel()
         self._pending = []
         self._starts, self._data = [], []
 
