@@ -78,70 +78,113 @@ def find_core(u, x, p, lat_window, p_window, *, min_fraction, min_speed=-np.inf)
         (``column_too_short``); the core weaker than ``min_speed`` (``weak_jet_core``).
     """
     u = np.asarray(u, dtype=float)
+    c = _find_cores(u[..., None], x, p, lat_window, p_window, min_fraction=min_fraction, min_speed=min_speed)
+    return Core(*(a[..., 0] for a in (c.lat, c.pressure, c.speed, c.j, c.k, c.reason)))
+
+
+def _find_cores(u, x, p, lat_window, p_window, *, min_fraction, min_speed):
+    """:func:`find_core` for every column ``i`` of ``u (..., L, J, I)`` -> :class:`Core` of shape ``(..., I)``.
+
+    One implementation for both layouts: the zonal mean is ``I = 1``; at every longitude the
+    longitudes stay the last (contiguous) axis and ``u`` keeps its own float type (float32 comparisons
+    select the same points as float64 ones of the same values); only the five points of each core are
+    converted to float64 for the refinement, so the results equal a float64 search exactly.
+    """
     x = np.asarray(x, dtype=float)
     p = np.asarray(p, dtype=float)
-    lead = u.shape[:-2]
+    shape = u.shape[:-3] + u.shape[-1:]
     j0, j1 = _window(x, *lat_window)
     k0, k1 = _window(p, *p_window)
-    nan = np.full(lead, np.nan)
-    none = np.full(lead, -1)
+    nan = np.full(shape, np.nan)
+    none = np.full(shape, -1)
     if k1 - k0 < MIN_LEVELS:
-        return Core(nan, nan.copy(), nan.copy(), none, none.copy(), np.full(lead, COLUMN_SHORT))
+        return Core(nan, nan.copy(), nan.copy(), none, none.copy(), np.full(shape, COLUMN_SHORT))
     if j1 - j0 < 3:
-        return Core(nan, nan.copy(), nan.copy(), none, none.copy(), np.full(lead, TOO_LITTLE))
-    w = np.ascontiguousarray(u[..., k0:k1, j0:j1])         # one copy of the window; reshapes are views
-    fin = np.isfinite(w)
-    frac = fin.mean(axis=(-2, -1))
-    nl, nj = w.shape[-2:]
-    c = w[..., 1:-1, 1:-1]
-    # neighbours' maxima (NaN propagates, so a missing neighbour makes no candidate): the six to the
-    # sides (>=), and the two above and below (>, a column constant with height has no core)
-    sides = np.maximum(w[..., :, :-2], w[..., :, 2:])                   # (..., nl, nj-2)
-    sides = np.maximum(np.maximum(sides[..., :-2, :], sides[..., 1:-1, :]), sides[..., 2:, :])
-    vert = np.maximum(w[..., :-2, 1:-1], w[..., 2:, 1:-1])
-    with np.errstate(invalid="ignore"):
-        cand = (c >= sides) & (c > vert)
-    score = np.where(cand, c, -np.inf).reshape(lead + (-1,))
-    best = np.argmax(score, axis=-1)
-    has = np.isfinite(np.take_along_axis(score, best[..., None], -1)[..., 0])
+        return Core(nan, nan.copy(), nan.copy(), none, none.copy(), np.full(shape, TOO_LITTLE))
+    w = u[..., k0:k1, j0:j1, :]                                # a view: no copy of the window
+    w = w.reshape((int(np.prod(shape[:-1])),) + w.shape[-3:])  # (N, nl, nj, I)
+    lat, logp, speed, jj, kk, reason = _search(w, x[j0:j1], np.log(p[k0:k1]), min_fraction, min_speed)
+    good = reason == OK
+    return Core(*(a.reshape(shape) for a in (
+        np.where(good, lat, np.nan), np.where(good, np.exp(logp), np.nan), np.where(good, speed, np.nan),
+        np.where(good, jj + j0, -1), np.where(good, kk + k0, -1), reason)))
+
+
+_DK, _DJ = np.array([0, 0, -1, 0, 1]), np.array([0, -1, 0, 1, 0])   # centre, equatorward, above, poleward, below
+BLOCK = 1 << 18     # grid points of a window searched at once (the temporaries stay in cache)
+
+
+def _search(w, xs, ls, min_fraction, min_speed):
+    """The search of :func:`find_core` in one window ``w (N, nl, nj, I)`` (any float type, any strides),
+    ``xs (nj,)`` its latitudes and ``ls (nl,)`` its ln p. Returns ``(lat, ln p, speed, j, k, reason)``,
+    each ``(N, I)``, positions and speed unmasked (only meaningful where the reason is ok)."""
+    n, nl, nj, ni = w.shape
+    best = np.zeros((n, ni), np.intp)
+    has = np.zeros((n, ni), bool)
+    count = np.zeros((n, ni), np.int64)
+    step = max(BLOCK // (nl * nj * ni), 1)
+    for t0 in range(0, n, step):                        # a few time steps at a time
+        best[t0:t0 + step], has[t0:t0 + step], count[t0:t0 + step] = _locate(w[t0:t0 + step])
     kk, jj = np.divmod(best, nj - 2)
-    kk, jj = kk + 1, jj + 1                              # indices inside w
-
-    def at(dk, dj):
-        k = np.clip(kk + dk, 0, nl - 1)
-        j = np.clip(jj + dj, 0, nj - 1)
-        flat = w.reshape(lead + (-1,))
-        return np.take_along_axis(flat, (k * nj + j)[..., None], -1)[..., 0]
-
-    xs, ls = x[j0:j1], np.log(p[k0:k1])
-    uc = at(0, 0)
-    xv, ylat = parabola_vertex(xs[jj - 1], xs[jj], xs[jj + 1], at(0, -1), uc, at(0, 1))
-    sv, yp = parabola_vertex(ls[kk - 1], ls[kk], ls[kk + 1], at(-1, 0), uc, at(1, 0))
+    kk, jj = kk + 1, jj + 1                                              # indices inside w
+    # the core and its neighbours (equatorward, above, poleward, below) in one gather, as float64
+    t, i = np.arange(n)[:, None], np.arange(ni)
+    pts = w[t, kk + _DK[:, None, None], jj + _DJ[:, None, None], i].astype(float)      # (5, N, I)
+    uc, y0, y2 = pts[0], pts[1:3], pts[3:5]
+    # the parabola in latitude and the one in ln p in one call (elementwise: the same numbers)
+    (xv, sv), (ylat, yp) = parabola_vertex(np.stack((xs[jj - 1], ls[kk - 1])), np.stack((xs[jj], ls[kk])),
+                                           np.stack((xs[jj + 1], ls[kk + 1])), y0, uc, y2)
     speed = uc + (ylat - uc) + (yp - uc)
-    reason = np.where(has, OK, _no_core_reason(w, fin))
+    reason = np.full((n, ni), OK)
+    none = ~has
+    if none.any():                      # why not: only for the columns without a core
+        wn = w.transpose(0, 3, 1, 2)[none]
+        reason[none] = _no_core_reason(wn, np.isfinite(wn))
     with np.errstate(invalid="ignore"):
         reason = np.where(has & (speed < min_speed), WEAK, reason)
-    reason = np.where(frac < min_fraction, TOO_LITTLE, reason)
-    good = reason == OK
-    return Core(np.where(good, xv, np.nan), np.where(good, np.exp(sv), np.nan), np.where(good, speed, np.nan),
-                np.where(good, jj + j0, -1), np.where(good, kk + k0, -1), reason)
+    reason = np.where(count / (nl * nj) < min_fraction, TOO_LITTLE, reason)   # as isfinite(w).mean: exact
+    return xv, sv, speed, jj, kk, reason
+
+
+def _locate(w):
+    """For :func:`_search`: the flat index (in ``(nl-2, nj-2)``) of the strongest candidate of each
+    column of ``w (n, nl, nj, I)``, whether there is one, and the number of finite points."""
+    n, nl, nj, ni = w.shape
+    c = w[:, 1:-1, 1:-1]
+    # neighbours' maxima (NaN propagates, so a missing neighbour makes no candidate): the six to the
+    # sides (>=), and the two above and below (>, a column constant with height has no core)
+    sides = np.maximum(w[:, :, :-2], w[:, :, 2:])                        # (n, nl, nj-2, I)
+    around = np.maximum(sides[:, :-2], sides[:, 1:-1])
+    np.maximum(around, sides[:, 2:], out=around)
+    vert = np.maximum(w[:, :-2, 1:-1], w[:, 2:, 1:-1])
+    with np.errstate(invalid="ignore"):
+        cand = np.greater_equal(c, around)
+        cand &= np.greater(c, vert)
+    # score: c at the candidates, -inf elsewhere (fmin ignores NaN: the same as a select, without one)
+    sel = cand.view(np.int8).astype(c.dtype)
+    sel -= 0.5
+    sel *= np.inf                                                        # +inf at candidates, -inf elsewhere
+    score = np.fmin(c, sel).reshape(n, -1, ni)
+    best = np.argmax(score, axis=1)                                      # first of the largest, k-major
+    has = np.isfinite(score[np.arange(n)[:, None], best, np.arange(ni)])
+    fin = np.isfinite(w).reshape(n, -1, ni).view(np.uint8)
+    count = np.add.reduce(fin, axis=1, dtype=np.uint16 if nl * nj < 1 << 16 else np.int64)
+    return best, has, count
 
 
 def _no_core_reason(w, fin):
-    """Why a window without an interior local maximum gives no core (see :func:`find_core`)."""
-    lead = w.shape[:-2]
+    """Why a window ``w (M, nl, nj)`` without an interior local maximum gives no core (see :func:`find_core`);
+    ``fin`` is ``isfinite(w)``."""
     nl, nj = w.shape[-2:]
-    flat = np.where(fin, w, -np.inf).reshape(lead + (-1,))
-    m = np.argmax(flat, axis=-1)
-    k, j = np.divmod(m, nj)
-    edge = (k == 0) | (k == nl - 1) | (j == 0) | (j == nj - 1)
-    col = np.take_along_axis(np.moveaxis(fin, -1, -2).sum(axis=-1), j[..., None], -1)[..., 0]   # valid levels
-    ffin = fin.reshape(lead + (-1,))
-    gap = np.zeros(lead, bool)
-    for dk in (-1, 0, 1):
-        for dj in (-1, 0, 1):
-            kn, jn = np.clip(k + dk, 0, nl - 1), np.clip(j + dj, 0, nj - 1)
-            gap |= ~np.take_along_axis(ffin, (kn * nj + jn)[..., None], -1)[..., 0]
+    flat = np.where(fin, w, -np.inf).reshape(-1, nl * nj)
+    r = np.arange(flat.shape[0])[:, None]
+    k, j = np.divmod(np.argmax(flat, axis=-1)[:, None], nj)        # the window's largest value, (M, 1)
+    edge = ((k == 0) | (k == nl - 1) | (j == 0) | (j == nj - 1))[:, 0]
+    col = fin[r, :, j][:, 0].sum(axis=-1)                          # valid levels in its column
+    # its 3 x 3 neighbourhood (clipped to the window: only points inside it matter, the edge wins)
+    kn = np.clip(k + np.repeat((-1, 0, 1), 3), 0, nl - 1)
+    jn = np.clip(j + np.tile((-1, 0, 1), 3), 0, nj - 1)
+    gap = ~fin.reshape(-1, nl * nj)[r, kn * nj + jn].all(axis=-1)
     # inside, no missing neighbour, yet no local maximum: the wind equals it above or below (it does
     # not change with height there), so the core cannot be placed in the vertical either
     return np.where(edge, AT_EDGE, np.where(col < MIN_LEVELS, COLUMN_SHORT, np.where(gap, NEXT_TO_MISSING,
@@ -182,7 +225,7 @@ def band_means(a, band, nbands):
     longitudes themselves."""
     a = np.asarray(a, float)
     band = np.asarray(band)
-    if nbands == band.size:
+    if nbands == band.size and np.array_equal(band, np.arange(band.size)):
         return a
     order = np.argsort(band, kind="stable")
     a = a[..., order]
@@ -204,22 +247,36 @@ def hemisphere_cores(u, lat, p, windows, *, min_fraction, min_speed):
     ``merged_jets``.
     """
     u = np.asarray(u, float)
-    out = np.full(u.shape[:-2] + (2, 2, 4), np.nan)
+    return _hemisphere_cores(u[..., None], lat, p, windows, min_fraction=min_fraction, min_speed=min_speed)[..., 0]
+
+
+def _hemisphere_cores(u, lat, p, windows, *, min_fraction, min_speed):
+    """:func:`hemisphere_cores` for every column ``i`` of ``u (..., L, J, I)`` -> ``(..., 2, 2, 4, I)``."""
+    out = np.full(u.shape[:-3] + (2, 2, 4, u.shape[-1]), np.nan)
     for h, hemi in enumerate(("NH", "SH")):
         idx, x = hemisphere_columns(lat, hemi)
-        uh = u[..., idx]
-        cores = [find_core(uh, x, p, *windows[jet], min_fraction=min_fraction, min_speed=min_speed) for jet in JETS]
+        uh = u[..., _as_slice(idx), :]
+        cores = [_find_cores(uh, x, p, *windows[jet], min_fraction=min_fraction, min_speed=min_speed)
+                 for jet in JETS]
         merged = same_core(*cores)
         sign = 1.0 if hemi == "NH" else -1.0
         for q, c in enumerate(cores):
             reason = np.where(merged, MERGED, c.reason) if q == 1 else c.reason
             keep = reason == OK
-            out[..., h, q, 0] = np.where(keep, sign * c.lat, np.nan)
-            out[..., h, q, 1] = np.where(keep, c.pressure, np.nan)
-            out[..., h, q, 2] = np.where(keep, c.speed, np.nan)
-            out[..., h, q, 3] = reason
-        out[..., h, 0, 3] = np.where(merged, -MERGED, out[..., h, 0, 3])   # negative: ok, merged with the other
+            out[..., h, q, 0, :] = np.where(keep, sign * c.lat, np.nan)
+            out[..., h, q, 1, :] = np.where(keep, c.pressure, np.nan)
+            out[..., h, q, 2, :] = np.where(keep, c.speed, np.nan)
+            out[..., h, q, 3, :] = reason
+        out[..., h, 0, 3, :] = np.where(merged, -MERGED, out[..., h, 0, 3, :])   # negative: ok, merged with the other
     return out
+
+
+def _as_slice(idx):
+    """The index array ``idx`` as a slice when its indices are consecutive (a view instead of a copy)."""
+    if idx.size > 1 and np.all(np.diff(idx) == idx[1] - idx[0]) and abs(idx[1] - idx[0]) == 1:
+        stop = idx[-1] + (idx[1] - idx[0])
+        return slice(idx[0], stop if stop >= 0 else None, idx[1] - idx[0])
+    return idx
 
 
 def cores_by_longitude(u, lat, p, lon, windows, *, band_width, min_fraction, min_speed):
@@ -244,10 +301,14 @@ def cores_by_longitude(u, lat, p, lon, windows, *, band_width, min_fraction, min
     j0, j1 = (js[0], js[-1] + 1) if js.size else (0, 0)
     u = np.asarray(u)[..., k0:k1, j0:j1, :]
     p, lat = p[k0:k1], lat[j0:j1]
-    ub = band_means(u, band, centres.size)                     # (..., L, J, B)
-    cores = hemisphere_cores(np.moveaxis(ub, -1, -3), lat, p, windows,
-                             min_fraction=min_fraction, min_speed=min_speed)   # (..., B, 2, 2, 4)
-    return np.moveaxis(cores, -4, -1), centres, band
+    if u.dtype.kind != "f":
+        u = u.astype(float)
+    if centres.size != band.size:                              # bands of several longitudes: float64 means
+        u = band_means(u, band, centres.size)                  # (..., L, J, B)
+    elif not np.array_equal(band, np.arange(band.size)):       # a longitude per band, bands in another order
+        u = u[..., np.argsort(band, kind="stable")]            # (e.g. a grid from -180 and bands from 0 east)
+    cores = _hemisphere_cores(u, lat, p, windows, min_fraction=min_fraction, min_speed=min_speed)
+    return cores, centres, band
 
 
 def bands_in(mask, band, nbands):

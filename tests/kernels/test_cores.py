@@ -156,3 +156,26 @@ def test_summary_of_a_meander():
     assert s[0, 6] == pytest.approx(np.std([300, 250, 350]))
     assert s[0, 7] == 0.75
     assert np.isnan(s[1, 0]) and s[1, 1] == 0.0                # no core at all in the SH
+
+
+def test_bands_of_one_longitude_on_a_grid_from_minus_180_sit_at_their_own_longitude():
+    """Bands as wide as the grid spacing hold one longitude each; on a grid running from -180 the
+    bands (numbered from 0 east) come in another order than the grid: each band must get its own
+    longitude's core (the band at 3.75 E the core of 0 E, not of 180 W)."""
+    lon = np.arange(-180.0, 180.0, 7.5)
+    lat = np.arange(-80.0, 80.1, 2.0)
+    p = np.array([100.0, 150.0, 200.0, 250.0, 300.0, 400.0, 500.0, 700.0, 850.0])
+    jet_lat = 40.0 + 10.0 * np.cos(np.deg2rad(lon))             # 50 N at 0 E, 30 N at 180
+    u = 40.0 * np.exp(-((np.abs(lat)[None, :, None] - jet_lat[None, None, :]) / 6.0) ** 2
+                      - (np.log(p[:, None, None] / 250.0) / 0.5) ** 2)
+    windows = {"subtropical": ((10.0, 45.0), (100.0, 400.0)), "eddy": ((30.0, 70.0), (150.0, 850.0))}
+    kw = dict(min_fraction=0.5, min_speed=10.0)
+    each, lam, _ = K.cores_by_longitude(u[None], lat, p, lon, windows, band_width=0.0, **kw)
+    banded, centres, band = K.cores_by_longitude(u[None], lat, p, lon, windows, band_width=7.5, **kw)
+    assert centres.size == lon.size and np.all(np.diff(centres) > 0)
+    for b, c in enumerate(centres):
+        i = int(np.flatnonzero(np.isclose(lam + 3.75, c))[0])
+        assert np.array_equal(banded[..., b], each[..., i], equal_nan=True), c
+    b0 = int(np.argmin(np.abs(centres - 3.75)))
+    assert abs(banded[0, 0, 1, 0, b0] - 50.0) < 0.5               # NH eddy-jet core at 0 E: 50 N
+    assert np.allclose(K.band_means(u, band, centres.size), u[..., np.argsort(band)])
