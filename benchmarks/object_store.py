@@ -1,37 +1,59 @@
 #!/usr/bin/env python
-"""Object storage vs disk: ``circtrack track`` on benchmark files on disk and on the same files
-served by a local S3-compatible server (moto, 127.0.0.1), one run each.
+"""Object storage vs disk: ``circtrack track`` (default metrics) on benchmark files on disk and on
+the same files served by a local S3-compatible server on 127.0.0.1, side by side in one run.
 
-    python benchmarks/object_store.py [--months N] [--res 1] [--compress zlib|none|both] [--workdir DIR]
+    python benchmarks/object_store.py [--months N] [--res 0.5] [--compress zlib|none|both]
+                                      [--server s3rver|moto] [--s3rver PATH] [--repeat K] [--workdir DIR]
 
-Uses the data and measuring helpers of benchmarks/run.py. See benchmarks/README.md.
+The server: s3rver (a Node.js S3 server that keeps objects as files and answers a range request
+by streaming that range from disk; ``npm install s3rver``; found with ``--s3rver PATH``, the
+``S3RVER`` environment variable or on ``PATH``), else moto's server mode (from the ``test`` extra;
+it copies the whole object for every range request, so its own CPU time grows with the object
+size). Uses the data and measuring helpers of benchmarks/run.py. See benchmarks/README.md.
 """
 from __future__ import annotations
 
 import argparse
+import os
+import shutil
+import socket
+import statistics
 import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from run import METRICS, REPO, circtrack_cmd, generate, markdown, measure, payload_bytes  # noqa: E402
+from run import REPO, circtrack_cmd, generate, markdown, measure, payload_bytes  # noqa: E402
+
+BUCKET = "circtrack-bench"
+
+
+def _free_port():
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return sock.getsockname()[1]
 
 
 class LocalObjectStore:
-    """moto's S3-compatible server on 127.0.0.1 (a free port), for --object-store; stopped by stop()."""
+    """A local S3-compatible server on 127.0.0.1 (a free port): ``kind`` "s3rver" (``binary``: the
+    s3rver executable; objects kept in a temporary directory) or "moto". Stopped by stop()."""
 
-    def __init__(self):
-        import socket
-
+    def __init__(self, kind="moto", binary=None):
         import boto3
 
-        with socket.socket() as sock:
-            sock.bind(("127.0.0.1", 0))
-            self.port = sock.getsockname()[1]
+        self.kind, self.port = kind, _free_port()
         self.endpoint = f"http://127.0.0.1:{self.port}"
-        self.proc = subprocess.Popen([sys.executable, "-m", "moto.server", "-H", "127.0.0.1", "-p", str(self.port)],
-                                     stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        self.tmp = None
+        if kind == "s3rver":
+            self.tmp = tempfile.mkdtemp(prefix="s3rver-")
+            cmd = [binary, "-d", self.tmp, "-a", "127.0.0.1", "-p", str(self.port), "-s"]
+            key = secret = "S3RVER"                       # the only credentials s3rver accepts
+        else:
+            cmd = [sys.executable, "-m", "moto.server", "-H", "127.0.0.1", "-p", str(self.port)]
+            key = secret = "bench"
+        self.proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         deadline = time.monotonic() + 30
         while True:
             try:
@@ -40,12 +62,12 @@ class LocalObjectStore:
             except OSError:
                 if self.proc.poll() is not None or time.monotonic() > deadline:
                     self.stop()
-                    raise SystemExit("moto_server did not start (pip install 'moto[server]')")
+                    raise SystemExit(f"the {kind} server did not start ({' '.join(cmd)})")
                 time.sleep(0.05)
-        self.env = {"AWS_ACCESS_KEY_ID": "bench", "AWS_SECRET_ACCESS_KEY": "bench",
+        self.env = {"AWS_ACCESS_KEY_ID": key, "AWS_SECRET_ACCESS_KEY": secret,
                     "AWS_ENDPOINT_URL": self.endpoint, "AWS_DEFAULT_REGION": "us-east-1"}
         self.client = boto3.client("s3", endpoint_url=self.endpoint, region_name="us-east-1",
-                                   aws_access_key_id="bench", aws_secret_access_key="bench")
+                                   aws_access_key_id=key, aws_secret_access_key=secret)
 
     def upload(self, bucket, prefix, files):
         self.client.create_bucket(Bucket=bucket)
@@ -63,52 +85,84 @@ class LocalObjectStore:
     def stop(self):
         if self.proc.poll() is None:
             self.proc.terminate()
-            self.proc.wait(timeout=10)
+            try:
+                self.proc.wait(timeout=10)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait()
+        if self.tmp:
+            shutil.rmtree(self.tmp, ignore_errors=True)
 
 
-def object_store_table(files, outdir, nbytes, log):
-    """circtrack track on the files on disk and on the same files in a local S3 server (one run
-    each): wall time, ratio, throughput, peak RSS, and whether the two CSVs are byte-identical."""
-    store = LocalObjectStore()
-    try:
-        t0 = time.perf_counter()
-        url = store.upload("circtrack-bench", outdir.name, files)
-        log(f"  uploaded {len(files)} files to {url} in {time.perf_counter() - t0:.0f} s")
-        ct, ct_env = circtrack_cmd()
-        disk_csv, s3_csv = outdir / "disk.csv", outdir / "object_store.csv"
-        runs = [("circtrack track, files on disk", ct + ["track", *map(str, files), "-o", str(disk_csv),
-                                                         "--metrics", METRICS, "-q"], ct_env),
-                ("circtrack track, same files from the local S3 server",
-                 ct + ["track", url, "-o", str(s3_csv), "--metrics", METRICS, "-q"], {**ct_env, **store.env}),
-                ("the same, first object only (memory does not grow with the record)",
-                 ct + ["track", url + Path(files[0]).name, "-o", str(outdir / "object_store_1.csv"), "--metrics",
-                       METRICS, "-q"], {**ct_env, **store.env})]
-        rows = []
-        for name, cmd, env in runs:
+def find_s3rver(given=None):
+    """The s3rver executable: ``given``, ``$S3RVER`` or ``s3rver`` on PATH; None if none is there."""
+    for cand in (given, os.environ.get("S3RVER"), shutil.which("s3rver")):
+        if cand and os.access(cand, os.X_OK):
+            return cand
+    return None
+
+
+def object_store_table(files, outdir, nbytes, store, repeat, log):
+    """circtrack track (default metrics) on the files on disk and on the same files in the local
+    S3 server, alternating ``repeat`` rounds (load from other processes falls on both alike), then
+    on the first object alone once: medians of wall and CPU time, the server's CPU time, peak RSS,
+    and whether the CSVs are byte-identical."""
+    t0 = time.perf_counter()
+    url = store.upload(BUCKET, outdir.name, files)
+    log(f"  uploaded {len(files)} files to {url} in {time.perf_counter() - t0:.0f} s ({store.kind})")
+    ct, ct_env = circtrack_cmd()
+    disk_csv, s3_csv = outdir / "disk.csv", outdir / "object_store.csv"
+    runs = [("circtrack track, files on disk", ct + ["track", *map(str, files), "-o", str(disk_csv), "-q"], ct_env),
+            (f"circtrack track, same files from the local S3 server ({store.kind})",
+             ct + ["track", url, "-o", str(s3_csv), "-q"], {**ct_env, **store.env})]
+    one = ("the same, first object only (memory does not grow with the record)",
+           ct + ["track", url + Path(files[0]).name, "-o", str(outdir / "object_store_1.csv"), "-q"],
+           {**ct_env, **store.env})
+    seen = {name: [] for name, _, _ in runs + [one]}
+    for k in range(repeat):
+        for name, cmd, env in runs + ([one] if k == repeat - 1 else []):
             slug = "".join(c if c.isalnum() else "_" for c in name)[:40]
             cpu0 = store.cpu_seconds()
-            m = measure(cmd, outdir / f"{slug}.log", env=env)
+            m = measure(cmd, outdir / f"{slug}.{k}.log", env=env)
             m["server_cpu"] = store.cpu_seconds() - cpu0
-            log(f"  {name}: rc={m['rc']} wall={m['wall']:.1f}s maxrss={m['maxrss'] / 1e9:.2f}GB "
+            log(f"  {name}: rc={m['rc']} wall={m['wall']:.1f}s cpu={m['cpu']:.1f}s maxrss={m['maxrss'] / 1e9:.2f}GB "
                 f"server CPU {m['server_cpu']:.1f}s")
-            rows.append((name, m))
-    finally:
-        store.stop()
-    base = rows[0][1]["wall"]
+            seen[name].append(m)
+    rows = []
+    for name, ms in seen.items():
+        med = {key: statistics.median(m[key] for m in ms) for key in ("wall", "cpu", "server_cpu")}
+        med.update(rc=max(m["rc"] for m in ms), maxrss=max(m["maxrss"] for m in ms), tree=max(m["tree"] for m in ms),
+                   walls=[m["wall"] for m in ms])
+        rows.append((name, med))
+    base = rows[0][1]
     nbytes_of = [nbytes, nbytes, nbytes / len(files)]
     same = disk_csv.exists() and s3_csv.exists() and disk_csv.read_bytes() == s3_csv.read_bytes()
-    table = [(name, f"{m['wall']:.1f}" if m["rc"] == 0 else f"FAILED rc={m['rc']}",
-              f"{m['wall'] / base:.2f}" if k < 2 else "", f"{n / 1e6 / m['wall']:.0f}", f"{m['maxrss'] / 1e9:.2f}",
-              f"{m['tree'] / 1e9:.2f}", f"{m['server_cpu']:.1f}" if k else "")
-             for k, ((name, m), n) in enumerate(zip(rows, nbytes_of))]
+    table = []
+    for k, ((name, m), n) in enumerate(zip(rows, nbytes_of)):
+        table.append((name, (f"{m['wall']:.1f}" if m["rc"] == 0 else f"FAILED rc={m['rc']}"),
+                      " ".join(f"{w:.1f}" for w in m["walls"]),
+                      f"{m['wall'] / base['wall']:.2f}" if k < 2 else "", f"{m['cpu']:.1f}",
+                      f"{m['cpu'] / base['cpu']:.2f}" if k < 2 else "",
+                      f"{m['server_cpu']:.1f}" if k else "",
+                      f"{(m['cpu'] + m['server_cpu']) / base['cpu']:.2f}" if k == 1 else "",
+                      f"{n / 1e6 / m['wall']:.0f}", f"{m['maxrss'] / 1e9:.2f}", f"{m['tree'] / 1e9:.2f}"))
     return table, same
+
+
+HEAD = ("approach", "wall s (median)", "wall s (runs)", "wall ratio to disk", "CPU s", "CPU ratio to disk",
+        "S3 server CPU s", "CPU ratio incl. server", "input MB/s", "peak RSS GB (largest proc)",
+        "peak RSS GB (tree sum)")
 
 
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--months", type=int, default=2)
-    ap.add_argument("--res", type=float, default=1.0)
+    ap.add_argument("--res", type=float, default=0.5)
     ap.add_argument("--compress", choices=["zlib", "none", "both"], default="zlib")
+    ap.add_argument("--server", choices=["s3rver", "moto"], default=None,
+                    help="default: s3rver when found, else moto")
+    ap.add_argument("--s3rver", default=None, help="path of the s3rver executable (default: $S3RVER or PATH)")
+    ap.add_argument("--repeat", type=int, default=1, help="rounds of (disk, S3), alternating; medians reported")
     ap.add_argument("--workdir", default="/tmp/circtrack-bench")
     a = ap.parse_args(argv)
     workdir = Path(a.workdir).resolve()
@@ -118,6 +172,13 @@ def main(argv=None):
     def log(msg):
         print(msg, file=sys.stderr, flush=True)
 
+    binary = find_s3rver(a.s3rver)
+    kind = a.server or ("s3rver" if binary else "moto")
+    if kind == "s3rver" and not binary:
+        raise SystemExit("s3rver not found: npm install s3rver, then pass --s3rver PATH/node_modules/.bin/s3rver")
+    if kind == "moto" and a.server is None:
+        log("s3rver not found (npm install s3rver; --s3rver PATH): using moto, whose range requests copy the whole "
+            "object (see the S3 server CPU column)")
     report = []
     for comp in (["zlib", "none"] if a.compress == "both" else [a.compress]):
         files = generate(workdir, a.res, comp, a.months, log)
@@ -127,13 +188,18 @@ def main(argv=None):
         outdir.mkdir(parents=True, exist_ok=True)
         for f in files:
             f.read_bytes()
-        table, same = object_store_table(files, outdir, nbytes, log)
-        report += [f"## object storage vs disk, compression: {comp}", "",
+        store = LocalObjectStore(kind, binary)
+        try:
+            load = os.getloadavg()
+            table, same = object_store_table(files, outdir, nbytes, store, a.repeat, log)
+            load_after = os.getloadavg()
+        finally:
+            store.stop()
+        report += [f"## object storage ({kind}) vs disk, compression: {comp}", "",
                    f"{len(files)} files, {nbytes / 1e6:.0f} MB of ua+va values, {ondisk / 1e6:.0f} MB on disk; "
-                   f"one run each; CSVs byte-identical: {'yes' if same else 'NO'}. Logs: {outdir}", "",
-                   markdown(table, head=("approach", "wall s", "ratio to disk", "input MB/s",
-                                         "peak RSS GB (largest proc)", "peak RSS GB (tree sum)",
-                                         "S3 server CPU s")), ""]
+                   f"{a.repeat} round(s); CSVs byte-identical: {'yes' if same else 'NO'}; 1-minute load average "
+                   f"{load[0]:.1f} before, {load_after[0]:.1f} after. Logs: {outdir}", "",
+                   markdown(table, head=HEAD), ""]
     print("\n".join(report))
 
 

@@ -146,6 +146,10 @@ def reduce_chunk(job):
     with _NC_LOCK:     # one netCDF/HDF5 call at a time per process; the reductions below run freely
         opened = {}
         try:
+            for role, reader in job["readers"].items():       # objects in object storage: start every fetch now
+                raw = _open_cached(reader.path, job["cfg"], keep=len(paths), raw=True)
+                if raw is not None:
+                    reader.prefetch_fast(raw, job["t0"], job["t1"])
             for role, reader in job["readers"].items():
                 arr = reader.read_direct(job["t0"], job["t1"])      # no netCDF4 open (layouts.py)
                 if arr is not None:

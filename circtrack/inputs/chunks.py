@@ -111,10 +111,28 @@ def read(path, name, index):
     lay = layout(path, name)
     if lay is None:
         return None
+    return _read(_file(path)[0][name], lay, index)
+
+
+def read_dataset(dset, index, layouts):
+    """The same as :func:`read` for an h5py dataset the caller holds open (an object in object
+    storage, read through its byte ranges: inputs/ranges.py); ``layouts``: a dict the caller keeps
+    per open file, for the variables' layouts."""
+    if _inflate_lib is None:
+        return None
+    if dset.name not in layouts:
+        try:
+            layouts[dset.name] = _Layout(dset) if _eligible(dset) else None
+        except (OSError, KeyError, ValueError, TypeError):
+            layouts[dset.name] = None
+    lay = layouts[dset.name]
+    return None if lay is None else _read(dset, lay, index)
+
+
+def _read(dset, lay, index):
     axes = _axes(index, lay.shape)
     if axes is None:
         return None
-    dset = _file(path)[0][name]
     out = np.empty([len(src) for src, _ in axes], dtype=lay.dtype)
     # chunks met along each axis: (chunk number, positions in the output, positions in the chunk)
     per_axis = [_pieces(src, c) for (src, _), c in zip(axes, lay.chunks)]

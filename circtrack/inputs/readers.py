@@ -329,11 +329,8 @@ class RoleReader:
         one by one (each level is a whole HDF5 chunk in usual layouts, so nothing is decoded twice).
         Fill and missing values become NaN in place, as CF decoding would do.
         """
-        if self.stream is not None or self.hybrid is not None or self.ground is not None \
-                or self.name not in nc.variables:
-            return None
-        var = nc.variables[self.name]
-        if var.dtype.kind != "f" or any(a in var.ncattrs() for a in ("scale_factor", "add_offset")):
+        var = self._fast_variable(nc)
+        if var is None:
             return None
         if getattr(type(var), "set_auto_maskandscale", None) is not None:   # netCDF4; h5netcdf reads raw
             var.set_auto_maskandscale(False)
@@ -379,6 +376,24 @@ class RoleReader:
         if self.factor != 1.0 or self.offset != 0.0:
             arr = arr.astype(np.float64) * self.factor + self.offset
         return arr
+
+    def _fast_variable(self, nc):
+        """The variable :meth:`read_fast` reads, or None when it needs more than raw values."""
+        if self.stream is not None or self.hybrid is not None or self.ground is not None \
+                or self.name not in nc.variables:
+            return None
+        var = nc.variables[self.name]
+        if var.dtype.kind != "f" or any(a in var.ncattrs() for a in ("scale_factor", "add_offset")):
+            return None
+        return var
+
+    def prefetch_fast(self, nc, t0, t1):
+        """Start fetching what :meth:`read_fast` will read, where ``nc`` can (an object in object
+        storage: :meth:`circtrack.inputs.remote.RawObject.prefetch`); does nothing otherwise."""
+        start = getattr(type(nc), "prefetch", None)      # the class's: netCDF4 serves file attributes as attributes
+        var = self._fast_variable(nc) if start is not None else None
+        if var is not None:
+            start(nc, self.name, _fast_index(var.dimensions, self.time_dim, self.selection, t0, t1)[0])
 
     def read_noted(self, ds, t0, t1):
         """``(array, notes)``: the chunk and a note per time step ("" or e.g. ``provisional_data``)."""
@@ -474,14 +489,20 @@ def _fast_index(dims, time_dim, selection, t0, t1):
 
 def _read_direct(nc, name, index):
     """``nc[name][index]`` with the chunks inflated by inputs/chunks.py (deflate-compressed netCDF4
-    files on disk), else None. ``index`` is updated as :func:`_read_hyperslabs` does."""
-    if not CH.available() or not str(getattr(nc, "data_model", "")).startswith("NETCDF4"):
+    files on disk, and objects in object storage), else None. ``index`` is updated as :func:`_read_hyperslabs` does."""
+    if not CH.available():
         return None
-    try:
-        path = nc.filepath()
-    except (AttributeError, ValueError):
+    remote_read = getattr(type(nc), "read_direct", None)     # an object in object storage (remote.RawObject)
+    if remote_read is not None:
+        arr = remote_read(nc, name, index)
+    elif not str(getattr(nc, "data_model", "")).startswith("NETCDF4"):
         return None
-    arr = CH.read(path, name, index)
+    else:
+        try:
+            path = nc.filepath()
+        except (AttributeError, ValueError):
+            return None
+        arr = CH.read(path, name, index)
     if arr is not None:
         for k, i in enumerate(index):
             if isinstance(i, list):

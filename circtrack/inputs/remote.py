@@ -27,6 +27,7 @@ import logging
 import os
 import posixpath
 import tempfile
+import weakref
 
 from circtrack.errors import InputError
 
@@ -37,7 +38,7 @@ ZARR_SUFFIX = ".zarr"
 _CLASSIC_MAGIC = (b"CDF\x01", b"CDF\x02", b"CDF\x05")
 
 DEFAULTS = {"anonymous": False, "endpoint_url": "", "cache_dir": "", "block_bytes": 16 * 2 ** 20,
-            "cached_blocks": 4}
+            "cached_blocks": 4, "request_bytes": 16 * 2 ** 20}
 
 
 def is_url(path) -> bool:
@@ -96,6 +97,9 @@ def filesystem(url, cfg):
     import fsspec
 
     fs = fsspec.filesystem(scheme, **storage_options(url, cfg))
+    loop = getattr(fs, "_loop", None) or getattr(fs, "loop", None)
+    if loop is not None:
+        _LOOPS.add(loop)
     path = url.split("://", 1)[1] if scheme == "s3" else url
     return fs, path
 
@@ -316,14 +320,57 @@ def open_target(url, cfg):
 
 class RawObject:
     """h5netcdf's netCDF4-like API (``variables``, ``ncattrs``, ``dimensions``, raw values) on an
-    object, for :meth:`~circtrack.inputs.readers.RoleReader.read_fast`; closed with its file."""
+    object, for :meth:`~circtrack.inputs.readers.RoleReader.read_fast`; closed with its file.
+    Every read of a variable first fetches the HDF5 chunks it touches in a few concurrent requests
+    (:mod:`circtrack.inputs.ranges`)."""
 
-    def __init__(self, nc, close):
+    def __init__(self, nc, close, rfile=None, request_bytes=0):
         self._nc, self._close = nc, close
+        self._rfile, self._request_bytes = rfile, request_bytes
+        self._layouts = {}            # variable -> chunk layout, for inputs/chunks.py
 
     @property
     def variables(self):
-        return self._nc.variables
+        if self._rfile is None:
+            return self._nc.variables
+        from circtrack.inputs.ranges import PrefetchingVariables
+
+        return PrefetchingVariables(self._nc.variables, self._rfile, self._request_bytes)
+
+    def prefetch(self, name, index):
+        """Start fetching the chunks that ``variables[name][index]`` reads (in the background; the
+        read waits for them)."""
+        if self._rfile is None:
+            return
+        from circtrack.inputs.ranges import chunk_ranges
+
+        ranges = chunk_ranges(self._nc.variables[name]._h5ds, index)
+        if ranges:
+            self._rfile.start(ranges, self._request_bytes)
+
+    def read_direct(self, name, index):
+        """``variables[name][index]`` with its chunks fetched at once (:mod:`circtrack.inputs.ranges`)
+        and inflated by :mod:`circtrack.inputs.chunks` as for files on disk, or None (the caller
+        then reads through :attr:`variables`; the fetched chunks stay for that read)."""
+        if self._rfile is None:
+            return None
+        from circtrack.inputs import chunks
+        from circtrack.inputs.ranges import chunk_ranges
+
+        dset = self._nc.variables[name]._h5ds
+        ranges = chunk_ranges(dset, index)
+        if not ranges:
+            return None
+        self._rfile.prefetch(ranges, self._request_bytes)
+        arr = chunks.read_dataset(dset, index, self._layouts)
+        if arr is not None:
+            self._rfile.release(ranges)
+        return arr
+
+    @property
+    def requests(self):
+        """Range requests made so far to fetch chunks (not counting metadata reads)."""
+        return self._rfile.requests if self._rfile is not None else 0
 
     def close(self):
         try:
@@ -334,18 +381,27 @@ class RawObject:
 
 def open_raw(url, cfg):
     """A :class:`RawObject` of a netCDF4/HDF5 object, or None where it does not apply (netCDF
-    classic objects, which open_dataset refuses with its own line)."""
+    classic objects, which open_dataset refuses with its own line).
+
+    Metadata and coordinates are read in ranges of at most 1 MiB (:func:`for_metadata`); the data a
+    read needs are fetched at its start, its HDF5 chunks merged into runs and fetched in concurrent
+    requests of at most ``[storage] request_bytes`` (:mod:`circtrack.inputs.ranges`)."""
     try:
-        target, _engine, _kw, close = open_target(url, cfg)
+        target, _engine, _kw, close = open_target(url, for_metadata(cfg))
     except InputError:
         return None
     import h5netcdf.legacyapi
 
+    from circtrack.inputs.ranges import RangeFile
+
+    fs, path = filesystem(url, cfg)
+    rfile = RangeFile(target, fs, path)
     try:
-        return RawObject(h5netcdf.legacyapi.Dataset(target, "r"), close)
+        nc = h5netcdf.legacyapi.Dataset(rfile, "r")
     except BaseException:
         close()
         raise
+    return RawObject(nc, lambda: (rfile.drop(), close()), rfile, int(_settings(cfg)["request_bytes"]))
 
 
 def _release(f):
@@ -371,6 +427,45 @@ def _quiet_inherited_sessions():
     log = logging.getLogger("asyncio")
     if not any(isinstance(f, _InheritedSessions) for f in log.filters):
         log.addFilter(_InheritedSessions())
+
+
+_LOOPS = weakref.WeakSet()      # event loops of this process's filesystems (fsspec's I/O loop)
+
+
+def _after_fork_in_child():
+    """In a forked worker: let nothing of the parent's S3 sessions touch the parent's connections.
+
+    * A forked child shares the parent's epoll instance (the kernel object, not a copy). When the
+      child dropped the connections it inherited, asyncio unregistered their sockets from that
+      shared epoll, so the parent never heard its next response: measured, the parent's last
+      request of a run (the object's size and ETag for the provenance) waited for the 15 s read
+      timeout. The child's copy of the parent's loop gets an epoll of its own.
+    * s3fs closes a filesystem's session in a finalizer bound to the parent's loop; run in the child
+      (on its own loop) it printed an "attached to a different loop" traceback at exit. Without it,
+      aiohttp's own "unclosed session" messages for those sessions are dropped as for Zarr stores.
+    """
+    import select
+
+    if _LOOPS:
+        _quiet_inherited_sessions()
+
+    for loop in list(_LOOPS):
+        sel = getattr(getattr(loop, "_selector", None), "_selector", None)
+        if sel is not None and hasattr(select, "epoll") and isinstance(sel, select.epoll):
+            try:
+                sel.close()                      # the child's descriptor only; the parent's stays open
+            except OSError:
+                pass
+            loop._selector._selector = select.epoll()
+    registry = getattr(weakref.finalize, "_registry", None) or {}
+    for fin, info in list(registry.items()):
+        func = getattr(info, "func", None)
+        if getattr(func, "__module__", "") == "s3fs.core" and getattr(func, "__name__", "") == "close_session":
+            fin.detach()
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_after_fork_in_child)
 
 
 METADATA_BLOCK_BYTES = 2 ** 20

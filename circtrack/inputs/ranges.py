@@ -1,0 +1,311 @@
+"""Reading a hyperslab of a netCDF4/HDF5 object in object storage in a few concurrent requests.
+
+In: an fsspec file object of the object (for the reads nobody planned: metadata, coordinates, in
+small blocks), its filesystem and path, and per read the h5py dataset and the index being read.
+Out: a read-only file object (:class:`RangeFile`) that h5py reads through, and variables
+(:class:`PrefetchingVariable`) whose reads are served from memory.
+
+:func:`chunk_ranges` finds the byte ranges of the HDF5 chunks an index touches (h5py's chunk
+query, from the chunk index alone: no data read). :meth:`RangeFile.start` merges neighbouring
+chunks into runs and starts fetching them in pieces of at most ``request_bytes`` on fsspec's
+event loop (``_cat_ranges``: every piece concurrently), in the background, so a task starts the
+fetches of all its variables before it reads the first. The read waits for the pieces it needs
+(:meth:`RangeFile.prefetch`), HDF5 decodes the chunks from memory as it does from a local file
+(values identical to a local read), and the pieces are released. Memory: the compressed bytes of
+one task's reads, never the object.
+"""
+
+from __future__ import annotations
+
+import bisect
+import io
+import itertools
+
+import numpy as np
+
+MERGE_GAP = 256 * 1024        # chunks closer than this are fetched in one run (the gap is read and dropped)
+SETTLE_S = 30.0               # fetches in flight when an object is closed: waited for this long at most
+MAX_PENDING = 16              # background fetches kept waiting for their read, at most
+MAX_CHUNKS = 100_000          # more chunks than this in one read: no prefetch (each chunk read as it comes)
+
+
+class RangeFile(io.RawIOBase):
+    """A read-only, seekable file over ``f`` (an fsspec file) that serves reads from prefetched
+    extents when one covers them, and from ``f`` otherwise."""
+
+    def __init__(self, f, fs, path):
+        super().__init__()
+        self._f, self._fs, self._path = f, fs, path
+        self._pos = 0
+        self._starts, self._data = [], []       # sorted extents: start offset -> bytes
+        self._pending = []                      # background fetches: (runs, pieces, future)
+        self.requests = 0                       # range requests made by prefetch (for tests and profiles)
+
+    # -- the file protocol h5py's file-object driver uses
+    def readable(self):
+        return True
+
+    def seekable(self):
+        return True
+
+    def seek(self, offset, whence=io.SEEK_SET):
+        if whence == io.SEEK_SET:
+            self._pos = offset
+        elif whence == io.SEEK_CUR:
+            self._pos += offset
+        else:
+            self._pos = self._f.size + offset
+        return self._pos
+
+    def tell(self):
+        return self._pos
+
+    def readinto(self, buf):
+        n = len(buf)
+        if not self._copy_from_extents(self._pos, buf):
+            self._f.seek(self._pos)
+            got = self._f.read(n)
+            buf[:len(got)] = got
+            n = len(got)
+        self._pos += n
+        return n
+
+    def read(self, n=-1):
+        if n is None or n < 0:
+            n = max(0, self._f.size - self._pos)
+        buf = bytearray(n)
+        k = self.readinto(buf)
+        return bytes(buf[:k])
+
+    def close(self):
+        self.drop()
+        try:
+            self._f.close()
+        finally:
+            super().close()
+
+    # -- prefetched extents
+    def _covered(self, pos, n):
+        """The extents (index range) that hold bytes ``pos .. pos + n`` without a gap, or None."""
+        k = bisect.bisect_right(self._starts, pos) - 1
+        if k < 0:
+            return None
+        j, end = k, pos + n
+        while self._starts[j] + len(self._data[j]) < end:
+            if j + 1 >= len(self._starts) or self._starts[j + 1] != self._starts[j] + len(self._data[j]):
+                return None
+            j += 1
+        return k, j
+
+    def _copy_from_extents(self, pos, buf):
+        """Copy bytes ``pos ..`` into ``buf`` from the extents (a read may span adjacent pieces, which
+        are kept as fetched: never joined into one copy); False when they do not hold them all."""
+        n = len(buf)
+        found = self._covered(pos, n) if n else None
+        if found is None:
+            return False
+        out = memoryview(buf).cast("B")
+        done = 0
+        for i in range(found[0], found[1] + 1):
+            start, data = self._starts[i], self._data[i]
+            a = pos + done - start
+            take = min(len(data) - a, n - done)
+            out[done:done + take] = memoryview(data)[a:a + take]
+            done += take
+        return True
+
+    def _missing(self, runs):
+        return [r for r in runs if self._covered(r[0], r[1] - r[0]) is None]
+
+    def start(self, ranges, request_bytes):
+        """Start fetching ``ranges`` (``(offset, size)`` pairs) in the background (merged into runs,
+        each run in concurrent pieces of at most ``request_bytes``); :meth:`prefetch` waits for them.
+        Extents left from earlier reads are dropped first (they are installed only by the read that
+        needs them and released after it), so memory holds one task's reads."""
+        self._starts, self._data = [], []
+        if len(self._pending) > MAX_PENDING:          # fetches nobody read (never expected): forget them
+            self.drop()
+        runs = self._missing(merge_ranges(ranges, MERGE_GAP))
+        coro = getattr(self._fs, "_cat_ranges", None)
+        loop = getattr(self._fs, "loop", None)
+        if not runs or coro is None or loop is None:
+            return
+        import asyncio
+
+        pieces = [p for r in runs for p in split_run(r, request_bytes)]
+        fut = asyncio.run_coroutine_threadsafe(
+            coro([self._path] * len(pieces), [p[0] for p in pieces], [p[1] for p in pieces]), loop)
+        self._pending.append((runs, pieces, fut))
+
+    def prefetch(self, ranges, request_bytes):
+        """Make ``ranges`` available in memory: wait for the background fetches that hold them, and
+        fetch what none holds now, all pieces at once; kept until :meth:`release`."""
+        runs = merge_ranges(ranges, MERGE_GAP)
+        for entry in [e for e in self._pending if _overlaps(e[0], runs)]:
+            self._pending.remove(entry)
+            self._install(entry[0], entry[1], entry[2].result())
+        runs = self._missing(runs)
+        if not runs:
+            return
+        pieces = [p for r in runs for p in split_run(r, request_bytes)]
+        got = self._fs.cat_ranges([self._path] * len(pieces), [p[0] for p in pieces], [p[1] for p in pieces])
+        self._install(runs, pieces, got)
+
+    def _install(self, runs, pieces, got):
+        for part in got:
+            if isinstance(part, BaseException):
+                raise part
+        self.requests += len(pieces)
+        for (a, b), part in zip(pieces, got):
+            if len(part) != b - a:
+                raise OSError(f"short read from the object store: {len(part)} bytes of {b - a} at offset {a}")
+            j = bisect.bisect_left(self._starts, a)
+            self._starts.insert(j, a)
+            self._data.insert(j, part)
+
+    def release(self, ranges):
+        """Forget the extents that hold ``ranges`` (a read is done with them)."""
+        runs = merge_ranges(ranges, MERGE_GAP)
+        keep = [(s, d) for s, d in zip(self._starts, self._data) if not _overlaps([(s, s + len(d))], runs)]
+        self._starts, self._data = [s for s, _ in keep], [d for _, d in keep]
+
+    def drop(self):
+        """Forget every prefetched extent and background fetch (frees their memory). Fetches still
+        in flight are waited for (at most ``SETTLE_S`` in all) and their bytes dropped: cancelled,
+        fsspec's requests were left half-read ("Unclosed connection", "Task was destroyed but it is
+        pending" at exit)."""
+        import time
+
+        deadline = time.monotonic() + SETTLE_S
+        for _runs, _pieces, fut in self._pending:
+            try:
+                fut.result(timeout=max(0.0, deadline - time.monotonic()))
+            except Exception:  # noqa: BLE001 - its bytes are not wanted; its error is not ours to report
+                fut.cancel()
+        self._pending = []
+        self._starts, self._data = [], []
+
+
+def _overlaps(runs_a, runs_b):
+    return any(a0 < b1 and b0 < a1 for a0, a1 in runs_a for b0, b1 in runs_b)
+
+
+def merge_ranges(ranges, gap):
+    """``(offset, size)`` pairs -> sorted ``(start, end)`` runs; ranges closer than ``gap`` join."""
+    runs = []
+    for off, size in sorted(ranges):
+        end = off + size
+        if runs and off - runs[-1][1] <= gap:
+            runs[-1][1] = max(runs[-1][1], end)
+        else:
+            runs.append([off, end])
+    return [tuple(r) for r in runs]
+
+
+def split_run(run, request_bytes):
+    """A ``(start, end)`` run -> pieces of at most ``request_bytes`` (equal sizes)."""
+    start, end = run
+    n = max(1, -(-(end - start) // max(1, int(request_bytes))))
+    step = -(-(end - start) // n)
+    return [(a, min(a + step, end)) for a in range(start, end, step)]
+
+
+def _axis_span(i, n):
+    """``(first, last + 1)`` of the elements index ``i`` (int, slice or list) selects on an axis of ``n``."""
+    if isinstance(i, (int, np.integer)):
+        i = int(i) % n if n else 0
+        return i, i + 1
+    if isinstance(i, slice):
+        ids = range(*i.indices(n))
+        if not ids:
+            return 0, 0
+        return min(ids[0], ids[-1]), max(ids[0], ids[-1]) + 1
+    ids = [int(k) % n for k in i]
+    return (min(ids), max(ids) + 1) if ids else (0, 0)
+
+
+def chunk_ranges(ds, index):
+    """``(offset, size)`` byte ranges in the file of the HDF5 chunks that ``ds[index]`` reads (``ds``
+    an h5py dataset; ``index`` a tuple of ints, slices and index lists, one per axis), or None when
+    they cannot be told (compact storage, too many chunks). Unallocated chunks (fill values) have none."""
+    index = tuple(index) + (slice(None),) * (len(ds.shape) - len(tuple(index)))
+    spans = [_axis_span(i, n) for i, n in zip(index, ds.shape)]
+    if any(a >= b for a, b in spans):
+        return []
+    if ds.chunks is None:
+        return _contiguous_range(ds, spans)
+    if not hasattr(ds.id, "get_chunk_info_by_coord"):      # HDF5 before 1.10.5: no chunk query
+        return None
+    axes = [sorted({int(k) % n // c for k in i}) if isinstance(i, list) else range(a // c, (b - 1) // c + 1)
+            for i, n, (a, b), c in zip(index, ds.shape, spans, ds.chunks)]
+    if np.prod([len(r) for r in axes], dtype=float) > MAX_CHUNKS:
+        return None
+    out = []
+    try:
+        for coord in itertools.product(*axes):
+            info = ds.id.get_chunk_info_by_coord(tuple(k * c for k, c in zip(coord, ds.chunks)))
+            if info.byte_offset is not None and info.size:
+                out.append((int(info.byte_offset), int(info.size)))
+    except (OSError, ValueError, RuntimeError, KeyError):      # a chunk index HDF5 cannot query: read as it comes
+        return None
+    return out
+
+
+def _contiguous_range(ds, spans):
+    """The one byte range of an unchunked dataset that holds every element of ``spans``."""
+    offset = ds.id.get_offset()
+    if offset is None:                      # compact storage, or nothing written yet
+        return None
+    shape = ds.shape
+    first = last = 0
+    for (a, b), n in zip(spans, shape):
+        first = first * n + a
+        last = last * n + (b - 1)
+    item = ds.dtype.itemsize
+    return [(int(offset) + first * item, (last - first + 1) * item)]
+
+
+class PrefetchingVariable:
+    """An h5netcdf variable whose reads first fetch the chunks they touch (see the module doc);
+    everything else is the variable's own."""
+
+    def __init__(self, var, rfile, request_bytes):
+        self._var, self._rfile, self._request_bytes = var, rfile, request_bytes
+
+    def __getattr__(self, name):
+        return getattr(self._var, name)
+
+    def __getitem__(self, index):
+        key = index if isinstance(index, tuple) else (index,)
+        ranges = None
+        if not any(k is Ellipsis or k is None for k in key):
+            ranges = chunk_ranges(self._var._h5ds, key)
+        if not ranges:
+            return self._var[index]
+        try:
+            self._rfile.prefetch(ranges, self._request_bytes)
+            return self._var[index]
+        finally:
+            self._rfile.release(ranges)
+
+
+class PrefetchingVariables:
+    """``nc.variables`` with every variable wrapped in :class:`PrefetchingVariable`."""
+
+    def __init__(self, variables, rfile, request_bytes):
+        self._vars, self._rfile, self._request_bytes = variables, rfile, request_bytes
+
+    def __contains__(self, name):
+        return name in self._vars
+
+    def __getitem__(self, name):
+        return PrefetchingVariable(self._vars[name], self._rfile, self._request_bytes)
+
+    def __iter__(self):
+        return iter(self._vars)
+
+    def __len__(self):
+        return len(self._vars)
+
+    def keys(self):
+        return self._vars.keys()
