@@ -147,6 +147,8 @@ def reduce_chunk(job):
         opened = {}
         try:
             for role, reader in job["readers"].items():       # objects in object storage: start every fetch now
+                if reader.direct is not None:      # a local file read without netCDF4 below: nothing to start
+                    continue
                 raw = _open_cached(reader.path, job["cfg"], keep=len(paths), raw=True)
                 if raw is not None:
                     reader.prefetch_fast(raw, job["t0"], job["t1"])
