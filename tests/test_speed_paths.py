@@ -443,3 +443,28 @@ def test_tasks_run_blas_on_one_thread():
     RD.reduce_chunks([])
     blas = [i for i in threadpoolctl.threadpool_info() if i["user_api"] == "blas"]
     assert blas and all(i["num_threads"] == 1 for i in blas)
+
+
+def test_one_day_files_reduced_together_give_the_rows_of_one_at_a_time(tmp_path, monkeypatch):
+    """A task of several one-day files stacks them along time for the reductions (engine/reduce.py):
+    the same rows as reducing each file on its own, every family included."""
+    from circtrack.engine import reduce as RD
+
+    paths = one_day_files(tmp_path, 6)
+    alone = sync_cfg()
+    alone["run"]["time_chunk"] = 1                 # one file per task: nothing stacked
+    one_by_one = rows(paths, alone, SECTORS)
+    sizes = []
+    real = RD._reduce
+
+    def spy(job, slabs, clock):
+        sizes.append(next(iter(slabs.values())).shape[0])
+        return real(job, slabs, clock)
+
+    monkeypatch.setattr(RD, "_reduce", spy)
+    together = sync_cfg()
+    together["run"]["time_chunk"] = 6
+    assert rows(paths, together, SECTORS) == one_by_one
+    assert max(sizes) > 1                          # the files were reduced together
+    assert {"energy_transport_max_lat", "jet_waviness", "planetary_wave_1_amplitude",
+            "eddy_jet_core_lat"} <= {r.split(",")[-4] for r in one_by_one}

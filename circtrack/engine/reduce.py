@@ -140,6 +140,16 @@ def reduce_chunk(job):
     "notes": {"time": (t,) str}}``.
     """
     clock = _Clock(job.get("profile"))
+    slabs, notes = _read(job, clock)
+    out = _reduce(job, slabs, clock)
+    out["notes"] = {"time": D.merge_notes(notes)}
+    if clock.parts is not None:
+        out["timing"] = clock.parts
+    return out
+
+
+def _read(job, clock):
+    """Every role of the job's time steps as read, and the per time step layout notes."""
     slabs, notes = {}, []
     # variables may come from several files with the same time steps (one variable per file)
     paths = list(dict.fromkeys([job["path"]] + [r.path for r in job["readers"].values()]))
@@ -180,6 +190,11 @@ def reduce_chunk(job):
             raise
     if job.get("check"):           # values in their physical range (inputs/plausible.py): first time step only
         check_slabs(job["readers"], slabs, job.get("units", {}))
+    return slabs, notes
+
+
+def _reduce(job, slabs, clock):
+    """Zonal statistics and the reducers' outputs of ``slabs`` (time first) with the job's settings."""
     stats = {}
     for role, a in slabs.items():
         stats[role] = _zonal_block(a, job["masks"])
@@ -193,11 +208,7 @@ def reduce_chunk(job):
             kw = {"lat": job["lat"]} if _wants_lat(fn) else {}     # latitudes for per-longitude features
             extras[name] = np.asarray(fn(slabs, plev, job["lon"], job["masks"], job["cfg"], **kw), dtype=np.float64)
             clock.lap(f"reducer {name}")
-    # per time step layout notes (e.g. provisional_data), joined into the rows' flags
-    out = {"stats": stats, "extras": extras, "notes": {"time": D.merge_notes(notes)}}
-    if clock.parts is not None:
-        out["timing"] = clock.parts
-    return out
+    return {"stats": stats, "extras": extras}
 
 
 class _Clock:
@@ -236,6 +247,49 @@ def reduce_chunks(jobs):
     pause = os.environ.get("CIRCTRACK_TASK_PAUSE_S")   # test hook: slow tasks down to interrupt them
     if pause:
         _time.sleep(float(pause))
-    return [reduce_chunk(j) for j in jobs]
+    if len(jobs) < 2:
+        return [reduce_chunk(j) for j in jobs]
+    return _reduce_stacked(jobs)
+
+
+def _reduce_stacked(jobs):
+    """Several small chunks (e.g. one-day files of one layout) read one by one and reduced together,
+    stacked along time: each numpy call then works on all of them at once instead of paying its
+    overhead per file. Every statistic and reducer works time step by time step, so the numbers are
+    those of one chunk at a time (tests compare). Chunks of different layouts go one by one."""
+    clock = _Clock(jobs[0].get("profile"))
+    read = [_read(j, clock) for j in jobs]
+    if not all(_same_layout(jobs[0], read[0][0], j, r[0]) for j, r in zip(jobs[1:], read[1:])):
+        outs = [_reduce(j, slabs, clock) for j, (slabs, _) in zip(jobs, read)]
+    else:
+        sizes = [next(iter(slabs.values())).shape[0] for slabs, _ in read]
+        whole = {role: np.concatenate([slabs[role] for slabs, _ in read], axis=0) for role in read[0][0]}
+        both = _reduce(jobs[0], whole, clock)
+        cut = np.cumsum([0] + sizes)
+        outs = [{kind: {k: v[a:b] for k, v in both[kind].items()} for kind in ("stats", "extras")}
+                for a, b in zip(cut[:-1], cut[1:])]
+    for out, (_, notes) in zip(outs, read):
+        out["notes"] = {"time": D.merge_notes(notes)}
+    if clock.parts is not None:
+        outs[0]["timing"] = clock.parts
+    return outs
+
+
+def _same_layout(a, slabs_a, b, slabs_b):
+    """True when two jobs' slabs can be reduced as one: the same roles, shapes but for time, float
+    types, levels, grid, sectors, reducers and settings."""
+    if slabs_a.keys() != slabs_b.keys() or a["reducers"] != b["reducers"] or a["cfg"] != b["cfg"]:
+        return False
+    if any(x.shape[1:] != slabs_b[r].shape[1:] or x.dtype != slabs_b[r].dtype for r, x in slabs_a.items()):
+        return False
+    plev = all(_equal(a["readers"][r].plev, b["readers"][r].plev) for r in slabs_a)
+    masks = len(a["masks"]) == len(b["masks"]) and all(_equal(m, n) for m, n in zip(a["masks"], b["masks"]))
+    return plev and masks and _equal(a["lat"], b["lat"]) and _equal(a["lon"], b["lon"])
+
+
+def _equal(x, y):
+    if x is None or y is None:
+        return x is None and y is None
+    return np.array_equal(np.asarray(x), np.asarray(y))
 
 
