@@ -468,3 +468,27 @@ def test_one_day_files_reduced_together_give_the_rows_of_one_at_a_time(tmp_path,
     assert max(sizes) > 1                          # the files were reduced together
     assert {"energy_transport_max_lat", "jet_waviness", "planetary_wave_1_amplitude",
             "eddy_jet_core_lat"} <= {r.split(",")[-4] for r in one_by_one}
+
+
+def test_large_chunks_of_one_task_are_reduced_one_at_a_time(tmp_path, monkeypatch):
+    """Chunks too large to stack (engine/reduce.py STACK_MAX_BYTES) are read and reduced one after
+    the other, one in memory at a time: the same rows again."""
+    from circtrack.engine import reduce as RD
+
+    paths = one_day_files(tmp_path, 4)
+    alone = sync_cfg()
+    alone["run"]["time_chunk"] = 1
+    one_by_one = rows(paths, alone, SECTORS)
+    sizes = []
+    real = RD._reduce
+
+    def spy(job, slabs, clock):
+        sizes.append(next(iter(slabs.values())).shape[0])
+        return real(job, slabs, clock)
+
+    monkeypatch.setattr(RD, "_reduce", spy)
+    monkeypatch.setattr(RD, "STACK_MAX_BYTES", 1)
+    grouped = sync_cfg()
+    grouped["run"]["time_chunk"] = 4
+    assert rows(paths, grouped, SECTORS) == one_by_one
+    assert sizes and max(sizes) == 1

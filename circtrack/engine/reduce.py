@@ -252,24 +252,40 @@ def reduce_chunks(jobs):
     return _reduce_stacked(jobs)
 
 
+STACK_MAX_BYTES = 64 * 2 ** 20     # larger chunks gain nothing from stacking and would be copied whole
+
+
 def _reduce_stacked(jobs):
     """Several small chunks (e.g. one-day files of one layout) read one by one and reduced together,
     stacked along time: each numpy call then works on all of them at once instead of paying its
     overhead per file. Every statistic and reducer works time step by time step, so the numbers are
-    those of one chunk at a time (tests compare). Chunks of different layouts go one by one."""
+    those of one chunk at a time (tests compare). Chunks of different layouts go one by one, and so
+    do chunks larger than ``STACK_MAX_BYTES`` together (e.g. the end of one month's file and the
+    start of the next): each is reduced before the next is read, one chunk in memory at a time."""
     clock = _Clock(jobs[0].get("profile"))
-    read = [_read(j, clock) for j in jobs]
-    if not all(_same_layout(jobs[0], read[0][0], j, r[0]) for j, r in zip(jobs[1:], read[1:])):
-        outs = [_reduce(j, slabs, clock) for j, (slabs, _) in zip(jobs, read)]
+    first = _read(jobs[0], clock)
+    if sum(a.nbytes for a in first[0].values()) * len(jobs) > STACK_MAX_BYTES:
+        outs, notes = [], []
+        for k, job in enumerate(jobs):
+            slabs, note = first if k == 0 else _read(job, clock)
+            first = None
+            outs.append(_reduce(job, slabs, clock))
+            notes.append(note)
+            del slabs
     else:
-        sizes = [next(iter(slabs.values())).shape[0] for slabs, _ in read]
-        whole = {role: np.concatenate([slabs[role] for slabs, _ in read], axis=0) for role in read[0][0]}
-        both = _reduce(jobs[0], whole, clock)
-        cut = np.cumsum([0] + sizes)
-        outs = [{kind: {k: v[a:b] for k, v in both[kind].items()} for kind in ("stats", "extras")}
-                for a, b in zip(cut[:-1], cut[1:])]
-    for out, (_, notes) in zip(outs, read):
-        out["notes"] = {"time": D.merge_notes(notes)}
+        read = [first] + [_read(j, clock) for j in jobs[1:]]
+        notes = [n for _, n in read]
+        if all(_same_layout(jobs[0], read[0][0], j, r[0]) for j, r in zip(jobs[1:], read[1:])):
+            sizes = [next(iter(slabs.values())).shape[0] for slabs, _ in read]
+            whole = {role: np.concatenate([slabs[role] for slabs, _ in read], axis=0) for role in read[0][0]}
+            both = _reduce(jobs[0], whole, clock)
+            cut = np.cumsum([0] + sizes)
+            outs = [{kind: {k: v[a:b] for k, v in both[kind].items()} for kind in ("stats", "extras")}
+                    for a, b in zip(cut[:-1], cut[1:])]
+        else:
+            outs = [_reduce(j, slabs, clock) for j, (slabs, _) in zip(jobs, read)]
+    for out, note in zip(outs, notes):
+        out["notes"] = {"time": D.merge_notes(note)}
     if clock.parts is not None:
         outs[0]["timing"] = clock.parts
     return outs
