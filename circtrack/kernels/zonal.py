@@ -101,9 +101,14 @@ def slab_at_level(arr, p, target, *, tolerance):
     j = int(np.searchsorted(p[order], target)) - 1
     a, b = order[j], order[j + 1]
     t = (np.log(target) - np.log(p[a])) / (np.log(p[b]) - np.log(p[a]))
-    fa = np.asarray(arr[..., a, :, :], dtype=np.float64)
-    fb = np.asarray(arr[..., b, :, :], dtype=np.float64)
-    return fa + t * (fb - fa)
+    # fa + t * (fb - fa) in one float64 array, updated in place (the same operations on the same
+    # float64 values, so the same numbers, without four more whole-level temporaries)
+    fa = arr[..., a, :, :]
+    out = np.array(arr[..., b, :, :], dtype=np.float64)
+    out -= fa
+    out *= t
+    out += fa
+    return out
 
 
 def humidity_filled_aloft(q, t):
