@@ -226,14 +226,11 @@ def test_process_pool_runs_tasks_in_parallel_workers():
     assert runner.mode == "processes" and len({p[0] for p in pids}) == 2   # not one batch in one worker
 
 
-@pytest.mark.parametrize("layout", ["plain", "lat_descending", "levels_in_pa_descending", "fill_below_ground",
-                                    "lon_first", "packed"])
-def test_fast_read_equals_xarray_decoding(tmp_path, layout):
-    """The plain-netCDF4 read path gives exactly what xarray's CF decoding gives, or steps aside."""
-    import netCDF4
-
+def layout_dataset(layout, storage):
+    """Three time steps of the test dataset laid out as ``layout``, and its netCDF encoding
+    (``storage``: the compression settings of ua and va)."""
     ds = make_dataset(3)
-    enc = {}
+    enc = {v: dict(storage) for v in ("ua", "va")}
     if layout == "lat_descending":
         ds = ds.isel(lat=slice(None, None, -1))
     elif layout == "levels_in_pa_descending":
@@ -242,12 +239,22 @@ def test_fast_read_equals_xarray_decoding(tmp_path, layout):
     elif layout == "fill_below_ground":
         for v in ("ua", "va"):
             ds[v][:, 0, :, ::3] = np.nan
-            enc[v] = {"_FillValue": np.float32(1.0e20)}
+            enc[v].update(_FillValue=np.float32(1.0e20), dtype="float32")
     elif layout == "lon_first":
         ds = ds.transpose("time", "lon", "plev", "lat")
     elif layout == "packed":
         for v in ("ua", "va"):
-            enc[v] = {"dtype": "int16", "scale_factor": 0.01, "add_offset": 0.0, "_FillValue": np.int16(-32767)}
+            enc[v].update(dtype="int16", scale_factor=0.01, add_offset=0.0, _FillValue=np.int16(-32767))
+    return ds, enc
+
+
+@pytest.mark.parametrize("layout", ["plain", "lat_descending", "levels_in_pa_descending", "fill_below_ground",
+                                    "lon_first", "packed"])
+def test_fast_read_equals_xarray_decoding(tmp_path, layout):
+    """The plain-netCDF4 read path gives exactly what xarray's CF decoding gives, or steps aside."""
+    import netCDF4
+
+    ds, enc = layout_dataset(layout, {})
     path = str(tmp_path / f"{layout}.nc")
     ds.to_netcdf(path, encoding={**synthetic.time_encoding("noleap"), **enc})
     cfg = C.load(None)
@@ -278,23 +285,10 @@ def test_direct_read_without_netcdf4_equals_xarray_decoding(tmp_path, layout, mo
     from circtrack.engine import reduce as R
     from circtrack.inputs import chunks as CH
 
-    ds = make_dataset(3)
-    enc = {v: {"zlib": True, "complevel": 1, "shuffle": True} for v in ("ua", "va")}
-    if layout == "lat_descending":
-        ds = ds.isel(lat=slice(None, None, -1))
-    elif layout == "levels_in_pa_descending":
-        ds = ds.assign_coords(plev=ds["plev"] * 100.0)
-        ds["plev"].attrs.update(units="Pa")
-    elif layout == "fill_below_ground":
-        for v in ("ua", "va"):
-            ds[v][:, 0, :, ::3] = np.nan
-            ds[v][:, 1, :, ::5] = 1.0e20
-            enc[v].update(_FillValue=np.float32(1.0e20), dtype="float32")
-    elif layout == "lon_first":
-        ds = ds.transpose("time", "lon", "plev", "lat")
-    elif layout == "packed":
-        for v in ("ua", "va"):
-            enc[v].update(dtype="int16", scale_factor=0.01, add_offset=0.0, _FillValue=np.int16(-32767))
+    ds, enc = layout_dataset(layout, {"zlib": True, "complevel": 1, "shuffle": True})
+    if layout == "fill_below_ground":                  # values equal to the fill value become NaN too
+        ds["ua"][:, 1, :, ::5] = 1.0e20
+        ds["va"][:, 1, :, ::5] = 1.0e20
     elif layout == "uncompressed":
         enc = {}
     path = str(tmp_path / f"{layout}.nc")

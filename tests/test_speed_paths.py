@@ -445,15 +445,10 @@ def test_tasks_run_blas_on_one_thread():
     assert blas and all(i["num_threads"] == 1 for i in blas)
 
 
-def test_one_day_files_reduced_together_give_the_rows_of_one_at_a_time(tmp_path, monkeypatch):
-    """A task of several one-day files stacks them along time for the reductions (engine/reduce.py):
-    the same rows as reducing each file on its own, every family included."""
+def reduced_sizes(monkeypatch):
+    """A list that fills with the number of time steps of every reduction (engine/reduce.py _reduce)."""
     from circtrack.engine import reduce as RD
 
-    paths = one_day_files(tmp_path, 6)
-    alone = sync_cfg()
-    alone["run"]["time_chunk"] = 1                 # one file per task: nothing stacked
-    one_by_one = rows(paths, alone, SECTORS)
     sizes = []
     real = RD._reduce
 
@@ -462,6 +457,17 @@ def test_one_day_files_reduced_together_give_the_rows_of_one_at_a_time(tmp_path,
         return real(job, slabs, clock)
 
     monkeypatch.setattr(RD, "_reduce", spy)
+    return sizes
+
+
+def test_one_day_files_reduced_together_give_the_rows_of_one_at_a_time(tmp_path, monkeypatch):
+    """A task of several one-day files stacks them along time for the reductions (engine/reduce.py):
+    the same rows as reducing each file on its own, every family included."""
+    paths = one_day_files(tmp_path, 6)
+    alone = sync_cfg()
+    alone["run"]["time_chunk"] = 1                 # one file per task: nothing stacked
+    one_by_one = rows(paths, alone, SECTORS)
+    sizes = reduced_sizes(monkeypatch)
     together = sync_cfg()
     together["run"]["time_chunk"] = 6
     assert rows(paths, together, SECTORS) == one_by_one
@@ -479,14 +485,7 @@ def test_large_chunks_of_one_task_are_reduced_one_at_a_time(tmp_path, monkeypatc
     alone = sync_cfg()
     alone["run"]["time_chunk"] = 1
     one_by_one = rows(paths, alone, SECTORS)
-    sizes = []
-    real = RD._reduce
-
-    def spy(job, slabs, clock):
-        sizes.append(next(iter(slabs.values())).shape[0])
-        return real(job, slabs, clock)
-
-    monkeypatch.setattr(RD, "_reduce", spy)
+    sizes = reduced_sizes(monkeypatch)
     monkeypatch.setattr(RD, "STACK_MAX_BYTES", 1)
     grouped = sync_cfg()
     grouped["run"]["time_chunk"] = 4
