@@ -352,12 +352,9 @@ class RoleReader:
                 or not CH.available():
             return None
         index, post = _fast_index(d["dims"], self.time_dim, self.selection, t0, t1)
-        arr = CH.read(self.path, self.name, index)
+        arr = _lists_read(CH.read(self.path, self.name, index), index)
         if arr is None:
             return None
-        for k, i in enumerate(index):
-            if isinstance(i, list):
-                index[k] = slice(0, len(i))          # now a plain axis of arr
         return self._finish(arr, index, post, d["dims"], d["fills"])
 
     def _finish(self, arr, index, post, dims, fills):
@@ -503,6 +500,12 @@ def _read_direct(nc, name, index):
         except (AttributeError, ValueError):
             return None
         arr = CH.read(path, name, index)
+    return _lists_read(arr, index)
+
+
+def _lists_read(arr, index):
+    """After a read of ``index`` that gave ``arr`` (None: nothing read), its index lists are plain
+    axes of ``arr``: ``index`` is updated to say so, as :func:`_read_hyperslabs` does."""
     if arr is not None:
         for k, i in enumerate(index):
             if isinstance(i, list):
