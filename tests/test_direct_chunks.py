@@ -69,8 +69,52 @@ def test_incompressible_chunks_and_nan(tmp_path):
     CH.close_all()
 
 
-@pytest.mark.parametrize("kw", [dict(zlib=False), dict(contiguous=True, chunks=None),
-                                dict(zlib=True, fletcher32=True), dict(zlib=True, endian="big", dtype=">f4")])
+STORED = [dict(zlib=False), dict(contiguous=True, chunks=None), dict(zlib=False, chunks=(1, 1, 7, 9)),
+          dict(zlib=False, chunks=(3, 5, 7, 9), dtype="f8"), dict(zlib=False, chunks=(10, 1, 7, 9))]
+
+
+@pytest.mark.parametrize("runs", [True, False])
+@pytest.mark.parametrize("kw", STORED)
+def test_unfiltered_values_read_by_offset_equal_hdf5(tmp_path, monkeypatch, kw, runs):
+    """Uncompressed chunks and contiguous storage, read by byte offsets: straight into the output
+    where the part is whole rows (``runs``; the threshold lowered so these small fields take that
+    path) or through a chunk buffer; every index equals netCDF4's read."""
+    monkeypatch.setattr(CH, "MIN_RUN_BYTES", 0 if runs else 10 ** 9)
+    sizes = []
+    real = CH.os.preadv
+    monkeypatch.setattr(CH.os, "preadv", lambda fd, views, pos: sizes.append(sum(v.nbytes for v in views))
+                        or real(fd, views, pos))
+    path, _ = write(tmp_path / "s.nc", **kw)
+    assert CH.layout(path, "ua") is not None and CH.layout(path, "ua").filters == []
+    for index in INDICES + [[slice(1, 9), slice(None), slice(None), slice(None)]]:
+        got = CH.read(path, "ua", list(index))
+        want = netcdf4_read(path, index)
+        assert got is not None and got.dtype == want.dtype and got.shape == want.shape, index
+        assert np.array_equal(got, want), index
+    whole = int(np.prod(CH.layout(path, "ua").chunks)) * np.dtype(kw.get("dtype", "f4")).itemsize
+    assert sizes and any(n != whole for n in sizes) == runs   # only parts of chunks: runs into the output
+    CH.close_all()
+
+
+def test_a_truncated_unfiltered_file_falls_back(tmp_path):
+    """A file cut short: the read by offsets meets the end of the file and gives None, so the usual
+    read (and its error naming the file) takes over."""
+    path, _ = write(tmp_path / "t.nc", zlib=False, chunks=(10, 5, 7, 9))
+    import h5py
+    with h5py.File(path, "r") as f:
+        info = f["ua"].id.get_chunk_info(0)
+    with open(path, "r+b") as fh:
+        fh.truncate(info.byte_offset + info.size // 2)
+    try:
+        got = CH.read(path, "ua", [slice(None)] * 4)
+    except OSError:                                   # h5py itself may refuse the cut file
+        got = None
+    assert got is None
+    CH.close_all()
+
+
+@pytest.mark.parametrize("kw", [dict(zlib=True, fletcher32=True), dict(zlib=True, endian="big", dtype=">f4"),
+                                dict(zlib=False, endian="big", dtype=">f4"), dict(zlib=False, fletcher32=True)])
 def test_other_storage_is_left_to_hdf5(tmp_path, kw):
     path, _ = write(tmp_path / "o.nc", **kw)
     assert CH.layout(path, "ua") is None
@@ -122,5 +166,31 @@ def test_rows_identical_with_and_without_inflating_here(tmp_path, monkeypatch):
     here = csv_rows(engine.track([str(path)], cfg, label="x"))
     assert calls and all(calls)                     # the chunks were inflated here
     CH.close_all()
-    monkeypatch.setattr(CH, "available", lambda: False)
+    calls.clear()
+    monkeypatch.setattr(CH, "_inflate_lib", None)
+    assert csv_rows(engine.track([str(path)], cfg, label="x")) == here
+    assert calls and not any(calls)                 # HDF5 inflated them this time
+    CH.close_all()
+
+
+@pytest.mark.parametrize("storage", [dict(chunksizes=(3, 1, 61, 60)), dict(contiguous=True)])
+def test_rows_identical_with_and_without_reading_by_offset(tmp_path, monkeypatch, storage):
+    """Uncompressed files: the rows of a run reading by byte offsets equal those of netCDF4's read."""
+    from circtrack import synthetic
+
+    lat = np.arange(-90.0, 90.1, 3.0)
+    lon = np.arange(0.0, 360.0, 6.0)
+    ds = synthetic.dataset(lat, lon, [1000.0, 850.0, 700.0, 500.0, 300.0, 200.0, 100.0],
+                           synthetic.monthly_times(2001, 2, "standard"))
+    path = tmp_path / "u.nc"
+    ds.to_netcdf(path, encoding={v: dict(storage) for v in ("ua", "va")})
+    cfg = C.load(None)
+    cfg["run"]["scheduler"] = "sync"
+    calls = []
+    real = CH.read
+    monkeypatch.setattr(CH, "read", lambda *a: calls.append(real(*a) is not None) or real(*a))
+    here = csv_rows(engine.track([str(path)], cfg, label="x"))
+    assert calls and all(calls)
+    CH.close_all()
+    monkeypatch.setattr(CH, "read", lambda *a: None)
     assert csv_rows(engine.track([str(path)], cfg, label="x")) == here

@@ -1,4 +1,4 @@
-"""Reading compressed netCDF4/HDF5 variables chunk by chunk, decoded here rather than by HDF5.
+"""Reading netCDF4/HDF5 variables chunk by chunk, decoded (or copied) here rather than by HDF5.
 
 Inflating zlib-compressed chunks is most of the time of a run on compressed files. HDF5 inflates
 with the system's zlib; the ISA-L library (through the ``isal`` package) inflates the same streams
@@ -7,15 +7,24 @@ chunks went through deflate (and optionally shuffle) only, :func:`read` fetches 
 with h5py's direct chunk read (the bytes as stored, no decoding), decodes them and copies the
 selected part into the output: the same array, value for value, as ``netCDF4.Variable[index]``.
 
-Anything else -- other filters (checksums, szip, blosc...), contiguous or big-endian storage, a chunk
-that was never written, an index this module does not know -- gives None and the caller reads the
-usual way. Per process, a few h5py files stay open (like the netCDF4 handles in engine/reduce.py).
+Values stored without any filter (uncompressed chunks, or contiguous storage in a file on disk)
+are read by their byte offsets in the file (h5py's chunk index) with ``os.preadv`` straight into
+the output array where the selected part of a chunk is a run of whole rows in both (the usual
+case: full latitude-longitude fields), so the bytes are copied once, from the page cache to the
+output; other selections go through one chunk-sized buffer. HDF5 copies them twice and costs
+more per call.
+
+Anything else -- other filters (checksums, szip, blosc...), big-endian storage, a chunk that was
+never written, an index this module does not know -- gives None and the caller reads the usual
+way. Per process, a few h5py files stay open (like the netCDF4 handles in engine/reduce.py), each
+with a plain file descriptor for the unfiltered reads.
 """
 
 from __future__ import annotations
 
 import collections
 import itertools
+import os
 import sys
 import threading
 import zlib
@@ -28,9 +37,11 @@ except ImportError:                   # pragma: no cover - isal is installed wit
     _inflate_lib = None
 
 FILTER_DEFLATE, FILTER_SHUFFLE = 1, 2
-_OPEN = collections.OrderedDict()     # (path, thread id) -> (h5py.File, {variable: _Layout or None})
+_OPEN = collections.OrderedDict()     # (path, thread id) -> _Open: h5py.File, layouts, a descriptor
 _LOCK = threading.Lock()
 KEEP_OPEN = 4
+IOV_MAX = 512                         # buffers per preadv call (the system's limit is at least 1024)
+MIN_RUN_BYTES = 4096                  # shorter runs: the whole chunk into a buffer (fewer system calls)
 
 
 def available():
@@ -39,13 +50,15 @@ def available():
 
 
 class _Layout:
-    """What decoding one variable's chunks takes: chunk shape, dtype and the filters in write order."""
+    """What decoding one variable's chunks takes: chunk shape, dtype and the filters in write order.
+    Contiguous storage is one chunk the shape of the variable (``contiguous``: its byte offset)."""
 
     def __init__(self, dset):
         self.shape = dset.shape
-        self.chunks = dset.chunks
+        self.chunks = dset.chunks or dset.shape
         self.dtype = dset.dtype
         self.filters = _filters(dset)
+        self.contiguous = None if dset.chunks is not None else dset.id.get_offset()
 
 
 def _filters(dset):
@@ -54,12 +67,42 @@ def _filters(dset):
     return [dcpl.get_filter(i)[0] for i in range(dcpl.get_nfilters())]
 
 
-def _eligible(dset):
-    if dset.chunks is None or dset.dtype.kind != "f":
+def _eligible(dset, stored=True):
+    """Deflate(+shuffle) chunks of little-endian floats, or (``stored``: a file on disk, read by
+    byte offsets) unfiltered chunks or contiguous storage with its offset known."""
+    if dset.dtype.kind != "f" or 0 in dset.shape:
         return False
     little = dset.dtype.byteorder == "<" or (dset.dtype.byteorder == "=" and sys.byteorder == "little")
+    if not little:
+        return False
     filters = _filters(dset)
-    return little and FILTER_DEFLATE in filters and set(filters) <= {FILTER_DEFLATE, FILTER_SHUFFLE}
+    if not filters:
+        if not stored:
+            return False
+        if dset.chunks is None:
+            return dset.id.get_offset() is not None        # compact storage or nothing written: HDF5
+        return hasattr(dset.id, "get_chunk_info_by_coord")
+    return dset.chunks is not None and FILTER_DEFLATE in filters \
+        and set(filters) <= {FILTER_DEFLATE, FILTER_SHUFFLE}
+
+
+class _Open:
+    """An h5py file open in this thread, its variables' layouts, and a plain descriptor of the file
+    (opened on the first unfiltered read) that ``os.preadv`` reads through."""
+
+    def __init__(self, path, h5):
+        self.path, self.h5, self.layouts, self._fd = path, h5, {}, None
+
+    def fd(self):
+        if self._fd is None:
+            self._fd = os.open(self.path, os.O_RDONLY)
+        return self._fd
+
+    def close(self):
+        if self._fd is not None:
+            os.close(self._fd)
+            self._fd = None
+        self.h5.close()
 
 
 def _file(path):
@@ -70,9 +113,9 @@ def _file(path):
     with _LOCK:
         entry = _OPEN.pop(key, None)
         if entry is None:
-            entry = (h5py.File(path, "r"), {})
+            entry = _Open(path, h5py.File(path, "r"))
             while len(_OPEN) >= KEEP_OPEN:
-                _OPEN.popitem(last=False)[1][0].close()
+                _OPEN.popitem(last=False)[1].close()
         _OPEN[key] = entry
     return entry
 
@@ -82,20 +125,21 @@ def close_all():
     file is dropped after an error); layouts are forgotten with them."""
     with _LOCK:
         while _OPEN:
-            _OPEN.popitem()[1][0].close()
+            _OPEN.popitem()[1].close()
 
 
 def layout(path, name):
-    """The variable's :class:`_Layout`, or None when its chunks are not deflate(+shuffle) floats."""
+    """The variable's :class:`_Layout`, or None when its values are neither deflate(+shuffle)
+    floats nor unfiltered floats (see the module docstring)."""
     try:
-        f, layouts = _file(path)
+        layouts = _file(path).layouts
     except (OSError, ValueError):          # not an HDF5 file after all
         return None
     if name not in layouts:
         try:
-            dset = f[name]
+            dset = _file(path).h5[name]
             layouts[name] = _Layout(dset) if _eligible(dset) else None
-        except (OSError, KeyError, ValueError, TypeError):
+        except (OSError, KeyError, ValueError, TypeError, AttributeError):
             layouts[name] = None
     return layouts[name]
 
@@ -106,12 +150,15 @@ def read(path, name, index):
     ``index``: one entry per dimension, an int, a slice with step 1, or a list of ints (an axis in
     that order), as netCDF4 takes it.
     """
-    if _inflate_lib is None:
-        return None
     lay = layout(path, name)
     if lay is None:
         return None
-    return _read(_file(path)[0][name], lay, index)
+    entry = _file(path)
+    if not lay.filters:
+        return _read_stored(entry.h5[name], lay, index, entry.fd())
+    if _inflate_lib is None:
+        return None
+    return _read(entry.h5[name], lay, index)
 
 
 def read_dataset(dset, index, layouts):
@@ -122,7 +169,7 @@ def read_dataset(dset, index, layouts):
         return None
     if dset.name not in layouts:
         try:
-            layouts[dset.name] = _Layout(dset) if _eligible(dset) else None
+            layouts[dset.name] = _Layout(dset) if _eligible(dset, stored=False) else None
         except (OSError, KeyError, ValueError, TypeError):
             layouts[dset.name] = None
     lay = layouts[dset.name]
@@ -134,16 +181,114 @@ def _read(dset, lay, index):
     if axes is None:
         return None
     out = np.empty([len(src) for src, _ in axes], dtype=lay.dtype)
-    # chunks met along each axis: (chunk number, positions in the output, positions in the chunk)
-    per_axis = [_pieces(src, c) for (src, _), c in zip(axes, lay.chunks)]
     try:
-        for combo in itertools.product(*per_axis):
-            offset = tuple(k * c for (k, _, _), c in zip(combo, lay.chunks))
-            chunk = _decode(dset, offset, lay)
-            out[tuple(o for _, o, _ in combo)] = chunk[tuple(i for _, _, i in combo)]
+        for offset, o_idx, c_idx in _chunks_met(axes, lay):
+            out[o_idx] = _decode(dset, offset, lay)[c_idx]
     except (OSError, KeyError, ValueError, RuntimeError, zlib.error, getattr(_inflate_lib, "error", zlib.error)):
         return None          # e.g. a chunk never written (fill values): HDF5 knows what to do
+    return _squeezed(out, axes)
+
+
+def _chunks_met(axes, lay):
+    """Per chunk the index touches: its offset (element coordinates), the positions in the output
+    and the positions inside the chunk (slices where contiguous)."""
+    # chunks met along each axis: (chunk number, positions in the output, positions in the chunk)
+    per_axis = [_pieces(src, c) for (src, _), c in zip(axes, lay.chunks)]
+    for combo in itertools.product(*per_axis):
+        yield (tuple(k * c for (k, _, _), c in zip(combo, lay.chunks)),
+               tuple(o for _, o, _ in combo), tuple(i for _, _, i in combo))
+
+
+def _squeezed(out, axes):
     return out[tuple(slice(None) if keep else 0 for _, keep in axes)]
+
+
+def _read_stored(dset, lay, index, fd):
+    """``dset[index]`` of unfiltered values, read by byte offsets with ``os.preadv`` (module doc)."""
+    axes = _axes(index, lay.shape)
+    if not axes:
+        return None
+    out = np.empty([len(src) for src, _ in axes], dtype=lay.dtype)
+    nbytes = int(np.prod(lay.chunks)) * lay.dtype.itemsize
+    buf = None
+    try:
+        for offset, o_idx, c_idx in _chunks_met(axes, lay):
+            if lay.contiguous is not None:
+                start = int(lay.contiguous)
+            else:
+                info = dset.id.get_chunk_info_by_coord(offset)
+                if info.byte_offset is None or info.size != nbytes:
+                    return None      # never written (fill values), or not stored as plain values
+                start = int(info.byte_offset)
+            runs = _runs(out, o_idx, c_idx, lay)
+            if runs is None:         # a scattered selection: the whole chunk, then the part wanted
+                if buf is None:
+                    buf = np.empty(lay.chunks, dtype=lay.dtype)
+                _preadv(fd, [buf.reshape(-1).view(np.uint8)], start)
+                out[o_idx] = buf[c_idx]
+            else:
+                for pos, views in runs:
+                    _preadv(fd, views, start + pos)
+    except (OSError, ValueError, RuntimeError, KeyError):
+        return None
+    return _squeezed(out, axes)
+
+
+def _runs(out, o_idx, c_idx, lay):
+    """The part ``c_idx`` of a chunk that goes to ``out[o_idx]`` as reads straight into ``out``:
+    ``[(byte position in the chunk, [writable byte views of out])]``, each entry one stretch of the
+    file; None when the part is not made of whole rows in both (then a buffer is used).
+
+    The trailing axes that the part covers whole in the chunk and in ``out`` make each run
+    contiguous in both; one more axis may be a range in both; the axes before it are stepped
+    through one position at a time."""
+    if not all(isinstance(i, slice) for i in c_idx + o_idx):
+        return None
+    shape, n = lay.chunks, len(lay.chunks)
+    m = n                                  # axes m.. are whole in the chunk and in out
+    while m > 0 and c_idx[m - 1] == slice(0, shape[m - 1]) and out.shape[m - 1] == shape[m - 1] \
+            and o_idx[m - 1] == slice(0, shape[m - 1]):
+        m -= 1
+    run_axis = max(m - 1, 0)               # this axis is a range (the run's length along it)
+    c_strides = np.cumprod((shape[1:] + (1,))[::-1])[::-1] * lay.dtype.itemsize
+    row = int(np.prod(shape[run_axis + 1:], dtype=np.int64)) * lay.dtype.itemsize
+    lead = [range(c_idx[d].start, c_idx[d].stop) for d in range(run_axis)]
+    o_lead = [o_idx[d].start for d in range(run_axis)]
+    length = (c_idx[run_axis].stop - c_idx[run_axis].start) * row
+    if length < MIN_RUN_BYTES:
+        return None
+    groups, cur_end = [], None
+    for ks in itertools.product(*lead):
+        pos = sum(int(k) * int(st) for k, st in zip(ks, c_strides)) + c_idx[run_axis].start * int(c_strides[run_axis])
+        o_pos = tuple(o + (k - c.start) for o, k, c in zip(o_lead, ks, c_idx))
+        view = out[o_pos + (o_idx[run_axis],)]
+        if not view.flags.c_contiguous or view.nbytes != length:
+            return None
+        view = view.reshape(-1).view(np.uint8)        # contiguous: a view, never a copy
+        if cur_end == pos and len(groups[-1][1]) < IOV_MAX:
+            groups[-1][1].append(view)
+        else:
+            groups.append((pos, [view]))
+        cur_end = pos + view.nbytes
+    return groups
+
+
+def _preadv(fd, views, pos):
+    """Fill ``views`` from the file at byte ``pos`` on; a short read (a truncated file) is an error."""
+    want = sum(v.nbytes for v in views)
+    got = os.preadv(fd, views, pos)
+    while got < want:                      # the kernel may return less than asked without an error
+        done, rest, skip = 0, [], got
+        for v in views:
+            if skip >= v.nbytes:
+                skip -= v.nbytes
+                continue
+            rest.append(v[skip:])
+            skip = 0
+        n = os.preadv(fd, rest, pos + got)
+        if n <= 0:
+            raise OSError("the file ends before the chunk")
+        got += n
 
 
 def _axes(index, shape):

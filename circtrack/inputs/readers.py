@@ -343,13 +343,12 @@ class RoleReader:
 
     def read_direct(self, t0, t1):
         """The same array as :meth:`read_fast`, the chunks read by inputs/chunks.py straight from
-        the file (h5py), without opening it with netCDF4 (about 2.5 ms per open and close, as much
+        the file (h5py's chunk index; deflate or no filter), without opening it with netCDF4 (about 2.5 ms per open and close, as much
         as reading a one-day file): only for readers that carry their variable's header
         (``direct``); None otherwise or when the chunks need HDF5 itself, and the caller takes
         :meth:`read_fast`."""
         d = self.direct
-        if d is None or self.stream is not None or self.hybrid is not None or self.ground is not None \
-                or not CH.available():
+        if d is None or self.stream is not None or self.hybrid is not None or self.ground is not None:
             return None
         index, post = _fast_index(d["dims"], self.time_dim, self.selection, t0, t1)
         arr = _lists_read(CH.read(self.path, self.name, index), index)
@@ -485,10 +484,8 @@ def _fast_index(dims, time_dim, selection, t0, t1):
 
 
 def _read_direct(nc, name, index):
-    """``nc[name][index]`` with the chunks inflated by inputs/chunks.py (deflate-compressed netCDF4
-    files on disk, and objects in object storage), else None. ``index`` is updated as :func:`_read_hyperslabs` does."""
-    if not CH.available():
-        return None
+    """``nc[name][index]`` with the chunks decoded by inputs/chunks.py (deflate-compressed or
+    unfiltered netCDF4 files on disk, deflate-compressed objects in object storage), else None. ``index`` is updated as :func:`_read_hyperslabs` does."""
     remote_read = getattr(type(nc), "read_direct", None)     # an object in object storage (remote.RawObject)
     if remote_read is not None:
         arr = remote_read(nc, name, index)
