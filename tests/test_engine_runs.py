@@ -65,7 +65,17 @@ def test_planning_reads_nothing(four_files, monkeypatch):
             return real(self, ds, t0, t1)
         return wrapped
 
-    # what the tasks call: the plain netCDF4 path, else xarray's (values and per-time-step notes)
+    def counting_direct(real):
+        def wrapped(self, t0, t1):
+            arr = real(self, t0, t1)
+            if arr is not None:
+                calls.append((self.path, self.role, t0, t1))
+            return arr
+        return wrapped
+
+    # what the tasks call: the chunks read here (no netCDF4 open), else the plain netCDF4 path, else
+    # xarray's (values and per-time-step notes)
+    monkeypatch.setattr(D.RoleReader, "read_direct", counting_direct(D.RoleReader.read_direct))
     monkeypatch.setattr(D.RoleReader, "read_fast", counting(D.RoleReader.read_fast))
     monkeypatch.setattr(D.RoleReader, "read_noted", counting(D.RoleReader.read_noted))
     cfg = C.load(None)
@@ -281,7 +291,8 @@ def test_fast_read_equals_xarray_decoding(tmp_path, layout):
                                     "lon_first", "packed", "uncompressed"])
 def test_direct_read_without_netcdf4_equals_xarray_decoding(tmp_path, layout, monkeypatch):
     """Readers that carry their variable's header read the chunks without a netCDF4 open and give
-    exactly what xarray's CF decoding gives, or step aside (packed values; chunks HDF5 must decode)."""
+    exactly what xarray's CF decoding gives, or step aside (packed values; chunks HDF5 must decode).
+    "uncompressed" is contiguous storage (xarray's default), read by byte offset."""
     from circtrack.engine import reduce as R
     from circtrack.inputs import chunks as CH
 
@@ -304,8 +315,8 @@ def test_direct_read_without_netcdf4_equals_xarray_decoding(tmp_path, layout, mo
                 assert reader.direct is None and direct is None
                 continue
             assert reader.direct is not None and reader.direct["dims"][0] == "time"
-            if layout == "uncompressed" or not CH.available():
-                assert direct is None                    # HDF5 reads these chunks itself
+            if not CH.available() and layout != "uncompressed":
+                assert direct is None                    # HDF5 inflates these chunks itself
                 continue
             assert direct is not None and direct.shape == slow.shape and direct.dtype == slow.dtype, role
             assert np.array_equal(direct, slow, equal_nan=True), role
@@ -319,7 +330,7 @@ def test_direct_read_without_netcdf4_equals_xarray_decoding(tmp_path, layout, mo
     sync = C.load(None)
     sync["run"]["scheduler"] = "sync"
     rows = csv_rows(engine.track([path], sync, label="x"))
-    assert (opened == []) == (layout not in ("packed", "uncompressed") and CH.available())
+    assert (opened == []) == (layout != "packed" and (CH.available() or layout == "uncompressed"))
     monkeypatch.setattr(type(run.infos[0].readers["ua"]), "read_direct", lambda self, t0, t1: None)
     R.close_cached()
     assert csv_rows(engine.track([path], sync, label="x")) == rows

@@ -64,7 +64,7 @@ def ref_fourier_amplitudes(y, lon, wavenumbers):
     lam = np.deg2rad(np.mod(np.asarray(lon, float), 360.0))
     order = np.argsort(lam, kind="stable")
     lam = lam[order]
-    y = np.asarray(y, dtype=np.float64)[..., order]
+    y = np.ascontiguousarray(np.asarray(y, dtype=np.float64)[..., order])
     gaps = np.diff(np.concatenate([lam, [lam[0] + 2 * np.pi]]))
     w = 0.5 * (gaps + np.roll(gaps, 1))
     ks = np.asarray(wavenumbers, dtype=float)
@@ -190,6 +190,19 @@ def test_covariance_and_fourier_fast_paths_equal_the_masked_formulas():
         for y in (a, holes):
             assert np.array_equal(Z.fourier_amplitudes(y, lons, (1, 2, 3)), ref_fourier_amplitudes(y, lons, (1, 2, 3)),
                                   equal_nan=True)
+
+
+def test_fourier_amplitudes_the_same_bits_from_either_longitude_convention():
+    """The same field on a 0..360 grid and on a -180..180 grid gives identical amplitudes (BLAS may
+    sum a non-contiguous array in another order: the reordered field is made contiguous)."""
+    rng = np.random.default_rng(5)
+    lon = np.arange(0.0, 360.0, 2.5)
+    y = rng.standard_normal((6, 31, lon.size)) * 10
+    rolled = np.roll(np.arange(lon.size), -lon.size // 2)            # the points from 180 E on...
+    west = np.mod(lon[rolled] + 180.0, 360.0) - 180.0                # ... named -180 .. 177.5, as read from a file
+    assert west[0] == -180.0 and np.all(np.diff(west) > 0)
+    assert np.array_equal(Z.fourier_amplitudes(y, lon, (1, 2, 3, 4)),
+                          Z.fourier_amplitudes(np.ascontiguousarray(y[..., rolled]), west, (1, 2, 3, 4)))
 
 
 def test_covariance_in_blocks_of_rows_equals_the_whole_array_at_once(monkeypatch):

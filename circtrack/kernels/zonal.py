@@ -182,7 +182,9 @@ def fourier_amplitudes(y, lon, wavenumbers):
     lam = lam[order]
     y = np.asarray(y, dtype=np.float64)
     if np.any(order != np.arange(order.size)):   # already in order (the usual grid): no reordered copy
-        y = y[..., order]
+        # C order like an array in order: BLAS sums a differently laid-out array in another order,
+        # and the same field must give the same bits from either longitude convention
+        y = np.ascontiguousarray(y[..., order])
     gaps = np.diff(np.concatenate([lam, [lam[0] + 2 * np.pi]]))          # to the next point, cyclic
     w = 0.5 * (gaps + np.roll(gaps, 1))
     ks = np.asarray(wavenumbers, dtype=float)
