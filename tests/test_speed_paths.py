@@ -504,3 +504,25 @@ def test_large_chunks_of_one_task_are_reduced_one_at_a_time(tmp_path, monkeypatc
     grouped["run"]["time_chunk"] = 4
     assert rows(paths, grouped, SECTORS) == one_by_one
     assert sizes and max(sizes) == 1
+
+
+@pytest.mark.parametrize("block_bytes", [8 * 720 * 3, 2 ** 21, 10 ** 9])
+def test_zonal_means_in_converted_blocks_equal_numpys_mean(monkeypatch, block_bytes):
+    """The full-circle zonal mean converts float32 rows a block at a time: bit for bit numpy's
+    ``mean(axis=-1, dtype=float64)``, for NaN and infinite rows too, any block size."""
+    from circtrack.engine import reduce as RD
+
+    monkeypatch.setattr(RD, "MEAN_BLOCK_BYTES", block_bytes)
+    rng = np.random.default_rng(11)
+    x = (rng.standard_normal((5, 3, 37, 720)) * 30 + 8).astype(np.float32)
+    x[1, 2, 4, 100] = np.nan
+    x[3, 0, 7, :5] = np.inf
+    for arr in (x, x[2], x[..., :719].copy(), x.astype(np.float64), x[:, ::2]):
+        got = RD._row_means(arr)
+        want = arr.mean(axis=-1, dtype=np.float64)
+        assert got.shape == want.shape and np.array_equal(got, want, equal_nan=True)
+    stats = RD._zonal_block(x, [None])
+    clean = np.isfinite(x).all(axis=-1)
+    assert np.array_equal(stats[..., 0, 0][clean], x.mean(axis=-1, dtype=np.float64)[clean])
+    assert stats[1, 2, 4, 0, 0] == pytest.approx(np.nanmean(x[1, 2, 4].astype(np.float64)))   # NaN rows redone
+    assert stats[1, 2, 4, 0, 1] == pytest.approx(719 / 720)
