@@ -444,6 +444,7 @@ def test_profile_prints_where_the_time_went_and_changes_nothing(tmp_path):
     for part in ("open and detect every file", "wait for reduced batches", "read ua", "zonal means va",
                  "reducer eddy_momentum_flux", "reducer energy_column_sums", "cells", "energy_transport"):
         assert part in text, part
+    assert "CPU time in workers" in text and "wall time beyond CPU" in text
     assert "circtrack profile" not in plain.output
 
 

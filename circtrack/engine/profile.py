@@ -4,7 +4,9 @@
 the end. The stages of the parent process (locate, choose metrics, open and detect, plan, wait for
 reduced batches, families, write) are wall times; the parts of the reduce tasks (read, zonal means,
 each reducer) run in the worker processes, are summed over all tasks and come back inside the
-task results (``result["timing"]``), so with two workers they can add up to twice the wall time.
+task results (``result["timing"]``), so with two workers they can add up to twice the wall time:
+their CPU time (of the thread running the task), and the wall time beyond it (reading from disk
+rather than the page cache, or a core busy with another process).
 Off by default: then nothing is timed and nothing is printed.
 """
 
@@ -49,10 +51,15 @@ def timed(section, name):
         add(section, name, time.perf_counter() - t0)
 
 
+TASK_CPU = "reduce tasks (CPU time in workers, summed)"
+TASK_WAIT = "reduce tasks (wall time beyond CPU: waiting for the disk or for a core)"
+
+
 def add_task_timing(timing):
-    """Sum the per-part seconds a reduce task measured (``{part: seconds}``)."""
-    for name, s in (timing or {}).items():
-        add("reduce tasks (CPU in workers, summed)", name, s)
+    """Sum the per-part seconds a reduce task measured (``{part: (wall, cpu)}``)."""
+    for name, (wall, cpu) in (timing or {}).items():
+        add(TASK_CPU, name, cpu)
+        add(TASK_WAIT, name, max(wall - cpu, 0.0))
 
 
 def table():

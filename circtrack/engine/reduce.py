@@ -234,17 +234,19 @@ def _reduce(job, slabs, clock):
 
 
 class _Clock:
-    """Seconds per part of a task (``--profile``); does nothing when ``on`` is false."""
+    """Seconds per part of a task (``--profile``): ``{part: (wall, cpu)}``, the CPU time of the
+    thread running the task; does nothing when ``on`` is false."""
 
     def __init__(self, on):
         self.parts = {} if on else None
-        self.t = _time.perf_counter() if on else 0.0
+        self.t = (_time.perf_counter(), _time.thread_time()) if on else (0.0, 0.0)
 
     def lap(self, name):
         if self.parts is None:
             return
-        now = _time.perf_counter()
-        self.parts[name] = self.parts.get(name, 0.0) + now - self.t
+        now = (_time.perf_counter(), _time.thread_time())
+        wall, cpu = self.parts.get(name, (0.0, 0.0))
+        self.parts[name] = (wall + now[0] - self.t[0], cpu + now[1] - self.t[1])
         self.t = now
 
 
