@@ -59,3 +59,41 @@ def test_readme_demo_excerpt_is_what_the_first_command_writes():
     shown = ["source,time,hemisphere,sector,metric,value,units,flag"] + block.splitlines()
     lines = output.sorted_lines(engine.track([str(SAMPLE)], config.load()))
     assert lines[:len(shown)] == shown
+
+
+@pytest.fixture(scope="module")
+def demo_cores_and_flux():
+    ids = ["subtropical_jet_core_pressure", "eddy_jet_core_pressure", "subtropical_jet_core_lat",
+           "eddy_momentum_flux_lat", "eddy_momentum_flux_max"]
+    return engine.track([str(SAMPLE)], config.load(), metric_ids=ids).columns
+
+
+def _zonal(c, metric, hemi):
+    sel = (c["metric"] == metric) & (c["hemisphere"] == hemi) & (c["sector"] == "zonal")
+    return c["value"][sel.astype(bool)], c["flag"][sel.astype(bool)]
+
+
+def test_demo_jets_have_their_cores_where_the_scenario_puts_them(demo_cores_and_flux):
+    """make_sample.py: the subtropical jet is strongest at 200 hPa, the eddy-driven jet at 300 hPa;
+    the cores (parabola in ln p through the 3 levels around the maximum) lie near those levels."""
+    c = demo_cores_and_flux
+    for hemi in ("NH", "SH"):
+        p_stj, f_stj = _zonal(c, "subtropical_jet_core_pressure", hemi)
+        p_edj, f_edj = _zonal(c, "eddy_jet_core_pressure", hemi)
+        assert set(f_stj) == {"ok"} and set(f_edj) == {"ok"}
+        assert np.all((p_stj > 180) & (p_stj < 230)) and np.all((p_edj > 280) & (p_edj < 340))
+        lat, _ = _zonal(c, "subtropical_jet_core_lat", hemi)
+        assert 27 <= np.mean(np.abs(lat)) <= 33                      # scenario: 30 +- 3 (NH), -30 +- 2 (SH)
+
+
+def test_demo_eddies_carry_momentum_poleward_out_of_the_subtropics(demo_cores_and_flux):
+    """make_sample.py: the waves' envelope peaks at 35 +- 2 degrees (poleward in local summer), with
+    [u'v'] = 0.5 * (9 m/s * level share)^2 > 0 northward in the NH, southward in the SH. Monthly
+    means: the value is kept with the time_mean_input note; 250 hPa is interpolated."""
+    c = demo_cores_and_flux
+    for hemi, sign in (("NH", 1), ("SH", -1)):
+        lat, flags = _zonal(c, "eddy_momentum_flux_lat", hemi)
+        peak, _ = _zonal(c, "eddy_momentum_flux_max", hemi)
+        assert set(flags) == {"time_mean_input;interpolated_level"}
+        assert np.all(sign * lat > 32.5) and np.all(sign * lat < 37.5)
+        assert np.all((peak > 30) & (peak < 45))
