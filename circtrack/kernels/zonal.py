@@ -20,7 +20,8 @@ def zonal_covariance(a, b, mask=None):
 
     Parameters
     ----------
-    a, b : arrays ``(..., I)``.
+    a, b : arrays ``(..., I)``, or :class:`LevelSlab` ``(..., J, I)`` (reduced a few latitude rows at
+        a time, converted to float64 in cache-sized blocks: no float64 copy of the whole level).
     mask : boolean ``(I,)`` selecting a longitude band, or None for the whole circle.
 
     Returns
@@ -32,7 +33,15 @@ def zonal_covariance(a, b, mask=None):
     -----
     The deviations are taken from the mean of the same valid longitudes, so ``[a'] = [b'] = 0`` on
     the points used and ``[ab] = [a][b] + [a'b']`` holds exactly (Peixoto & Oort 1992, ch. 4).
+    Every row (one latitude of one time step) is reduced on its own along contiguous memory, so
+    blocks of rows give the same numbers as the whole array at once.
     """
+    if isinstance(a, LevelSlab) or isinstance(b, LevelSlab):
+        if mask is None:
+            return _covariance_by_rows(a, b)
+        # a band: numpy lays ``a[..., mask]`` out with the longitudes outermost and sums its rows in
+        # another order than a contiguous block's; the whole float64 level keeps those numbers
+        a, b = np.asarray(a), np.asarray(b)
     a = np.asarray(a, dtype=np.float64)
     b = np.asarray(b, dtype=np.float64)
     if mask is not None:
@@ -40,6 +49,11 @@ def zonal_covariance(a, b, mask=None):
     fast = _covariance_all_valid(a, b)
     if fast is not None:
         return fast
+    return _covariance_masked(a, b)
+
+
+def _covariance_masked(a, b):
+    """:func:`zonal_covariance` of float64 ``a, b (..., I)`` with missing values left out."""
     ok = np.isfinite(a) & np.isfinite(b)
     n = ok.sum(axis=-1)
     a0 = np.where(ok, a, 0.0)
@@ -82,6 +96,95 @@ def _covariance_all_valid(a, b):
 _BLOCK_VALUES = 1 << 16     # float64 values per block of rows (512 KiB): fits a core's cache
 
 
+def _covariance_by_rows(a, b):
+    """:func:`zonal_covariance` over the whole circle of ``a, b (..., J, I)`` (arrays or
+    :class:`LevelSlab`), a few latitude rows of one leading index at a time: each block is converted
+    to float64 and reduced while in cache, by the operations of :func:`_covariance_all_valid` (done in
+    place on the block's own copies: the same values) where the block has no missing value, else by
+    :func:`_covariance_masked`. Each row lies along contiguous memory as in the whole level, so its
+    sums add in the same order."""
+    shape = tuple(a.shape)
+    nj, n = shape[-2:]
+    cov = np.empty(shape[:-1])
+    frac = np.empty(shape[:-1])
+    step = max(1, _ROWS_VALUES // max(n, 1))
+    for lead in np.ndindex(*shape[:-2]):
+        for j0 in range(0, nj, step):
+            key = lead + (slice(j0, j0 + step),)
+            ab, bb = _rows(a, key), _rows(b, key)
+            sa = ab.sum(axis=-1)
+            sb = bb.sum(axis=-1)
+            # one NaN or inf anywhere makes the total non-finite (a finite total: every value is finite;
+            # an overflowing total only sends the block to the masked formula, which gives the same numbers)
+            if n and np.isfinite(sa.sum() + sb.sum()):
+                ab -= (sa / n)[:, None]
+                bb -= (sb / n)[:, None]
+                ab *= bb
+                cov[key] = ab.sum(axis=-1) / n
+                frac[key] = 1.0
+            else:
+                cov[key], frac[key] = _covariance_masked(ab, bb)
+    return cov, frac
+
+
+_ROWS_VALUES = 1 << 15      # float64 values per block of converted rows (256 KiB: both blocks fit in cache)
+
+
+def _rows(a, key):
+    """Rows ``a[key]`` (leading indices, then a slice of rows) as a 2-d float64 array of its own (a
+    :class:`LevelSlab` converts only these)."""
+    out = a[key] if isinstance(a, LevelSlab) else np.asarray(np.asarray(a)[key], dtype=np.float64)
+    if not out.flags.owndata:         # a view of the caller's float64 data: the block is updated in place
+        out = out.copy()
+    return out
+
+
+class LevelSlab:
+    """``arr (..., L, J, I)`` at one pressure level, ``(..., J, I)``, converted to float64 only where it
+    is read: ``slab[key]`` gives exactly ``slab_at_level(arr, ...)[key]`` (the same operations on the
+    same values) from the selected points only, ``np.asarray(slab)`` the whole level. Made by
+    :func:`level_slab`; lets a reducer convert a few rows at a time (cache-sized blocks) or only the
+    latitudes it looks at, instead of a float64 copy of the whole level."""
+
+    def __init__(self, arr, k, t=None):
+        self.arr, self.k, self.t = arr, k, t      # level k, or levels k = (a, b) mixed by t
+        self.shape = tuple(arr.shape[:-3] + arr.shape[-2:])
+        self.ndim = len(self.shape)
+
+    def __getitem__(self, key):
+        if self.t is None:
+            return np.asarray(self.arr[..., self.k, :, :][key], dtype=np.float64)
+        a, b = self.k
+        # fa + t * (fb - fa) in one float64 array, updated in place (the same operations on the same
+        # float64 values, so the same numbers, without four more temporaries)
+        fa = self.arr[..., a, :, :][key]
+        out = np.subtract(self.arr[..., b, :, :][key], fa, dtype=np.float64)   # float64(fb) - float64(fa)
+        out *= self.t
+        out += fa
+        return out
+
+    def __array__(self, dtype=None, copy=None):
+        out = self[...]
+        return out if dtype is None else out.astype(dtype, copy=False)
+
+
+def level_slab(arr, p, target, *, tolerance):
+    """:func:`slab_at_level` as a :class:`LevelSlab` (nothing converted yet), or None outside the levels."""
+    if p is None:
+        return None
+    p = np.asarray(p, dtype=float)
+    k = int(np.argmin(np.abs(p - target)))
+    if abs(p[k] - target) <= tolerance:
+        return LevelSlab(arr, k)
+    if target < p.min() or target > p.max():
+        return None
+    order = np.argsort(p)
+    j = int(np.searchsorted(p[order], target)) - 1
+    a, b = order[j], order[j + 1]
+    t = (np.log(target) - np.log(p[a])) / (np.log(p[b]) - np.log(p[a]))
+    return LevelSlab(arr, (a, b), t)
+
+
 def slab_at_level(arr, p, target, *, tolerance):
     """``arr (..., L, J, I)`` at pressure ``target`` -> ``(..., J, I)`` in float64, or None outside the levels.
 
@@ -89,26 +192,8 @@ def slab_at_level(arr, p, target, *, tolerance):
     (the rule of :func:`circtrack.kernels.vertical.at_level`). Only the one or two levels used are
     converted to float64 (``arr`` may be a float32 field of every level): the same numbers as
     converting the whole field first, without the copy."""
-    if p is None:
-        return None
-    p = np.asarray(p, dtype=float)
-    k = int(np.argmin(np.abs(p - target)))
-    if abs(p[k] - target) <= tolerance:
-        return np.asarray(arr[..., k, :, :], dtype=np.float64)
-    if target < p.min() or target > p.max():
-        return None
-    order = np.argsort(p)
-    j = int(np.searchsorted(p[order], target)) - 1
-    a, b = order[j], order[j + 1]
-    t = (np.log(target) - np.log(p[a])) / (np.log(p[b]) - np.log(p[a]))
-    # fa + t * (fb - fa) in one float64 array, updated in place (the same operations on the same
-    # float64 values, so the same numbers, without four more whole-level temporaries)
-    fa = arr[..., a, :, :]
-    out = np.array(arr[..., b, :, :], dtype=np.float64)
-    out -= fa
-    out *= t
-    out += fa
-    return out
+    slab = level_slab(arr, p, target, tolerance=tolerance)
+    return None if slab is None else slab[...]
 
 
 def humidity_filled_aloft(q, t):
