@@ -284,6 +284,30 @@ def test_per_longitude_peak_on_the_window_rows_equals_the_whole_hemisphere():
     assert seen == {"finite", "nan"}
 
 
+def test_per_longitude_peak_on_a_lazy_level_equals_the_float64_level():
+    """The waviness reads only the window's rows of its level, float32 as read at a level of the file
+    (interpolated levels in float64): the positions of the search on the whole float64 level."""
+    rng = np.random.default_rng(7)
+    lat = np.arange(-90.0, 90.1, 2.5)
+    lon = np.arange(0.0, 360.0, 15.0)
+    p = np.array([300.0, 500.0, 700.0, 850.0, 925.0])
+    jet = 40.0 + 15.0 * np.sin(np.deg2rad(lon))
+    base = 30.0 * np.exp(-((np.abs(lat)[:, None] - jet[None, :]) / 8.0) ** 2)
+    u = (base[None, None, None] + rng.standard_normal((3, 2, p.size, lat.size, lon.size))).astype(np.float32)
+    u[1, 0, 3, 60:62, 4] = np.nan
+    u[2, 1, :, :, 9] = np.nan
+    u[0, 0, 3, 20, 11] = np.inf
+    for arr in (u, u.astype(np.float64)):
+        for target in (850.0, 800.0):
+            slab = Z.level_slab(arr, p, target, tolerance=1.0)
+            whole = np.ascontiguousarray(ref_slab_at_level(arr, p, target, tolerance=1.0))
+            for hemi in ("NH", "SH"):
+                for window in ((15.0, 70.0), (0.0, 45.0), (60.0, 90.0)):
+                    got = Z.per_longitude_peak(slab, lat, hemi, window, min_fraction=0.5)
+                    want = ref_per_longitude_peak(whole, lat, hemi, window, min_fraction=0.5)
+                    assert np.array_equal(got, want, equal_nan=True), (target, hemi, window)
+
+
 # --------------------------------------------------------------------------- whole runs
 def test_rows_identical_to_float64_copies_with_missing_data_sectors_and_members(tmp_path, monkeypatch):
     paths = [write(full_set(4, seed=k, start=4 * k), tmp_path / f"f{k}.nc") for k in range(2)]

@@ -163,6 +163,13 @@ class LevelSlab:
         out += fa
         return out
 
+    def values(self, key):
+        """``self[key]`` where it needs no arithmetic (a level of ``arr``) in ``arr``'s own float type,
+        often float32 and a view (``np.float64`` of it is ``self[key]``); interpolated values as float64."""
+        if self.t is None and self.arr.dtype.kind == "f":
+            return self.arr[..., self.k, :, :][key]
+        return self[key]
+
     def __array__(self, dtype=None, copy=None):
         out = self[...]
         return out if dtype is None else out.astype(dtype, copy=False)
@@ -282,7 +289,8 @@ def fourier_amplitudes(y, lon, wavenumbers):
 
 
 def per_longitude_peak(y, lat, hemi, window, *, min_fraction):
-    """Latitude (poleward-positive degrees) of the maximum of ``y (..., J, I)`` at each longitude.
+    """Latitude (poleward-positive degrees) of the maximum of ``y (..., J, I)`` (an array or a
+    :class:`LevelSlab`: only the window's rows are read) at each longitude.
 
     ``lat (J,)`` ascending; ``hemi`` "NH" or "SH"; ``window`` ``(lo, hi)`` in degrees poleward. The
     maximum is refined with the 3-point parabola (:func:`circtrack.kernels.extrema.window_extremum`).
@@ -299,7 +307,13 @@ def per_longitude_peak(y, lat, hemi, window, *, min_fraction):
     if inwin.size:
         keep = slice(max(inwin[0] - 1, 0), inwin[-1] + 2)
         idx, x = idx[keep], x[keep]
-    yh = np.ascontiguousarray(np.moveaxis(np.asarray(y)[..., idx, :], -1, -2), dtype=float)   # (..., I, Jh)
+    # (a slice where the rows are consecutive: a view, one copy; float32 stays float32: its maximum
+    # is at the same index, and the refinement takes float64 of the same values)
+    rows = (..., _as_slice(idx), slice(None))
+    src = y.values(rows) if isinstance(y, LevelSlab) else np.asarray(y)[rows]
+    yh = np.ascontiguousarray(np.moveaxis(src, -1, -2))                               # (..., I, Jh)
+    if yh.dtype != np.float32:
+        yh = yh.astype(float, copy=False)
     ext = window_extremum(yh, x, window[0], window[1], kind="max")
     good = (ext.reason(min_fraction) == "ok") & np.isfinite(ext.position)
     return np.where(good, ext.position, np.nan)
@@ -319,3 +333,12 @@ def spread(values, mask=None):
         mean = v0.sum(axis=-1) / n
         var = np.where(ok, (v0 - mean[..., None]) ** 2, 0.0).sum(axis=-1) / n
     return np.sqrt(var), mean, n / max(v.shape[-1], 1)
+
+
+def _as_slice(idx):
+    """The index array ``idx`` as a slice when its indices are consecutive, ascending or descending
+    (a view instead of a copy)."""
+    if idx.size > 1 and abs(idx[1] - idx[0]) == 1 and np.all(np.diff(idx) == idx[1] - idx[0]):
+        stop = idx[-1] + (idx[1] - idx[0])
+        return slice(idx[0], stop if stop >= 0 else None, idx[1] - idx[0])
+    return idx
