@@ -251,6 +251,28 @@ def test_covariance_of_level_slabs_by_blocks_of_rows_equals_the_plain_formula(mo
                 assert np.array_equal(got[0], want[0], equal_nan=True) and np.array_equal(got[1], want[1])
 
 
+def test_fourier_amplitudes_of_a_lazy_level_slice_by_slice_equal_the_whole_level():
+    """The wave amplitudes convert their level one (J, I) slice at a time: numpy's stacked matrix
+    product is one product per slice, so the numbers are those of the whole float64 level at once;
+    slices without missing values skip the masking."""
+    rng = np.random.default_rng(8)
+    lon = np.arange(0.0, 360.0, 7.5)
+    p = np.array([200.0, 300.0, 500.0])
+    v = (rng.standard_normal((3, 2, p.size, 19, lon.size)) * 8).astype(np.float32)
+    v[1, 0, 1, 4, 10] = np.nan
+    v[2, 1, :, 7, :] = np.nan
+    v[0, 1, 1, 3, 3] = np.inf
+    for lons in (lon, np.mod(lon + 180.0, 360.0) - 180.0):
+        for target in (300.0, 250.0):
+            slab = Z.level_slab(v, p, target, tolerance=1.0)
+            got = Z.fourier_amplitudes(slab, lons, (1, 2, 3))
+            want = Z.fourier_amplitudes(np.asarray(slab), lons, (1, 2, 3))
+            assert got.shape == want.shape and np.array_equal(got, want, equal_nan=True), target
+            assert np.isnan(got[1, 0, 4]).all() and np.isfinite(got[1, 0, 5]).all()
+            np.testing.assert_allclose(got, ref_fourier_amplitudes(np.asarray(slab), lons, (1, 2, 3)), rtol=1e-12,
+                                       atol=1e-12)
+
+
 def ref_per_longitude_peak(y, lat, hemi, window, *, min_fraction):
     from circtrack.kernels.extrema import window_extremum
 

@@ -268,18 +268,34 @@ def fourier_amplitudes(y, lon, wavenumbers):
     longitude spacing around each point (half the distance to each neighbour, cyclic, in radians;
     ``sum w_i = 2 pi``). On a regular grid covering the circle this is the discrete Fourier transform,
     exact for ``k < I/2``. Rows with any missing longitude give NaN. Returns ``(..., K)``.
+
+    ``y`` may be a :class:`LevelSlab` ``(..., J, I)``: converted to float64 one ``(J, I)`` slice at a
+    time. numpy's matrix product of a stack is one product per ``(J, I)`` slice, so slice by slice
+    gives the same numbers.
     """
     lam = np.deg2rad(np.mod(np.asarray(lon, float), 360.0))
     order = np.argsort(lam, kind="stable")       # sum in one longitude order whatever the file's convention
     lam = lam[order]
-    y = np.asarray(y, dtype=np.float64)
-    if np.any(order != np.arange(order.size)):   # already in order (the usual grid): no reordered copy
-        y = y[..., order]
+    reorder = bool(np.any(order != np.arange(order.size)))   # in order (the usual grid): no reordered copy
     gaps = np.diff(np.concatenate([lam, [lam[0] + 2 * np.pi]]))          # to the next point, cyclic
     w = 0.5 * (gaps + np.roll(gaps, 1))
     ks = np.asarray(wavenumbers, dtype=float)
     cos = np.cos(ks[:, None] * lam[None, :]) * w[None, :]                # (K, I)
     sin = np.sin(ks[:, None] * lam[None, :]) * w[None, :]
+    if isinstance(y, LevelSlab) and y.ndim > 2:
+        out = np.empty(y.shape[:-1] + (ks.size,))
+        for lead in np.ndindex(*y.shape[:-2]):
+            out[lead] = _amplitudes(y[lead], order if reorder else None, cos, sin)
+        return out
+    return _amplitudes(np.asarray(y, dtype=np.float64), order if reorder else None, cos, sin)
+
+
+def _amplitudes(y, order, cos, sin):
+    """:func:`fourier_amplitudes` of float64 ``y (..., I)`` (longitudes reordered by ``order`` unless None)."""
+    if order is not None:
+        y = y[..., order]
+    if np.isfinite(np.sum(y)):       # no NaN or inf anywhere (else, or on overflow, row by row below)
+        return np.hypot(y @ cos.T / np.pi, y @ sin.T / np.pi)
     complete = np.isfinite(y).all(axis=-1)
     y0 = y if complete.all() else np.nan_to_num(y, nan=0.0)     # nothing to replace: no copy
     a = y0 @ cos.T / np.pi
