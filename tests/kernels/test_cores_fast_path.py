@@ -257,3 +257,17 @@ def test_candidate_list_picks_the_points_of_the_argmax_over_a_score(dtype):
         assert np.array_equal(got[0][has], want[0][has])                 # where there is a core, the same point
         assert np.array_equal(got[2], want[2])
     assert has.any() and not has.all()
+
+
+@pytest.mark.parametrize("band_width", [0.0, 15.0])
+def test_cores_without_reasons_are_the_same_cores(band_width):
+    """Summaries do not ask why a longitude has no core: the cores (positions, speeds, ok and merged
+    codes) are those of the search that works the reasons out; only the reasons of the others differ."""
+    u = fields(np.float32, lead=(3, 2))
+    full = K.cores_by_longitude(u, LAT, P, LON, WINDOWS, band_width=band_width, **SEARCH)[0]
+    lean = K.cores_by_longitude(u, LAT, P, LON, WINDOWS, band_width=band_width, reasons=False, **SEARCH)[0]
+    assert np.array_equal(full[..., :3, :], lean[..., :3, :], equal_nan=True)
+    kept = np.isin(full[..., 3, :], (K.OK, -K.MERGED, K.MERGED, K.WEAK, K.TOO_LITTLE))
+    assert np.array_equal(full[..., 3, :][kept], lean[..., 3, :][kept])
+    assert set(np.unique(lean[..., 3, :][~kept])) <= {K.UNEXPLAINED}
+    assert (~kept).any() and kept.any()
