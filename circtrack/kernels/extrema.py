@@ -38,6 +38,11 @@ class Extremum:
             out = np.where(bad, code, out)
         return out
 
+    def ok(self, min_fraction):
+        """``reason(min_fraction) == "ok"`` without building the flag strings."""
+        bad = self._flag(self.next_to_gap) | self._flag(self.at_pole) | self.at_edge
+        return ~(bad | (self.valid_fraction < min_fraction))
+
     def _flag(self, arr):
         return np.zeros(np.shape(self.position), bool) if arr is None else arr
 

@@ -155,10 +155,12 @@ class LevelSlab:
         if self.t is None:
             return np.asarray(self.arr[..., self.k, :, :][key], dtype=np.float64)
         a, b = self.k
-        # fa + t * (fb - fa) in one float64 array, updated in place (the same operations on the same
-        # float64 values, so the same numbers, without four more temporaries)
-        fa = self.arr[..., a, :, :][key]
-        out = np.subtract(self.arr[..., b, :, :][key], fa, dtype=np.float64)   # float64(fb) - float64(fa)
+        # fa + t * (fb - fa) in float64, updated in place (the same operations on the same float64
+        # values, so the same numbers); both levels converted first: plain float64 passes run faster
+        # than ones that cast as they go
+        fa = np.asarray(self.arr[..., a, :, :][key], dtype=np.float64)
+        out = np.array(self.arr[..., b, :, :][key], dtype=np.float64)
+        out -= fa
         out *= self.t
         out += fa
         return out
@@ -282,10 +284,12 @@ def fourier_amplitudes(y, lon, wavenumbers):
     ks = np.asarray(wavenumbers, dtype=float)
     cos = np.cos(ks[:, None] * lam[None, :]) * w[None, :]                # (K, I)
     sin = np.sin(ks[:, None] * lam[None, :]) * w[None, :]
-    if isinstance(y, LevelSlab) and y.ndim > 2:
+    if isinstance(y, LevelSlab) and y.ndim > 2 and not reorder:
+        # (a reordered copy is laid out by numpy with the longitudes outermost, a matrix that BLAS
+        # multiplies in another order, so reordered grids take the whole level as before)
         out = np.empty(y.shape[:-1] + (ks.size,))
         for lead in np.ndindex(*y.shape[:-2]):
-            out[lead] = _amplitudes(y[lead], order if reorder else None, cos, sin)
+            out[lead] = _amplitudes(y[lead], None, cos, sin)
         return out
     return _amplitudes(np.asarray(y, dtype=np.float64), order if reorder else None, cos, sin)
 
@@ -331,7 +335,7 @@ def per_longitude_peak(y, lat, hemi, window, *, min_fraction):
     if yh.dtype != np.float32:
         yh = yh.astype(float, copy=False)
     ext = window_extremum(yh, x, window[0], window[1], kind="max")
-    good = (ext.reason(min_fraction) == "ok") & np.isfinite(ext.position)
+    good = ext.ok(min_fraction) & np.isfinite(ext.position)
     return np.where(good, ext.position, np.nan)
 
 

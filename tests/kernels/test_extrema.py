@@ -145,3 +145,15 @@ def test_float32_search_and_all_finite_shortcut_give_the_float64_results():
                 for f in ("position", "value", "index", "at_edge", "valid_fraction", "next_to_gap", "at_pole"):
                     a, b = getattr(got, f), getattr(want, f)
                     assert a.dtype == b.dtype and np.array_equal(a, b, equal_nan=True), (f, lo, hi, kind)
+
+
+def test_ok_is_the_reason_ok():
+    rng = np.random.default_rng(13)
+    x = np.linspace(-90.0, 90.0, 37)
+    y = rng.normal(size=(50, x.size))
+    y[rng.random(y.shape) < 0.2] = np.nan
+    y[3] = np.nan
+    for lo, hi in ((-60.0, 60.0), (-90.0, 90.0), (0.0, 30.0)):
+        ext = window_extremum(y, x, lo, hi)
+        for frac in (0.0, 0.5, 0.9):
+            assert np.array_equal(ext.ok(frac), ext.reason(frac) == "ok")
