@@ -89,6 +89,7 @@ def _float64_first(fn):
 def use_references(monkeypatch):
     """The engine as it was: float64 copies of every slab, masked kernels always."""
     monkeypatch.setattr(Z, "slab_at_level", ref_slab_at_level)
+    monkeypatch.setattr(Z, "level_slab", ref_slab_at_level)          # a whole float64 level, not a lazy one
     monkeypatch.setattr(Z, "zonal_covariance", ref_zonal_covariance)
     monkeypatch.setattr(Z, "fourier_amplitudes", ref_fourier_amplitudes)
     make = P.Plan.make.__func__
@@ -217,6 +218,74 @@ def test_covariance_in_blocks_of_rows_equals_the_whole_array_at_once(monkeypatch
     assert np.array_equal(got[0], Z.zonal_covariance(a, b)[0])
 
 
+def test_level_slab_gives_the_numbers_of_slab_at_level_for_any_selection():
+    """A lazy level converts (or interpolates) only what is indexed: the same numbers as the whole level."""
+    rng = np.random.default_rng(5)
+    p = np.array([100.0, 250.0, 500.0, 850.0, 1000.0])
+    for dtype in (np.float32, np.float64):
+        arr = (rng.standard_normal((3, 2, 5, 7, 12)) * 20).astype(dtype)
+        arr[0, 1, 2, 3, :4] = np.nan
+        for target in (500.0, 503.0, 300.0, 925.0, 100.0, 1000.0, 50.0, 1100.0):
+            slab = Z.level_slab(arr, p, target, tolerance=5.0)
+            want = ref_slab_at_level(arr, p, target, tolerance=5.0)
+            if want is None:
+                assert slab is None
+                continue
+            assert slab.shape == want.shape
+            assert np.array_equal(np.asarray(slab), want, equal_nan=True)
+            for key in ((1, 0, slice(2, 5)), (..., [1, 4, 6], slice(None)), (2, 1, slice(0, 3), np.arange(12) > 5)):
+                got = slab[key]
+                assert got.dtype == np.float64 and np.array_equal(got, want[key], equal_nan=True), (target, key)
+
+
+@pytest.mark.parametrize("rows", [1, 7, 1 << 15])
+def test_covariance_of_level_slabs_by_blocks_of_rows_equals_the_plain_formula(monkeypatch, rows):
+    """The eddy flux reduces its level a few rows at a time (float64 blocks in cache, the fast formula
+    where a block has no missing value): the numbers of the masked formula on the whole float64 level."""
+    monkeypatch.setattr(Z, "_ROWS_VALUES", rows * 48)
+    rng = np.random.default_rng(6)
+    lon = np.arange(0.0, 360.0, 7.5)
+    p = np.array([100.0, 200.0, 300.0, 500.0, 850.0])
+    u = (rng.standard_normal((3, 2, p.size, 23, lon.size)) * 15 + 10).astype(np.float32)
+    v = (rng.standard_normal((3, 2, p.size, 23, lon.size)) * 5).astype(np.float32)
+    u[1, 0, 1:3, 4, 10:14] = np.nan                  # gaps on the levels used: masked rows among fast ones
+    v[2, 1, 2, 20:, :] = np.nan                      # whole rows missing
+    v[0, 0, 1, 7, 3] = np.inf
+    band = (lon > 100) & (lon < 200)
+    for target in (250.0, 300.0, 200.0):
+        for m in (None, band, np.zeros(lon.size, bool)):
+            for a, b in ((u, v), (v, u), (u, u.astype(np.float64))):
+                got = Z.zonal_covariance(Z.level_slab(a, p, target, tolerance=1.0),
+                                         Z.level_slab(b, p, target, tolerance=1.0), m)
+                # (the reference level made contiguous: each row summed along its memory, as the
+                # engine's float64 level always was; a strided view may be summed in another order)
+                want = ref_zonal_covariance(np.ascontiguousarray(ref_slab_at_level(a, p, target, tolerance=1.0)),
+                                            np.ascontiguousarray(ref_slab_at_level(b, p, target, tolerance=1.0)), m)
+                assert np.array_equal(got[0], want[0], equal_nan=True) and np.array_equal(got[1], want[1])
+
+
+def test_fourier_amplitudes_of_a_lazy_level_slice_by_slice_equal_the_whole_level():
+    """The wave amplitudes convert their level one (J, I) slice at a time: numpy's stacked matrix
+    product is one product per slice, so the numbers are those of the whole float64 level at once;
+    slices without missing values skip the masking."""
+    rng = np.random.default_rng(8)
+    lon = np.arange(0.0, 360.0, 7.5)
+    p = np.array([200.0, 300.0, 500.0])
+    v = (rng.standard_normal((3, 2, p.size, 19, lon.size)) * 8).astype(np.float32)
+    v[1, 0, 1, 4, 10] = np.nan
+    v[2, 1, :, 7, :] = np.nan
+    v[0, 1, 1, 3, 3] = np.inf
+    for lons in (lon, np.mod(lon + 180.0, 360.0) - 180.0):
+        for target in (300.0, 250.0):
+            slab = Z.level_slab(v, p, target, tolerance=1.0)
+            got = Z.fourier_amplitudes(slab, lons, (1, 2, 3))
+            want = Z.fourier_amplitudes(np.asarray(slab), lons, (1, 2, 3))
+            assert got.shape == want.shape and np.array_equal(got, want, equal_nan=True), target
+            assert np.isnan(got[1, 0, 4]).all() and np.isfinite(got[1, 0, 5]).all()
+            np.testing.assert_allclose(got, ref_fourier_amplitudes(np.asarray(slab), lons, (1, 2, 3)), rtol=1e-12,
+                                       atol=1e-12)
+
+
 def ref_per_longitude_peak(y, lat, hemi, window, *, min_fraction):
     from circtrack.kernels.extrema import window_extremum
 
@@ -248,6 +317,30 @@ def test_per_longitude_peak_on_the_window_rows_equals_the_whole_hemisphere():
                 seen.update({"finite"} if np.isfinite(got).any() else set())
                 seen.update({"nan"} if np.isnan(got).any() else set())
     assert seen == {"finite", "nan"}
+
+
+def test_per_longitude_peak_on_a_lazy_level_equals_the_float64_level():
+    """The waviness reads only the window's rows of its level, float32 as read at a level of the file
+    (interpolated levels in float64): the positions of the search on the whole float64 level."""
+    rng = np.random.default_rng(7)
+    lat = np.arange(-90.0, 90.1, 2.5)
+    lon = np.arange(0.0, 360.0, 15.0)
+    p = np.array([300.0, 500.0, 700.0, 850.0, 925.0])
+    jet = 40.0 + 15.0 * np.sin(np.deg2rad(lon))
+    base = 30.0 * np.exp(-((np.abs(lat)[:, None] - jet[None, :]) / 8.0) ** 2)
+    u = (base[None, None, None] + rng.standard_normal((3, 2, p.size, lat.size, lon.size))).astype(np.float32)
+    u[1, 0, 3, 60:62, 4] = np.nan
+    u[2, 1, :, :, 9] = np.nan
+    u[0, 0, 3, 20, 11] = np.inf
+    for arr in (u, u.astype(np.float64)):
+        for target in (850.0, 800.0):
+            slab = Z.level_slab(arr, p, target, tolerance=1.0)
+            whole = np.ascontiguousarray(ref_slab_at_level(arr, p, target, tolerance=1.0))
+            for hemi in ("NH", "SH"):
+                for window in ((15.0, 70.0), (0.0, 45.0), (60.0, 90.0)):
+                    got = Z.per_longitude_peak(slab, lat, hemi, window, min_fraction=0.5)
+                    want = ref_per_longitude_peak(whole, lat, hemi, window, min_fraction=0.5)
+                    assert np.array_equal(got, want, equal_nan=True), (target, hemi, window)
 
 
 # --------------------------------------------------------------------------- whole runs

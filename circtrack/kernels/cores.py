@@ -36,6 +36,7 @@ QUANTITIES = ("lat", "pressure", "speed", "reason")   # per core, in that order
 SUMMARY = ("split_share", "core_share", "subtropical_lat_spread", "subtropical_pressure_spread",
            "subtropical_share", "eddy_lat_spread", "eddy_pressure_spread", "eddy_share")
 MIN_LEVELS = 3          # a core needs a level above and below it inside the window
+UNEXPLAINED = 99        # reason of a column without a core when the caller did not ask why (reasons=False)
 
 
 @dataclass
@@ -82,7 +83,7 @@ def find_core(u, x, p, lat_window, p_window, *, min_fraction, min_speed=-np.inf)
     return Core(*(a[..., 0] for a in (c.lat, c.pressure, c.speed, c.j, c.k, c.reason)))
 
 
-def _find_cores(u, x, p, lat_window, p_window, *, min_fraction, min_speed):
+def _find_cores(u, x, p, lat_window, p_window, *, min_fraction, min_speed, reasons=True):
     """:func:`find_core` for every column ``i`` of ``u (..., L, J, I)`` -> :class:`Core` of shape ``(..., I)``.
 
     One implementation for both layouts: the zonal mean is ``I = 1``; at every longitude the
@@ -103,7 +104,7 @@ def _find_cores(u, x, p, lat_window, p_window, *, min_fraction, min_speed):
         return Core(nan, nan.copy(), nan.copy(), none, none.copy(), np.full(shape, TOO_LITTLE))
     w = u[..., k0:k1, j0:j1, :]                                # a view: no copy of the window
     w = w.reshape((int(np.prod(shape[:-1])),) + w.shape[-3:])  # (N, nl, nj, I)
-    lat, logp, speed, jj, kk, reason = _search(w, x[j0:j1], np.log(p[k0:k1]), min_fraction, min_speed)
+    lat, logp, speed, jj, kk, reason = _search(w, x[j0:j1], np.log(p[k0:k1]), min_fraction, min_speed, reasons)
     good = reason == OK
     return Core(*(a.reshape(shape) for a in (
         np.where(good, lat, np.nan), np.where(good, np.exp(logp), np.nan), np.where(good, speed, np.nan),
@@ -114,10 +115,12 @@ _DK, _DJ = np.array([0, 0, -1, 0, 1]), np.array([0, -1, 0, 1, 0])   # centre, eq
 BLOCK = 1 << 18     # grid points of a window searched at once (the temporaries stay in cache)
 
 
-def _search(w, xs, ls, min_fraction, min_speed):
+def _search(w, xs, ls, min_fraction, min_speed, reasons=True):
     """The search of :func:`find_core` in one window ``w (N, nl, nj, I)`` (any float type, any strides),
     ``xs (nj,)`` its latitudes and ``ls (nl,)`` its ln p. Returns ``(lat, ln p, speed, j, k, reason)``,
-    each ``(N, I)``, positions and speed unmasked (only meaningful where the reason is ok)."""
+    each ``(N, I)``, positions and speed unmasked (only meaningful where the reason is ok). With
+    ``reasons`` false the columns without a core get :data:`UNEXPLAINED` instead of the reason why
+    (the cores themselves are the same)."""
     n, nl, nj, ni = w.shape
     best = np.zeros((n, ni), np.intp)
     has = np.zeros((n, ni), bool)
@@ -137,8 +140,11 @@ def _search(w, xs, ls, min_fraction, min_speed):
     speed = uc + (ylat - uc) + (yp - uc)
     reason = np.full((n, ni), OK)
     none = ~has
-    if none.any():                      # why not: only for the columns without a core
-        wn = w.transpose(0, 3, 1, 2)[none]
+    if not reasons:
+        reason[none] = UNEXPLAINED
+    elif none.any():                    # why not: only for the columns without a core
+        tn, inn = np.nonzero(none)                          # (the same (t, i) order as a boolean mask)
+        wn = w[tn, :, :, inn]                               # (M, nl, nj): only those columns are read
         reason[none] = _no_core_reason(wn, np.isfinite(wn))
     with np.errstate(invalid="ignore"):
         reason = np.where(has & (speed < min_speed), WEAK, reason)
@@ -152,24 +158,40 @@ def _locate(w):
     n, nl, nj, ni = w.shape
     c = w[:, 1:-1, 1:-1]
     # neighbours' maxima (NaN propagates, so a missing neighbour makes no candidate): the six to the
-    # sides (>=), and the two above and below (>, a column constant with height has no core)
-    sides = np.maximum(w[:, :, :-2], w[:, :, 2:])                        # (n, nl, nj-2, I)
-    around = np.maximum(sides[:, :-2], sides[:, 1:-1])
-    np.maximum(around, sides[:, 2:], out=around)
-    vert = np.maximum(w[:, :-2, 1:-1], w[:, 2:, 1:-1])
+    # sides (>=), and the two above and below (>, a column constant with height has no core). The
+    # maximum above and below every point of the interior levels, then with the point itself (the
+    # three levels of each column), then of the columns on both sides: the same six points and two
+    # points (a maximum is exact), in fewer passes
+    updown = np.maximum(w[:, :-2], w[:, 2:])                             # (n, nl-2, nj, I)
+    three = np.maximum(updown, w[:, 1:-1])
+    around = np.maximum(three[:, :, :-2], three[:, :, 2:])               # (n, nl-2, nj-2, I)
+    vert = updown[:, :, 1:-1]
     with np.errstate(invalid="ignore"):
         cand = np.greater_equal(c, around)
         cand &= np.greater(c, vert)
-    # score: c at the candidates, -inf elsewhere (fmin ignores NaN: the same as a select, without one)
-    sel = cand.view(np.int8).astype(c.dtype)
-    sel -= 0.5
-    sel *= np.inf                                                        # +inf at candidates, -inf elsewhere
-    score = np.fmin(c, sel).reshape(n, -1, ni)
-    best = np.argmax(score, axis=1)                                      # first of the largest, k-major
-    has = np.isfinite(score[np.arange(n)[:, None], best, np.arange(ni)])
-    fin = np.isfinite(w).reshape(n, -1, ni).view(np.uint8)
-    count = np.add.reduce(fin, axis=1, dtype=np.uint16 if nl * nj < 1 << 16 else np.int64)
-    return best, has, count
+    # the candidates are few (a handful per column): the strongest of each column from their list
+    # (its first, k-major, among equal values, as an argmax over the flattened (k, j) would give)
+    # instead of a score at every point and an argmax across the window
+    m = (nl - 2) * (nj - 2)
+    f = np.flatnonzero(cand)                                             # C order of (n, nl-2, nj-2, I)
+    t, r = np.divmod(f, m * ni)
+    mm, i = np.divmod(r, ni)
+    vals = c[t, mm // (nj - 2), mm % (nj - 2), i]
+    col = t * ni + i
+    top = np.full(n * ni, -np.inf, dtype=c.dtype)
+    np.maximum.at(top, col, vals)
+    first = vals == top[col]
+    best = np.full(n * ni, m, np.intp)
+    np.minimum.at(best, col[first], mm[first])
+    best[best == m] = 0                                                  # no candidate: as argmax of all -inf
+    has = np.isfinite(top)                                               # (a +inf candidate is no core)
+    fin = np.isfinite(w)
+    if fin.all():
+        count = np.full((n, ni), nl * nj, np.uint16 if nl * nj < 1 << 16 else np.int64)
+    else:
+        count = np.add.reduce(fin.reshape(n, -1, ni).view(np.uint8), axis=1,
+                              dtype=np.uint16 if nl * nj < 1 << 16 else np.int64)
+    return best.reshape(n, ni), has.reshape(n, ni), count
 
 
 def _no_core_reason(w, fin):
@@ -250,13 +272,14 @@ def hemisphere_cores(u, lat, p, windows, *, min_fraction, min_speed):
     return _hemisphere_cores(u[..., None], lat, p, windows, min_fraction=min_fraction, min_speed=min_speed)[..., 0]
 
 
-def _hemisphere_cores(u, lat, p, windows, *, min_fraction, min_speed):
+def _hemisphere_cores(u, lat, p, windows, *, min_fraction, min_speed, reasons=True):
     """:func:`hemisphere_cores` for every column ``i`` of ``u (..., L, J, I)`` -> ``(..., 2, 2, 4, I)``."""
     out = np.full(u.shape[:-3] + (2, 2, 4, u.shape[-1]), np.nan)
     for h, hemi in enumerate(("NH", "SH")):
         idx, x = hemisphere_columns(lat, hemi)
         uh = u[..., _as_slice(idx), :]
-        cores = [_find_cores(uh, x, p, *windows[jet], min_fraction=min_fraction, min_speed=min_speed)
+        cores = [_find_cores(uh, x, p, *windows[jet], min_fraction=min_fraction, min_speed=min_speed,
+                             reasons=reasons)
                  for jet in JETS]
         merged = same_core(*cores)
         sign = 1.0 if hemi == "NH" else -1.0
@@ -279,13 +302,14 @@ def _as_slice(idx):
     return idx
 
 
-def cores_by_longitude(u, lat, p, lon, windows, *, band_width, min_fraction, min_speed):
+def cores_by_longitude(u, lat, p, lon, windows, *, band_width, min_fraction, min_speed, reasons=True):
     """Cores at every longitude (or longitude band) of ``u (..., L, J, I)``.
 
     Longitudes are grouped with :func:`longitude_bands` and ``u`` averaged over each band (finite
     values) before the search. Returns ``(cores, centres, band)``: ``cores (..., 2, 2, 4, B)`` as in
     :func:`hemisphere_cores` per band, the band centres ``(B,)`` (degrees east, 0..360) and the band
-    of each longitude ``(I,)``.
+    of each longitude ``(I,)``. With ``reasons`` false a band without a core has the reason
+    :data:`UNEXPLAINED` (not worked out: for summaries that only count cores; the cores are the same).
     """
     band, centres = longitude_bands(lon, band_width)
     # only the levels and latitudes some window holds (slices before any copy of the field)
@@ -307,7 +331,7 @@ def cores_by_longitude(u, lat, p, lon, windows, *, band_width, min_fraction, min
         u = band_means(u, band, centres.size)                  # (..., L, J, B)
     elif not np.array_equal(band, np.arange(band.size)):       # a longitude per band, bands in another order
         u = u[..., np.argsort(band, kind="stable")]            # (e.g. a grid from -180 and bands from 0 east)
-    cores = _hemisphere_cores(u, lat, p, windows, min_fraction=min_fraction, min_speed=min_speed)
+    cores = _hemisphere_cores(u, lat, p, windows, min_fraction=min_fraction, min_speed=min_speed, reasons=reasons)
     return cores, centres, band
 
 

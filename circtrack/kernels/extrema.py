@@ -38,6 +38,11 @@ class Extremum:
             out = np.where(bad, code, out)
         return out
 
+    def ok(self, min_fraction):
+        """``reason(min_fraction) == "ok"`` without building the flag strings."""
+        bad = self._flag(self.next_to_gap) | self._flag(self.at_pole) | self.at_edge
+        return ~(bad | (self.valid_fraction < min_fraction))
+
     def _flag(self, arr):
         return np.zeros(np.shape(self.position), bool) if arr is None else arr
 
@@ -87,7 +92,9 @@ def window_extremum(y, x, lo, hi, *, kind="max"):
         ``at_edge`` is True (the true extremum may lie outside the window). All-NaN windows give
         NaN position/value and index -1.
     """
-    y = np.asarray(y, dtype=float)
+    y = np.asarray(y)
+    if y.dtype != np.float32:     # float32 stays: its maximum is at the same index as in float64
+        y = np.asarray(y, dtype=float)
     x = np.asarray(x, dtype=float)
     lead = y.shape[:-1]
     inwin = np.flatnonzero((x >= lo) & (x <= hi))
@@ -98,16 +105,23 @@ def window_extremum(y, x, lo, hi, *, kind="max"):
     i0, i1 = inwin[0], inwin[-1]
     w = y[..., i0:i1 + 1]
     s = w if kind == "max" else -w
-    finite = np.isfinite(s)
-    valid_fraction = finite.mean(axis=-1)
-    has = finite.any(axis=-1)
-    filled = np.where(finite, s, -np.inf)
-    k = np.argmax(filled, axis=-1)
+    if np.isfinite(np.sum(s)):
+        # no NaN or inf anywhere (the sum would not be finite; an overflowing one takes the path
+        # below): nothing to fill, every point valid; the same index, the same numbers
+        valid_fraction = np.ones(lead)
+        has = np.ones(lead, bool)
+        k = np.argmax(s, axis=-1)
+    else:
+        finite = np.isfinite(s)
+        valid_fraction = finite.mean(axis=-1)
+        has = finite.any(axis=-1)
+        filled = np.where(finite, s, -np.inf)
+        k = np.argmax(filled, axis=-1)
     idx = k + i0
     at_edge = has & ((k == 0) | (k == w.shape[-1] - 1))
     km = np.clip(idx - 1, 0, y.shape[-1] - 1)
     kp = np.clip(idx + 1, 0, y.shape[-1] - 1)
-    take = lambda j: np.take_along_axis(y, j[..., None], -1)[..., 0]  # noqa: E731
+    take = lambda j: np.take_along_axis(y, j[..., None], -1)[..., 0].astype(float)  # noqa: E731
     yc, ym, yp = take(idx), take(km), take(kp)
     xv, yv = parabola_vertex(x[km], x[idx], x[kp], ym, yc, yp)
     refine = has & ~at_edge & np.isfinite(ym) & np.isfinite(yp)

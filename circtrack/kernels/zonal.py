@@ -20,7 +20,8 @@ def zonal_covariance(a, b, mask=None):
 
     Parameters
     ----------
-    a, b : arrays ``(..., I)``.
+    a, b : arrays ``(..., I)``, or :class:`LevelSlab` ``(..., J, I)`` (reduced a few latitude rows at
+        a time, converted to float64 in cache-sized blocks: no float64 copy of the whole level).
     mask : boolean ``(I,)`` selecting a longitude band, or None for the whole circle.
 
     Returns
@@ -32,7 +33,15 @@ def zonal_covariance(a, b, mask=None):
     -----
     The deviations are taken from the mean of the same valid longitudes, so ``[a'] = [b'] = 0`` on
     the points used and ``[ab] = [a][b] + [a'b']`` holds exactly (Peixoto & Oort 1992, ch. 4).
+    Every row (one latitude of one time step) is reduced on its own along contiguous memory, so
+    blocks of rows give the same numbers as the whole array at once.
     """
+    if isinstance(a, LevelSlab) or isinstance(b, LevelSlab):
+        if mask is None:
+            return _covariance_by_rows(a, b)
+        # a band: numpy lays ``a[..., mask]`` out with the longitudes outermost and sums its rows in
+        # another order than a contiguous block's; the whole float64 level keeps those numbers
+        a, b = np.asarray(a), np.asarray(b)
     a = np.asarray(a, dtype=np.float64)
     b = np.asarray(b, dtype=np.float64)
     if mask is not None:
@@ -40,6 +49,11 @@ def zonal_covariance(a, b, mask=None):
     fast = _covariance_all_valid(a, b)
     if fast is not None:
         return fast
+    return _covariance_masked(a, b)
+
+
+def _covariance_masked(a, b):
+    """:func:`zonal_covariance` of float64 ``a, b (..., I)`` with missing values left out."""
     ok = np.isfinite(a) & np.isfinite(b)
     n = ok.sum(axis=-1)
     a0 = np.where(ok, a, 0.0)
@@ -82,6 +96,104 @@ def _covariance_all_valid(a, b):
 _BLOCK_VALUES = 1 << 16     # float64 values per block of rows (512 KiB): fits a core's cache
 
 
+def _covariance_by_rows(a, b):
+    """:func:`zonal_covariance` over the whole circle of ``a, b (..., J, I)`` (arrays or
+    :class:`LevelSlab`), a few latitude rows of one leading index at a time: each block is converted
+    to float64 and reduced while in cache, by the operations of :func:`_covariance_all_valid` (done in
+    place on the block's own copies: the same values) where the block has no missing value, else by
+    :func:`_covariance_masked`. Each row lies along contiguous memory as in the whole level, so its
+    sums add in the same order."""
+    shape = tuple(a.shape)
+    nj, n = shape[-2:]
+    cov = np.empty(shape[:-1])
+    frac = np.empty(shape[:-1])
+    step = max(1, _ROWS_VALUES // max(n, 1))
+    for lead in np.ndindex(*shape[:-2]):
+        for j0 in range(0, nj, step):
+            key = lead + (slice(j0, j0 + step),)
+            ab, bb = _rows(a, key), _rows(b, key)
+            sa = ab.sum(axis=-1)
+            sb = bb.sum(axis=-1)
+            # one NaN or inf anywhere makes the total non-finite (a finite total: every value is finite;
+            # an overflowing total only sends the block to the masked formula, which gives the same numbers)
+            if n and np.isfinite(sa.sum() + sb.sum()):
+                ab -= (sa / n)[:, None]
+                bb -= (sb / n)[:, None]
+                ab *= bb
+                cov[key] = ab.sum(axis=-1) / n
+                frac[key] = 1.0
+            else:
+                cov[key], frac[key] = _covariance_masked(ab, bb)
+    return cov, frac
+
+
+_ROWS_VALUES = 1 << 15      # float64 values per block of converted rows (256 KiB: both blocks fit in cache)
+
+
+def _rows(a, key):
+    """Rows ``a[key]`` (leading indices, then a slice of rows) as a 2-d float64 array of its own (a
+    :class:`LevelSlab` converts only these)."""
+    out = a[key] if isinstance(a, LevelSlab) else np.asarray(np.asarray(a)[key], dtype=np.float64)
+    if not out.flags.owndata:         # a view of the caller's float64 data: the block is updated in place
+        out = out.copy()
+    return out
+
+
+class LevelSlab:
+    """``arr (..., L, J, I)`` at one pressure level, ``(..., J, I)``, converted to float64 only where it
+    is read: ``slab[key]`` gives exactly ``slab_at_level(arr, ...)[key]`` (the same operations on the
+    same values) from the selected points only, ``np.asarray(slab)`` the whole level. Made by
+    :func:`level_slab`; lets a reducer convert a few rows at a time (cache-sized blocks) or only the
+    latitudes it looks at, instead of a float64 copy of the whole level."""
+
+    def __init__(self, arr, k, t=None):
+        self.arr, self.k, self.t = arr, k, t      # level k, or levels k = (a, b) mixed by t
+        self.shape = tuple(arr.shape[:-3] + arr.shape[-2:])
+        self.ndim = len(self.shape)
+
+    def __getitem__(self, key):
+        if self.t is None:
+            return np.asarray(self.arr[..., self.k, :, :][key], dtype=np.float64)
+        a, b = self.k
+        # fa + t * (fb - fa) in float64, updated in place (the same operations on the same float64
+        # values, so the same numbers); both levels converted first: plain float64 passes run faster
+        # than ones that cast as they go
+        fa = np.asarray(self.arr[..., a, :, :][key], dtype=np.float64)
+        out = np.array(self.arr[..., b, :, :][key], dtype=np.float64)
+        out -= fa
+        out *= self.t
+        out += fa
+        return out
+
+    def values(self, key):
+        """``self[key]`` where it needs no arithmetic (a level of ``arr``) in ``arr``'s own float type,
+        often float32 and a view (``np.float64`` of it is ``self[key]``); interpolated values as float64."""
+        if self.t is None and self.arr.dtype.kind == "f":
+            return self.arr[..., self.k, :, :][key]
+        return self[key]
+
+    def __array__(self, dtype=None, copy=None):
+        out = self[...]
+        return out if dtype is None else out.astype(dtype, copy=False)
+
+
+def level_slab(arr, p, target, *, tolerance):
+    """:func:`slab_at_level` as a :class:`LevelSlab` (nothing converted yet), or None outside the levels."""
+    if p is None:
+        return None
+    p = np.asarray(p, dtype=float)
+    k = int(np.argmin(np.abs(p - target)))
+    if abs(p[k] - target) <= tolerance:
+        return LevelSlab(arr, k)
+    if target < p.min() or target > p.max():
+        return None
+    order = np.argsort(p)
+    j = int(np.searchsorted(p[order], target)) - 1
+    a, b = order[j], order[j + 1]
+    t = (np.log(target) - np.log(p[a])) / (np.log(p[b]) - np.log(p[a]))
+    return LevelSlab(arr, (a, b), t)
+
+
 def slab_at_level(arr, p, target, *, tolerance):
     """``arr (..., L, J, I)`` at pressure ``target`` -> ``(..., J, I)`` in float64, or None outside the levels.
 
@@ -89,26 +201,8 @@ def slab_at_level(arr, p, target, *, tolerance):
     (the rule of :func:`circtrack.kernels.vertical.at_level`). Only the one or two levels used are
     converted to float64 (``arr`` may be a float32 field of every level): the same numbers as
     converting the whole field first, without the copy."""
-    if p is None:
-        return None
-    p = np.asarray(p, dtype=float)
-    k = int(np.argmin(np.abs(p - target)))
-    if abs(p[k] - target) <= tolerance:
-        return np.asarray(arr[..., k, :, :], dtype=np.float64)
-    if target < p.min() or target > p.max():
-        return None
-    order = np.argsort(p)
-    j = int(np.searchsorted(p[order], target)) - 1
-    a, b = order[j], order[j + 1]
-    t = (np.log(target) - np.log(p[a])) / (np.log(p[b]) - np.log(p[a]))
-    # fa + t * (fb - fa) in one float64 array, updated in place (the same operations on the same
-    # float64 values, so the same numbers, without four more whole-level temporaries)
-    fa = arr[..., a, :, :]
-    out = np.array(arr[..., b, :, :], dtype=np.float64)
-    out -= fa
-    out *= t
-    out += fa
-    return out
+    slab = level_slab(arr, p, target, tolerance=tolerance)
+    return None if slab is None else slab[...]
 
 
 def humidity_filled_aloft(q, t):
@@ -176,20 +270,37 @@ def fourier_amplitudes(y, lon, wavenumbers):
     longitude spacing around each point (half the distance to each neighbour, cyclic, in radians;
     ``sum w_i = 2 pi``). On a regular grid covering the circle this is the discrete Fourier transform,
     exact for ``k < I/2``. Rows with any missing longitude give NaN. Returns ``(..., K)``.
+
+    ``y`` may be a :class:`LevelSlab` ``(..., J, I)``: converted to float64 one ``(J, I)`` slice at a
+    time. numpy's matrix product of a stack is one product per ``(J, I)`` slice, so slice by slice
+    gives the same numbers.
     """
     lam = np.deg2rad(np.mod(np.asarray(lon, float), 360.0))
     order = np.argsort(lam, kind="stable")       # sum in one longitude order whatever the file's convention
     lam = lam[order]
-    y = np.asarray(y, dtype=np.float64)
-    if np.any(order != np.arange(order.size)):   # already in order (the usual grid): no reordered copy
-        # C order like an array in order: BLAS sums a differently laid-out array in another order,
-        # and the same field must give the same bits from either longitude convention
-        y = np.ascontiguousarray(y[..., order])
+    reorder = bool(np.any(order != np.arange(order.size)))   # in order (the usual grid): no reordered copy
     gaps = np.diff(np.concatenate([lam, [lam[0] + 2 * np.pi]]))          # to the next point, cyclic
     w = 0.5 * (gaps + np.roll(gaps, 1))
     ks = np.asarray(wavenumbers, dtype=float)
     cos = np.cos(ks[:, None] * lam[None, :]) * w[None, :]                # (K, I)
     sin = np.sin(ks[:, None] * lam[None, :]) * w[None, :]
+    if isinstance(y, LevelSlab) and y.ndim > 2 and not reorder:
+        # (reordered grids take the whole level, reordered into one C-ordered copy, as before)
+        out = np.empty(y.shape[:-1] + (ks.size,))
+        for lead in np.ndindex(*y.shape[:-2]):
+            out[lead] = _amplitudes(y[lead], None, cos, sin)
+        return out
+    return _amplitudes(np.asarray(y, dtype=np.float64), order if reorder else None, cos, sin)
+
+
+def _amplitudes(y, order, cos, sin):
+    """:func:`fourier_amplitudes` of float64 ``y (..., I)`` (longitudes reordered by ``order`` unless None)."""
+    if order is not None:
+        # C order like an array in order: BLAS sums a differently laid-out array in another order,
+        # and the same field must give the same bits from either longitude convention
+        y = np.ascontiguousarray(y[..., order])
+    if np.isfinite(np.sum(y)):       # no NaN or inf anywhere (else, or on overflow, row by row below)
+        return np.hypot(y @ cos.T / np.pi, y @ sin.T / np.pi)
     complete = np.isfinite(y).all(axis=-1)
     y0 = y if complete.all() else np.nan_to_num(y, nan=0.0)     # nothing to replace: no copy
     a = y0 @ cos.T / np.pi
@@ -199,7 +310,8 @@ def fourier_amplitudes(y, lon, wavenumbers):
 
 
 def per_longitude_peak(y, lat, hemi, window, *, min_fraction):
-    """Latitude (poleward-positive degrees) of the maximum of ``y (..., J, I)`` at each longitude.
+    """Latitude (poleward-positive degrees) of the maximum of ``y (..., J, I)`` (an array or a
+    :class:`LevelSlab`: only the window's rows are read) at each longitude.
 
     ``lat (J,)`` ascending; ``hemi`` "NH" or "SH"; ``window`` ``(lo, hi)`` in degrees poleward. The
     maximum is refined with the 3-point parabola (:func:`circtrack.kernels.extrema.window_extremum`).
@@ -216,9 +328,15 @@ def per_longitude_peak(y, lat, hemi, window, *, min_fraction):
     if inwin.size:
         keep = slice(max(inwin[0] - 1, 0), inwin[-1] + 2)
         idx, x = idx[keep], x[keep]
-    yh = np.ascontiguousarray(np.moveaxis(np.asarray(y)[..., idx, :], -1, -2), dtype=float)   # (..., I, Jh)
+    # (a slice where the rows are consecutive: a view, one copy; float32 stays float32: its maximum
+    # is at the same index, and the refinement takes float64 of the same values)
+    rows = (..., _as_slice(idx), slice(None))
+    src = y.values(rows) if isinstance(y, LevelSlab) else np.asarray(y)[rows]
+    yh = np.ascontiguousarray(np.moveaxis(src, -1, -2))                               # (..., I, Jh)
+    if yh.dtype != np.float32:
+        yh = yh.astype(float, copy=False)
     ext = window_extremum(yh, x, window[0], window[1], kind="max")
-    good = (ext.reason(min_fraction) == "ok") & np.isfinite(ext.position)
+    good = ext.ok(min_fraction) & np.isfinite(ext.position)
     return np.where(good, ext.position, np.nan)
 
 
@@ -236,3 +354,12 @@ def spread(values, mask=None):
         mean = v0.sum(axis=-1) / n
         var = np.where(ok, (v0 - mean[..., None]) ** 2, 0.0).sum(axis=-1) / n
     return np.sqrt(var), mean, n / max(v.shape[-1], 1)
+
+
+def _as_slice(idx):
+    """The index array ``idx`` as a slice when its indices are consecutive, ascending or descending
+    (a view instead of a copy)."""
+    if idx.size > 1 and abs(idx[1] - idx[0]) == 1 and np.all(np.diff(idx) == idx[1] - idx[0]):
+        stop = idx[-1] + (idx[1] - idx[0])
+        return slice(idx[0], stop if stop >= 0 else None, idx[1] - idx[0])
+    return idx

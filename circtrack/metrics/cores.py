@@ -133,8 +133,10 @@ def per_longitude_reducer(slabs, plev, lon, masks, cfg, lat):
     """In-task: jet cores at every longitude (band), summarised per sector to ``(T, *extra, 2, 8, S)``
     (hemisphere x :data:`circtrack.kernels.cores.SUMMARY`)."""
     u = slabs["ua"]                                              # (T, *extra, L, J, I)
+    # the summaries count cores and spread their positions: why a longitude has none is not asked
     cores, _, band = K.cores_by_longitude(u, lat, plev["ua"], lon, windows(cfg),
-                                          band_width=cfg["cores"]["longitude_band_deg"], **_search(cfg))
+                                          band_width=cfg["cores"]["longitude_band_deg"], reasons=False,
+                                          **_search(cfg))
     nb = cores.shape[-1]
     out = np.full(u.shape[:-3] + (2, len(K.SUMMARY), len(masks)), np.nan)
     for s, m in enumerate(masks):

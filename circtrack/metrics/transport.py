@@ -122,8 +122,9 @@ def eddy_momentum_reducer(slabs, plev, lon, masks, cfg):
     """
     level = float(cfg["eddies"]["momentum_level_hpa"])
     tol = cfg["run"]["level_tolerance_hpa"]
-    u = Z.slab_at_level(slabs["ua"], plev["ua"], level, tolerance=tol)
-    v = Z.slab_at_level(slabs["va"], plev["va"], level, tolerance=tol)
+    # the level as lazy slabs: the covariance converts (or interpolates) a few rows at a time
+    u = Z.level_slab(slabs["ua"], plev["ua"], level, tolerance=tol)
+    v = Z.level_slab(slabs["va"], plev["va"], level, tolerance=tol)
     shape = slabs["ua"].shape[:-3] + (slabs["ua"].shape[-2], 2, len(masks))
     out = np.full(shape, np.nan)
     if u is None or v is None:

@@ -64,8 +64,10 @@ def jet_waviness_reducer(slabs, plev, lon, masks, cfg, lat):
     """In-task: per-longitude jet latitudes reduced to ``(T, *extra, 2, 3, S)``: for NH/SH the
     standard deviation and mean of the latitudes (poleward degrees) and the share of the band's
     longitudes where a jet was found."""
-    u = Z.slab_at_level(slabs["ua"], plev["ua"], float(cfg["waves"]["jet_level_hpa"]),
-                        tolerance=cfg["run"]["level_tolerance_hpa"])
+    # a lazy level: the per-longitude search reads only its window's rows (float32 as read at a level
+    # of the file)
+    u = Z.level_slab(slabs["ua"], plev["ua"], float(cfg["waves"]["jet_level_hpa"]),
+                     tolerance=cfg["run"]["level_tolerance_hpa"])
     lead = slabs["ua"].shape[:-3]
     out = np.full(lead + (2, 3, len(masks)), np.nan)
     if u is None:
@@ -106,8 +108,9 @@ def compute_waviness(fields, cfg):
 def planetary_wave_reducer(slabs, plev, lon, masks, cfg):
     """In-task: amplitudes of zonal wavenumbers 1-3 of v at waves.level_hpa per latitude,
     ``(T, *extra, J, K, S)``; full circle only (the sectors' entries are NaN)."""
-    v = Z.slab_at_level(slabs["va"], plev["va"], float(cfg["waves"]["level_hpa"]),
-                        tolerance=cfg["run"]["level_tolerance_hpa"])
+    # a lazy level: the amplitudes convert it one time step at a time
+    v = Z.level_slab(slabs["va"], plev["va"], float(cfg["waves"]["level_hpa"]),
+                     tolerance=cfg["run"]["level_tolerance_hpa"])
     lead = slabs["va"].shape[:-3]
     out = np.full(lead + (slabs["va"].shape[-2], len(WAVENUMBERS), len(masks)), np.nan)
     if v is not None and Z.covers_circle(lon):      # a regional grid has no zonal wavenumbers: NaN

@@ -217,3 +217,57 @@ def test_sector_summaries_equal_the_plain_search(band_width):
         assert_same(got[..., s], K.summarize(cores, K.bands_in(m, band, cores.shape[-1])))
     table = MC.by_longitude_reducer({"ua": u}, {"ua": P}, LON, masks, cfg, LAT)
     assert_same(table[..., 0], cores)
+
+
+def ref_locate(w):
+    """The candidate search as it was: a score at every point (c at candidates, -inf elsewhere) and an
+    argmax across the window, k-major."""
+    w = np.asarray(w)
+    n, nl, nj, ni = w.shape
+    c = w[:, 1:-1, 1:-1]
+    sides = np.maximum(w[:, :, :-2], w[:, :, 2:])
+    around = np.maximum(np.maximum(sides[:, :-2], sides[:, 1:-1]), sides[:, 2:])
+    vert = np.maximum(w[:, :-2, 1:-1], w[:, 2:, 1:-1])
+    with np.errstate(invalid="ignore"):
+        cand = (c >= around) & (c > vert)
+    score = np.where(cand, c, -np.inf).reshape(n, -1, ni)
+    best = np.argmax(score, axis=1)
+    has = np.isfinite(np.take_along_axis(score, best[:, None], 1)[:, 0])
+    count = np.isfinite(w).reshape(n, -1, ni).sum(axis=1)
+    return best, has, count
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_candidate_list_picks_the_points_of_the_argmax_over_a_score(dtype):
+    """The strongest candidate taken from the list of candidates (few per column) is the point the
+    argmax over a score at every point gives: ties (the first k-major), several candidates per column,
+    none, NaN and infinite values, views with negative strides, several time steps at once."""
+    rng = np.random.default_rng(12)
+    w = np.round(rng.normal(size=(3, 6, 13, 40)) * 3).astype(dtype)      # rounded: many ties and candidates
+    w[0, 2, 5, 3] = np.nan
+    w[1, :, :, 7] = np.nan
+    w[2, 3, 6, 9] = np.inf
+    w[2, 1, 4, 11] = -np.inf
+    w[1, 2, 3:9, 13] = 50.0                                              # a plateau of equal maxima
+    w[0, :, :, 20] = 1.0                                                 # constant: no candidate
+    for arr in (w, w[:, :, ::-1], w[:, 1:, 2:-1], w[1:2]):
+        got, want = K._locate(arr), ref_locate(arr)
+        has = want[1]
+        assert np.array_equal(got[1], has)
+        assert np.array_equal(got[0][has], want[0][has])                 # where there is a core, the same point
+        assert np.array_equal(got[2], want[2])
+    assert has.any() and not has.all()
+
+
+@pytest.mark.parametrize("band_width", [0.0, 15.0])
+def test_cores_without_reasons_are_the_same_cores(band_width):
+    """Summaries do not ask why a longitude has no core: the cores (positions, speeds, ok and merged
+    codes) are those of the search that works the reasons out; only the reasons of the others differ."""
+    u = fields(np.float32, lead=(3, 2))
+    full = K.cores_by_longitude(u, LAT, P, LON, WINDOWS, band_width=band_width, **SEARCH)[0]
+    lean = K.cores_by_longitude(u, LAT, P, LON, WINDOWS, band_width=band_width, reasons=False, **SEARCH)[0]
+    assert np.array_equal(full[..., :3, :], lean[..., :3, :], equal_nan=True)
+    kept = np.isin(full[..., 3, :], (K.OK, -K.MERGED, K.MERGED, K.WEAK, K.TOO_LITTLE))
+    assert np.array_equal(full[..., 3, :][kept], lean[..., 3, :][kept])
+    assert set(np.unique(lean[..., 3, :][~kept])) <= {K.UNEXPLAINED}
+    assert (~kept).any() and kept.any()

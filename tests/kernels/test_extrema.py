@@ -123,3 +123,37 @@ def test_clipped_vertex_value_matches_clipped_position():
     xv, yv = parabola_vertex(*x, *y)
     assert xv == 2.0
     assert yv == pytest.approx((xv - 5.0) ** 2)    # 9, the parabola at the returned position
+
+
+def test_float32_search_and_all_finite_shortcut_give_the_float64_results():
+    """float32 input is searched as float32 (its maximum sits at the same index) and a window without
+    missing values skips the filling: every field equals the float64 search of the same values."""
+    rng = np.random.default_rng(11)
+    x = np.concatenate([[-90.0], np.sort(rng.uniform(-89, 89, 40)), [90.0]])
+    y = np.round(rng.normal(size=(6, 5, x.size)) * 4, 1).astype(np.float32)   # rounded: ties
+    gaps = y.copy()
+    gaps[0, 1, 10] = np.nan
+    gaps[1, :, 20:] = np.nan
+    gaps[2, 3, :] = np.nan
+    gaps[3, 0, 5] = np.inf
+    gaps[4, 2, 7] = -np.inf
+    for arr in (y, gaps):
+        for lo, hi in ((-60.0, 60.0), (-90.0, 90.0), (10.0, 89.0)):
+            for kind in ("max", "min"):
+                got = window_extremum(arr, x, lo, hi, kind=kind)
+                want = window_extremum(arr.astype(np.float64), x, lo, hi, kind=kind)
+                for f in ("position", "value", "index", "at_edge", "valid_fraction", "next_to_gap", "at_pole"):
+                    a, b = getattr(got, f), getattr(want, f)
+                    assert a.dtype == b.dtype and np.array_equal(a, b, equal_nan=True), (f, lo, hi, kind)
+
+
+def test_ok_is_the_reason_ok():
+    rng = np.random.default_rng(13)
+    x = np.linspace(-90.0, 90.0, 37)
+    y = rng.normal(size=(50, x.size))
+    y[rng.random(y.shape) < 0.2] = np.nan
+    y[3] = np.nan
+    for lo, hi in ((-60.0, 60.0), (-90.0, 90.0), (0.0, 30.0)):
+        ext = window_extremum(y, x, lo, hi)
+        for frac in (0.0, 0.5, 0.9):
+            assert np.array_equal(ext.ok(frac), ext.reason(frac) == "ok")
