@@ -149,3 +149,24 @@ def test_many_files_read_headers_and_run_tasks_on_one_early_pool(tmp_path, pools
     out = engine.track(paths, _cfg(processes=2), label="x")
     assert [w for w, _ in pools] == [True]      # the headers and the tasks: one fork
     assert csv_rows(out) == csv_rows(ref) and PL._EARLY == {}
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="pipe sizes are Linux's")
+def test_workers_write_a_whole_result_into_the_pipe():
+    import fcntl
+
+    runner = PL.Runner(_cfg(processes=2), 4)
+    try:
+        runner.run(_worker_state, [1, 2])
+        fd = runner.pool._result_queue._writer.fileno()
+        assert fcntl.fcntl(fd, getattr(fcntl, "F_GETPIPE_SZ", 1032)) >= min(PL.RESULT_PIPE_BYTES, _pipe_max())
+    finally:
+        runner.close()
+
+
+def _pipe_max():
+    try:
+        with open("/proc/sys/fs/pipe-max-size") as f:
+            return int(f.read())
+    except OSError:
+        return 65536
