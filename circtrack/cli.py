@@ -12,7 +12,29 @@ from circtrack.cli_support import (OneLineGroup, _fail, apply_storage, apply_uni
 from circtrack.errors import UsageError
 
 
-@click.group(cls=OneLineGroup, context_settings={"help_option_names": ["-h", "--help"]})
+class LazyGroup(OneLineGroup):
+    """The group with its other commands imported when asked for: ``circtrack track`` loads neither
+    the commands on CSV files (trend, season, spread, plot) nor zonal-means nor update, and
+    ``circtrack metrics`` or ``--version`` not xarray (tests/test_imports.py)."""
+
+    LAZY = {"trend": ("circtrack.cli_findings", "trend"), "season": ("circtrack.cli_findings", "season"),
+            "spread": ("circtrack.cli_findings", "spread"), "plot": ("circtrack.cli_findings", "plot"),
+            "zonal-means": ("circtrack.cli_fields", "zonal_means"), "update": ("circtrack.update", "make_command")}
+
+    def list_commands(self, ctx):
+        return sorted(set(self.commands) | set(self.LAZY))
+
+    def get_command(self, ctx, name):
+        if name not in self.commands and name in self.LAZY:
+            import importlib
+
+            module, attr = self.LAZY[name]
+            cmd = getattr(importlib.import_module(module), attr)
+            self.add_command(cmd() if attr == "make_command" else cmd, name)
+        return super().get_command(ctx, name)
+
+
+@click.group(cls=LazyGroup, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="circtrack")
 @click.option("--debug", is_flag=True, help="Show tracebacks on errors.")
 def main(debug):
@@ -150,17 +172,6 @@ def metrics_cmd(fmt):
     for g in groups().values():
         click.echo(f"{g.id}: {g.long_name}: {', '.join(g.metric_ids)}")
         click.echo(f"    source: {g.reference}")
-
-
-from circtrack.cli_findings import plot, season, spread, trend  # noqa: E402
-from circtrack.cli_fields import zonal_means  # noqa: E402
-
-for _cmd in (trend, season, spread, plot, zonal_means):
-    main.add_command(_cmd)
-
-from circtrack.update import make_command as _make_update  # noqa: E402
-
-main.add_command(_make_update())
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -113,3 +113,46 @@ def test_every_module_imports_first():
             "print('\\n'.join(bad))\n")
     out = subprocess.run([sys.executable, "-c", code, *names], capture_output=True, text=True, timeout=600)
     assert out.returncode == 0 and out.stdout.strip() == "", out.stdout + out.stderr
+
+
+HEAVY = ("xarray", "pandas", "dask", "scipy", "matplotlib", "distributed", "h5py", "netCDF4")
+
+
+def _loaded_after(code, *argv):
+    """The HEAVY libraries loaded when ``code`` has run in a fresh interpreter (also when it exits)."""
+    probe = ("import atexit, sys\n"
+             f"atexit.register(lambda: print('LOADED', *[m for m in {HEAVY!r} if m in sys.modules]))\n"
+             + code)
+    out = subprocess.run([sys.executable, "-c", probe, *argv], capture_output=True, text=True, timeout=600)
+    line = [x for x in out.stdout.splitlines() if x.startswith("LOADED")]
+    assert line, out.stdout + out.stderr
+    return set(line[-1].split()[1:]), out.stdout
+
+
+def test_the_command_line_loads_its_commands_and_libraries_when_used():
+    """Importing the CLI (every command starts so) loads no data library: `circtrack metrics`,
+    --version and --help stay quick, and `track` does not load the other commands' modules."""
+    assert _loaded_after("import circtrack.cli")[0] == set()
+    cli = "import sys; from circtrack.cli import main\nsys.argv[0] = 'circtrack'\nmain()"
+    assert _loaded_after(cli, "metrics")[0] == set()
+    assert _loaded_after(cli, "--version")[0] == set()
+    help_text = _loaded_after(cli, "--help")[1]            # lists every command, also those loaded lazily
+    assert all(f"  {c} " in help_text for c in ("track", "update", "zonal-means", "trend", "plot", "spread"))
+
+
+def test_track_never_loads_plotting_statistics_or_a_cluster(tmp_path):
+    """A default `circtrack track` (worker processes): this process needs xarray for the detection,
+    but never matplotlib, scipy or dask.distributed, nor the modules of the other commands."""
+    from tests.conftest import make_dataset, write
+
+    ds = make_dataset(6)
+    paths = [write(ds.isel(time=slice(k, k + 3)), tmp_path / f"part_{k}.nc") for k in (0, 3)]
+    code = ("import sys; from circtrack.cli import main\nsys.argv[0] = 'circtrack'\n"
+            "import atexit\n"
+            "atexit.register(lambda: print('OTHER', *[m for m in sys.modules if m.startswith("
+            "('circtrack.update', 'circtrack.cli_findings', 'circtrack.cli_fields', 'circtrack.plot'))]))\n"
+            "main()\n")
+    loaded, out = _loaded_after(code, "track", *paths, "-o", str(tmp_path / "out.csv"), "-q", "--label", "x")
+    assert (tmp_path / "out.csv").exists()
+    assert not loaded & {"scipy", "matplotlib", "distributed"}, loaded
+    assert [x for x in out.splitlines() if x.startswith("OTHER")] == ["OTHER"], out

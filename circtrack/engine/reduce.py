@@ -265,6 +265,19 @@ def one_blas_thread():
     threadpool_limits(limits=1, user_api="blas")
 
 
+def warm_up(hdf5=False):
+    """What a worker forked ahead of its tasks does while the parent still plans (pool.start_early):
+    BLAS on one thread, and with netCDF-4/HDF5 inputs the imports of the read paths (h5py for the
+    direct chunk reads, inputs/chunks.py: about 0.15 s per process), so that the first task does not."""
+    one_blas_thread()
+    if hdf5:
+        try:
+            import h5py  # noqa: F401
+            import netCDF4  # noqa: F401
+        except ImportError:
+            pass
+
+
 def reduce_chunks(jobs):
     """One task over several small chunks (e.g. one-day files), to keep the per-task cost small."""
     one_blas_thread()

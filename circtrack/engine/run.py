@@ -22,7 +22,7 @@ from circtrack.engine.features import Detector
 from circtrack.engine.gather import BatchReader
 from circtrack.engine.longitudes import LongitudeTable, add_to_plan
 from circtrack.engine.locate import locate
-from circtrack.engine.pool import Runner
+from circtrack.engine.pool import Runner, close_early, start_early
 from circtrack.engine.prepare import available_metrics
 from circtrack.engine.progress import Progress
 from circtrack.engine.reduce import close_cached
@@ -47,16 +47,20 @@ def track(paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None
     kw = dict(metric_ids=metric_ids, label=label, sectors=sectors, overrides=overrides, progress=progress,
               on_bad_file=on_bad_file, only_times=only_times, time_step_days=time_step_days,
               cores_by_longitude=cores_by_longitude)
-    run = Run(paths, cfg, stdin=stdin, **kw)          # plans: coordinates and attributes only
-    groups = P.member_groups(run.infos)
-    if not groups:
-        out = run.execute()
-    else:
-        labels = sorted(groups)
-        outs = [Run(groups[m], cfg, **kw).execute() for m in labels]
-        out = merge_members(labels, outs, run.skipped)
-        for name in outs[0].tables:
-            out.tables[name] = merge_members(labels, [o.tables[name] for o in outs])
+    try:
+        # plans: coordinates and attributes only (the worker processes are forked first: start_early)
+        run = Run(paths, cfg, stdin=stdin, early_workers=True, **kw)
+        groups = P.member_groups(run.infos)
+        if not groups:
+            out = run.execute()
+        else:
+            labels = sorted(groups)
+            outs = [Run(groups[m], cfg, early_workers=True, **kw).execute() for m in labels]
+            out = merge_members(labels, outs, run.skipped)
+            for name in outs[0].tables:
+                out.tables[name] = merge_members(labels, [o.tables[name] for o in outs])
+    finally:
+        close_early()        # workers forked early that no task needed
     if run.left_out:
         out.provenance["metrics_left_out"] = run.left_out
     return out
@@ -109,7 +113,7 @@ class Headers:
         except BaseException:
             self.cancel()
             raise
-        self.runner.close()
+        self.runner.release()                  # its workers go on to the run's tasks
         self.runner = None
         return {p: h for g, hs in zip(self.groups, heads) for p, h in zip(g, hs)}
 
@@ -134,11 +138,15 @@ class Run:
 
     ``all_levels`` (roles) reads those roles on every pressure level, whatever the metrics need; with
     :meth:`zonal_means` this gives the fields behind a latitude-pressure cross-section.
+
+    ``early_workers``: fork the worker processes before planning (pool.start_early), so they are
+    ready for the first tasks; the caller stops them with ``pool.close_early()`` if no task took them
+    (:func:`track` does). Not with ``only_times`` (a chunk or two, run in this process).
     """
 
     def __init__(self, paths, cfg, *, metric_ids=None, label=None, sectors=(), overrides=None,
                  progress=None, on_bad_file=None, stdin=None, only_times=None, time_step_days=None,
-                 all_levels=(), cores_by_longitude=False):
+                 all_levels=(), cores_by_longitude=False, early_workers=False):
         self.cfg = cfg
         self.label = check_label(label)
         self.progress = progress = progress or Progress(quiet=True)
@@ -146,12 +154,21 @@ class Run:
         sectors = merge_sectors(sectors, cfg)
         with profile.timed(STAGES, "locate files"):
             files = locate(paths, stdin=stdin, cfg=cfg)
-        headers = read_headers(files, cfg)     # in worker processes, while this process goes on
+        early = early_workers and only_times is None and time_step_days is None
         try:
-            self._plan(files, cfg, headers, metric_ids, sectors, overrides, on_bad_file, only_times,
-                       time_step_days, all_levels, cores_by_longitude)
-        finally:
-            headers.cancel()                   # after an error: the header pool stops at once
+            if early:
+                with profile.timed(STAGES, "fork worker processes early"):
+                    start_early(cfg, files)    # they warm up while this process plans
+            headers = read_headers(files, cfg)     # in worker processes, while this process goes on
+            try:
+                self._plan(files, cfg, headers, metric_ids, sectors, overrides, on_bad_file, only_times,
+                           time_step_days, all_levels, cores_by_longitude)
+            finally:
+                headers.cancel()               # after an error: the header pool stops at once
+        except BaseException:
+            if early:
+                close_early()
+            raise
 
     def _plan(self, files, cfg, headers, metric_ids, sectors, overrides, on_bad_file, only_times,
               time_step_days, all_levels, cores_by_longitude):
@@ -259,12 +276,14 @@ class Run:
                 self.progress.step(t1, nt)
         except BaseException:
             runner.close(interrupted=True)       # stop the workers first, so a waiting prefetch returns
+            close_early()
             reader.join(timeout=30)
             close_cached()
             raise
         else:
             reader.join()
             runner.close()
+            close_early()                        # forked early, but the run had a single task
             close_cached()
         self.step_notes = step_notes
         with profile.timed(STAGES, "rows"):
