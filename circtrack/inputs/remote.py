@@ -350,19 +350,33 @@ class RawObject:
 
     def read_direct(self, name, index):
         """``variables[name][index]`` with its chunks fetched at once (:mod:`circtrack.inputs.ranges`)
-        and inflated by :mod:`circtrack.inputs.chunks` as for files on disk, or None (the caller
-        then reads through :attr:`variables`; the fetched chunks stay for that read)."""
+        and inflated by :mod:`circtrack.inputs.chunks` straight from the fetched buffers (no copy
+        through HDF5's file driver), as for files on disk; or None (the caller then reads through
+        :attr:`variables`; the fetched chunks stay for that read)."""
         if self._rfile is None:
             return None
         from circtrack.inputs import chunks
-        from circtrack.inputs.ranges import chunk_ranges
+        from circtrack.inputs.ranges import chunk_table
 
         dset = self._nc.variables[name]._h5ds
-        ranges = chunk_ranges(dset, index)
-        if not ranges:
+        lay = chunks.dataset_layout(dset, self._layouts)
+        if lay is None:
             return None
+        table = chunk_table(dset, index)
+        if not table:
+            return None
+        ranges = [(off, size) for off, size, _mask in table.values()]
         self._rfile.prefetch(ranges, self._request_bytes)
-        arr = chunks.read_dataset(dset, index, self._layouts)
+        view = self._rfile.view
+
+        def stored(offset):
+            entry = table.get(offset)
+            if entry is None:                # a chunk never written: HDF5 gives its fill values
+                return None
+            data = view(entry[0], entry[1])
+            return None if data is None else (entry[2], data)
+
+        arr = chunks.read_stored(lay, index, stored)
         if arr is not None:
             self._rfile.release(ranges)
         return arr
