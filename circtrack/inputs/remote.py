@@ -38,7 +38,7 @@ ZARR_SUFFIX = ".zarr"
 _CLASSIC_MAGIC = (b"CDF\x01", b"CDF\x02", b"CDF\x05")
 
 DEFAULTS = {"anonymous": False, "endpoint_url": "", "cache_dir": "", "block_bytes": 16 * 2 ** 20,
-            "cached_blocks": 4, "request_bytes": 16 * 2 ** 20}
+            "cached_blocks": 4, "request_bytes": 16 * 2 ** 20, "direct_http": True}
 
 
 def is_url(path) -> bool:
@@ -409,7 +409,7 @@ def open_raw(url, cfg):
     from circtrack.inputs.ranges import RangeFile
 
     fs, path = filesystem(url, cfg)
-    rfile = RangeFile(target, fs, path)
+    rfile = RangeFile(target, fs, path, bool(_settings(cfg)["direct_http"]))
     try:
         nc = h5netcdf.legacyapi.Dataset(rfile, "r")
     except BaseException:
