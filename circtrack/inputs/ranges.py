@@ -28,6 +28,8 @@ import numpy as np
 MERGE_GAP = 256 * 1024        # chunks closer than this are fetched in one run (the gap is read and dropped)
 SETTLE_S = 30.0               # fetches in flight when an object is closed: waited for this long at most
 MAX_PENDING = 16              # background fetches kept waiting for their read, at most
+IN_FLIGHT = 4                 # requests of one object at once: the first variable's pieces arrive first, and
+                              # it is decoded while the next one's arrive
 MAX_CHUNKS = 100_000          # more chunks than this in one read: no prefetch (each chunk read as it comes)
 
 
@@ -39,6 +41,7 @@ class RangeFile(io.RawIOBase):
         super().__init__()
         self._f, self._fs, self._path = f, fs, path
         self._direct_http = direct_http             # S3 ranges through the standard library's HTTP client
+        self._slots = None                          # at most IN_FLIGHT requests at once (on the event loop)
         self._pos = 0
         self._starts, self._data = [], []       # sorted extents: start offset -> bytes (memoryviews)
         self._bufs = []                         # per extent its pool buffer (None: not from the pool)
@@ -145,11 +148,18 @@ class RangeFile(io.RawIOBase):
                 pieces.append((a, b))
                 jobs.append((a, view[a - run[0]:b - run[0]]))
 
+        async def one(a, out):
+            import asyncio
+
+            if self._slots is None:
+                self._slots = asyncio.Semaphore(IN_FLIGHT)
+            async with self._slots:             # first come, first served: the first read's pieces go first
+                return await read_range(self._fs, self._path, a, out, self._direct_http)
+
         async def fetch_all():
             import asyncio
 
-            return await asyncio.gather(*[read_range(self._fs, self._path, a, out, self._direct_http)
-                                          for a, out in jobs], return_exceptions=True)
+            return await asyncio.gather(*[one(a, out) for a, out in jobs], return_exceptions=True)
         return runs, pieces, bufs, fetch_all()
 
     def start(self, ranges, request_bytes):

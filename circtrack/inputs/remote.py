@@ -83,6 +83,10 @@ def storage_options(url, cfg):
     s = _settings(cfg)
     if _scheme(url) == "s3":
         opts = {"anon": bool(s["anonymous"])}
+        if not opts["anon"]:
+            # requests are signed with SigV4 either way; this makes presigned URLs (the chunk reads of
+            # inputs/ranges.py) SigV4 too, not the legacy SigV2 that newer AWS regions refuse
+            opts["config_kwargs"] = {"signature_version": "s3v4"}
         ep = endpoint(cfg)
         if ep:
             opts["endpoint_url"] = ep
