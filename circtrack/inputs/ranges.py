@@ -6,13 +6,17 @@ Out: a read-only file object (:class:`RangeFile`) that h5py reads through, and v
 (:class:`PrefetchingVariable`) whose reads are served from memory.
 
 :func:`chunk_ranges` finds the byte ranges of the HDF5 chunks an index touches (h5py's chunk
-query, from the chunk index alone: no data read). :meth:`RangeFile.start` merges neighbouring
-chunks into runs and starts fetching them in pieces of at most ``request_bytes`` on fsspec's
-event loop (``_cat_ranges``: every piece concurrently), in the background, so a task starts the
-fetches of all its variables before it reads the first. The read waits for the pieces it needs
-(:meth:`RangeFile.prefetch`), HDF5 decodes the chunks from memory as it does from a local file
-(values identical to a local read), and the pieces are released. Memory: the compressed bytes of
-one task's reads, never the object.
+query, from the chunk index alone: no data read; :func:`chunk_table` also their chunk offsets and
+filter masks). :meth:`RangeFile.start` merges neighbouring chunks into runs and starts fetching
+each run into a buffer of its own (a per-process pool of reused buffers), in pieces of at most
+``request_bytes``, on fsspec's event loop in the background (at most ``IN_FLIGHT`` requests of an
+object at once, in the order asked), so a task starts the fetches of all its variables before it
+reads the first. A piece is :func:`read_range`: on s3fs a presigned GET on the standard library's
+HTTP client received straight into the buffer, else (or when that fails) through s3fs. The read
+waits for the runs it needs (:meth:`RangeFile.prefetch`); deflate chunks are decoded by
+inputs/chunks.py straight from views of the buffers (:meth:`RangeFile.view`), anything else by
+HDF5 reading through this file object (values identical to a local read either way); then the
+buffers go back to the pool. Memory: the compressed bytes of one task's reads, never the object.
 """
 
 from __future__ import annotations
