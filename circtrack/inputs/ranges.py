@@ -429,22 +429,37 @@ def _proxied(parts):
 
 
 def _get_into(st, parts, start, out):
-    """One range GET on a kept-alive connection, the body received into ``out``; raises _Fallback."""
+    """One range GET on a kept-alive connection, the body received into ``out``; raises _Fallback.
+    A kept-alive connection the server has closed meanwhile (it may, when idle) is replaced by a new
+    one once, before giving up."""
     import http.client
 
-    n = len(out)
     where = (parts.scheme, parts.netloc)
     with _DIRECT_LOCK:
         free = st["conns"].setdefault(where, [])
         conn = free.pop() if free else None
-    if conn is None:
-        if parts.scheme == "https":
-            import ssl
+    if conn is not None:
+        try:
+            return _get_on(st, where, conn, parts, start, out)
+        except (http.client.RemoteDisconnected, ConnectionResetError, BrokenPipeError):
+            pass                                   # stale: the server closed it while it waited here
+        except Exception as e:  # noqa: BLE001 - whatever went wrong, s3fs takes the request over
+            raise _Fallback(str(e)) from e
+    if parts.scheme == "https":
+        import ssl
 
-            conn = http.client.HTTPSConnection(parts.hostname, parts.port, timeout=DIRECT_TIMEOUT_S,
-                                               context=ssl.create_default_context())
-        else:
-            conn = http.client.HTTPConnection(parts.hostname, parts.port, timeout=DIRECT_TIMEOUT_S)
+        conn = http.client.HTTPSConnection(parts.hostname, parts.port, timeout=DIRECT_TIMEOUT_S,
+                                           context=ssl.create_default_context())
+    else:
+        conn = http.client.HTTPConnection(parts.hostname, parts.port, timeout=DIRECT_TIMEOUT_S)
+    try:
+        return _get_on(st, where, conn, parts, start, out)
+    except Exception as e:  # noqa: BLE001 - whatever went wrong, s3fs takes the request over
+        raise _Fallback(str(e)) from e
+
+
+def _get_on(st, where, conn, parts, start, out):
+    n = len(out)
     try:
         conn.request("GET", f"{parts.path}?{parts.query}", headers={"Range": f"bytes={start}-{start + n - 1}"})
         resp = conn.getresponse()
@@ -460,9 +475,9 @@ def _get_into(st, parts, start, out):
             pos += k
         if not resp.isclosed():
             resp.read()
-    except Exception as e:  # noqa: BLE001 - whatever went wrong, s3fs takes the request over
+    except BaseException:
         conn.close()
-        raise _Fallback(str(e)) from e
+        raise
     if resp.will_close:
         conn.close()
     else:

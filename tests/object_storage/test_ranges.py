@@ -347,3 +347,24 @@ def test_behind_a_proxy_the_direct_path_steps_aside(monkeypatch):
     assert G._proxied(urlsplit("http://s3.example.org/b/k"))
     monkeypatch.setenv("no_proxy", "s3.example.org")
     assert not G._proxied(urlsplit("http://s3.example.org/b/k"))
+
+
+def test_a_kept_alive_connection_the_server_closed_is_replaced(open_aws, local_data):
+    """A connection kept alive but closed by the server while idle: the next GET opens a new one
+    instead of giving the direct path up for the process."""
+    url = f"s3://{BUCKET}/reanalysis/daily/uv_01.nc"
+    blob = local_data["files"][1].read_bytes()
+    _fetch(url, 0, 10, True)
+    import http.client
+    from urllib.parse import urlsplit
+
+    import socket
+
+    endpoint = urlsplit(open_aws.endpoint)
+    stale = http.client.HTTPConnection(endpoint.hostname, endpoint.port)
+    ours, theirs = socket.socketpair()
+    theirs.close()                           # as if the server had hung up while it waited
+    stale.sock = ours
+    G._DIRECT[os.getpid()]["conns"][("http", endpoint.netloc)] = [stale]
+    got, data = _fetch(url, 100, 1000, True)
+    assert data == blob[100:1100] and not G._DIRECT[os.getpid()]["off"]
