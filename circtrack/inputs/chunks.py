@@ -353,3 +353,66 @@ def _unshuffle(data, size):
         out[:, j] = raw[j * n:(j + 1) * n]
     tail = raw[n * size:]                 # bytes left over when the chunk is not whole elements
     return out.tobytes() + tail.tobytes() if tail.size else out.reshape(-1)
+
+
+# --------------------------------------------------------------------------- chunks the caller fetched
+# For objects in object storage (inputs/remote.py): the caller fetches the stored chunks itself, in
+# a few large range requests, and hands them over as buffers; decoded here without HDF5 reading them
+# again through its file driver (values identical to :func:`read_dataset`).
+def dataset_layout(dset, layouts):
+    """The :class:`_Layout` of an h5py dataset the caller holds open (cached in ``layouts``, a dict
+    kept per open file), or None when its chunks are not deflate(+shuffle) floats or the fast
+    inflater is missing."""
+    if _inflate_lib is None:
+        return None
+    if dset.name not in layouts:
+        try:
+            layouts[dset.name] = _Layout(dset) if _eligible(dset) else None
+        except (OSError, KeyError, ValueError, TypeError):
+            layouts[dset.name] = None
+    return layouts[dset.name]
+
+
+def read_stored(lay, index, stored):
+    """``variable[index]`` from chunks as stored: ``stored(offset)`` gives ``(filter_mask, buffer)``
+    of the chunk at ``offset`` (the chunk's first element, a tuple), or None when the chunk has no
+    stored bytes (never written). None when a chunk is missing or cannot be decoded, or the index is
+    one :func:`read` does not take: the caller then reads the usual way."""
+    if _inflate_lib is None:
+        return None
+    axes = _axes(index, lay.shape)
+    if axes is None:
+        return None
+    out = np.empty([len(src) for src, _ in axes], dtype=lay.dtype)
+    per_axis = [_pieces(src, c) for (src, _), c in zip(axes, lay.chunks)]
+    try:
+        for combo in itertools.product(*per_axis):
+            got = stored(tuple(k * c for (k, _, _), c in zip(combo, lay.chunks)))
+            if got is None:
+                return None
+            chunk = decode_stored(got[0], got[1], lay)
+            out[tuple(o for _, o, _ in combo)] = chunk[tuple(i for _, _, i in combo)]
+    except (ValueError, zlib.error, getattr(_inflate_lib, "error", zlib.error)):
+        return None
+    return out[tuple(slice(None) if keep else 0 for _, keep in axes)]
+
+
+def decode_stored(mask, data, lay):
+    """A chunk from its stored bytes (any buffer; ``mask``: HDF5's filter mask of the chunk) -> an
+    array of the chunk's shape, as :func:`_decode` does. The array never refers to ``data`` (the
+    caller may reuse that buffer)."""
+    done = False
+    for pos in reversed(range(len(lay.filters))):
+        if mask & (1 << pos):             # this filter was skipped for this chunk
+            continue
+        if lay.filters[pos] == FILTER_DEFLATE:
+            data = _inflate_lib.decompress(data)
+        else:
+            data = _unshuffle(data, lay.dtype.itemsize)
+        done = True
+    if not done:
+        data = bytes(data)
+    arr = np.frombuffer(data, dtype=lay.dtype)
+    if arr.size != int(np.prod(lay.chunks)):
+        raise ValueError("chunk size does not match the layout")
+    return arr.reshape(lay.chunks)

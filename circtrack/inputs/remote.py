@@ -38,7 +38,7 @@ ZARR_SUFFIX = ".zarr"
 _CLASSIC_MAGIC = (b"CDF\x01", b"CDF\x02", b"CDF\x05")
 
 DEFAULTS = {"anonymous": False, "endpoint_url": "", "cache_dir": "", "block_bytes": 16 * 2 ** 20,
-            "cached_blocks": 4, "request_bytes": 16 * 2 ** 20}
+            "cached_blocks": 4, "request_bytes": 16 * 2 ** 20, "direct_http": True}
 
 
 def is_url(path) -> bool:
@@ -83,6 +83,10 @@ def storage_options(url, cfg):
     s = _settings(cfg)
     if _scheme(url) == "s3":
         opts = {"anon": bool(s["anonymous"])}
+        if not opts["anon"]:
+            # requests are signed with SigV4 either way; this makes presigned URLs (the chunk reads of
+            # inputs/ranges.py) SigV4 too, not the legacy SigV2 that newer AWS regions refuse
+            opts["config_kwargs"] = {"signature_version": "s3v4"}
         ep = endpoint(cfg)
         if ep:
             opts["endpoint_url"] = ep
@@ -350,19 +354,33 @@ class RawObject:
 
     def read_direct(self, name, index):
         """``variables[name][index]`` with its chunks fetched at once (:mod:`circtrack.inputs.ranges`)
-        and inflated by :mod:`circtrack.inputs.chunks` as for files on disk, or None (the caller
-        then reads through :attr:`variables`; the fetched chunks stay for that read)."""
+        and inflated by :mod:`circtrack.inputs.chunks` straight from the fetched buffers (no copy
+        through HDF5's file driver), as for files on disk; or None (the caller then reads through
+        :attr:`variables`; the fetched chunks stay for that read)."""
         if self._rfile is None:
             return None
         from circtrack.inputs import chunks
-        from circtrack.inputs.ranges import chunk_ranges
+        from circtrack.inputs.ranges import chunk_table
 
         dset = self._nc.variables[name]._h5ds
-        ranges = chunk_ranges(dset, index)
-        if not ranges:
+        lay = chunks.dataset_layout(dset, self._layouts)
+        if lay is None:
             return None
+        table = chunk_table(dset, index)
+        if not table:
+            return None
+        ranges = [(off, size) for off, size, _mask in table.values()]
         self._rfile.prefetch(ranges, self._request_bytes)
-        arr = chunks.read_dataset(dset, index, self._layouts)
+        view = self._rfile.view
+
+        def stored(offset):
+            entry = table.get(offset)
+            if entry is None:                # a chunk never written: HDF5 gives its fill values
+                return None
+            data = view(entry[0], entry[1])
+            return None if data is None else (entry[2], data)
+
+        arr = chunks.read_stored(lay, index, stored)
         if arr is not None:
             self._rfile.release(ranges)
         return arr
@@ -395,7 +413,7 @@ def open_raw(url, cfg):
     from circtrack.inputs.ranges import RangeFile
 
     fs, path = filesystem(url, cfg)
-    rfile = RangeFile(target, fs, path)
+    rfile = RangeFile(target, fs, path, bool(_settings(cfg)["direct_http"]))
     try:
         nc = h5netcdf.legacyapi.Dataset(rfile, "r")
     except BaseException:
