@@ -331,17 +331,7 @@ def _as_slice(ix):
 def _decode(dset, offset, lay):
     """The chunk at ``offset`` as an array of the chunk's shape (edge chunks are stored whole)."""
     mask, data = dset.id.read_direct_chunk(offset)
-    for pos in reversed(range(len(lay.filters))):
-        if mask & (1 << pos):             # this filter was skipped for this chunk
-            continue
-        if lay.filters[pos] == FILTER_DEFLATE:
-            data = _inflate_lib.decompress(data)
-        else:
-            data = _unshuffle(data, lay.dtype.itemsize)
-    arr = np.frombuffer(data, dtype=lay.dtype)
-    if arr.size != int(np.prod(lay.chunks)):
-        raise ValueError("chunk size does not match the layout")
-    return arr.reshape(lay.chunks)
+    return decode_stored(mask, data, lay)
 
 
 def _unshuffle(data, size):
@@ -367,7 +357,7 @@ def dataset_layout(dset, layouts):
         return None
     if dset.name not in layouts:
         try:
-            layouts[dset.name] = _Layout(dset) if _eligible(dset) else None
+            layouts[dset.name] = _Layout(dset) if _eligible(dset, stored=False) else None
         except (OSError, KeyError, ValueError, TypeError):
             layouts[dset.name] = None
     return layouts[dset.name]
@@ -384,17 +374,15 @@ def read_stored(lay, index, stored):
     if axes is None:
         return None
     out = np.empty([len(src) for src, _ in axes], dtype=lay.dtype)
-    per_axis = [_pieces(src, c) for (src, _), c in zip(axes, lay.chunks)]
     try:
-        for combo in itertools.product(*per_axis):
-            got = stored(tuple(k * c for (k, _, _), c in zip(combo, lay.chunks)))
+        for offset, o_idx, c_idx in _chunks_met(axes, lay):
+            got = stored(offset)
             if got is None:
                 return None
-            chunk = decode_stored(got[0], got[1], lay)
-            out[tuple(o for _, o, _ in combo)] = chunk[tuple(i for _, _, i in combo)]
+            out[o_idx] = decode_stored(got[0], got[1], lay)[c_idx]
     except (ValueError, zlib.error, getattr(_inflate_lib, "error", zlib.error)):
         return None
-    return out[tuple(slice(None) if keep else 0 for _, keep in axes)]
+    return _squeezed(out, axes)
 
 
 def decode_stored(mask, data, lay):
