@@ -215,7 +215,7 @@ def humidity_filled_aloft(q, t):
     ``filled`` boolean like ``q``.
     """
     q = np.asarray(q, dtype=np.float64)
-    filled = ~np.isfinite(q) & np.isfinite(np.asarray(t, dtype=np.float64))
+    filled = ~np.isfinite(q) & np.isfinite(t)        # (a float32 value is finite as float64 too)
     if not filled.any():
         return q, filled
     return np.where(filled, 0.0, q), filled
@@ -230,22 +230,30 @@ def moist_static_energy(t, z, q):
     return e
 
 
-def column_sums(v, e, p_pa, top="zero_at_top_level"):
+def column_sums(v, e, p_pa, top="zero_at_top_level", all_valid=None):
     """Pressure-weighted column sums for the energy transport, ``(..., L, J, I)`` -> four ``(..., J, I)``.
 
     Returns ``(sum w v e, sum w v, sum w e, sum w)`` over the levels where both ``v`` and ``e`` are
     valid (below-ground NaN contributes nothing, as in the streamfunction), with ``w`` from
     :func:`circtrack.kernels.vertical.layer_weights` in Pa under the column's top rule ``top``.
-    Divided by g these are column integrals per unit area.
+    Divided by g these are column integrals per unit area. ``all_valid``: whether every value of
+    the field this is a part of is valid (a caller working on part of a field at a time passes it, so
+    every part takes the path the whole field would take: ``sum w`` is summed in another order
+    there); None: this array decides.
     """
     v = np.asarray(v, dtype=np.float64)
     e = np.asarray(e, dtype=np.float64)
     w = layer_weights(p_pa, top)
-    ok = np.isfinite(v) & np.isfinite(e)
-    if ok.all():                                     # the usual case above the ground: no masking
+    ok = None
+    if all_valid is None:
+        ok = np.isfinite(v) & np.isfinite(e)
+        all_valid = bool(ok.all())
+    if all_valid:                                    # the usual case above the ground: no masking
         sw = np.broadcast_to(w.sum(), v.shape[:-3] + v.shape[-2:])
         return (np.einsum("...ljk,l->...jk", v * e, w), np.einsum("...ljk,l->...jk", v, w),
                 np.einsum("...ljk,l->...jk", e, w), sw)
+    if ok is None:
+        ok = np.isfinite(v) & np.isfinite(e)
     v0 = np.where(ok, v, 0.0)
     e0 = np.where(ok, e, 0.0)
     return (np.einsum("...ljk,l->...jk", v0 * e0, w), np.einsum("...ljk,l->...jk", v0, w),

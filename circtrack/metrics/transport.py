@@ -189,20 +189,33 @@ def energy_reducer(slabs, plev, lon, masks, cfg):
         out[..., 4, :] = 0.0
         return out
     top, _ = column_rules(cfg)
-    # one time step at a time: the float64 fields (energy, products) of one step in memory, not of
-    # the whole chunk (four roles on every level); the same numbers, each step is independent
+    p_pa = levels * HPA
+    row_values = int(np.prod(slabs["va"].shape[1:-3], dtype=np.int64)) * levels.size * slabs["va"].shape[-1]
+    rows = max(1, ENERGY_BLOCK_VALUES // max(row_values, 1))
+    # one time step at a time, and a block of latitude rows at a time: the float64 fields (energy,
+    # products) of a few rows in memory (in cache), not of the whole chunk; the same numbers, each
+    # row is independent (the step's all-valid test is made once, so every block sums as the whole
+    # step would)
     for t in range(lead[0]):
         take = {r: (slabs[r][t] if np.array_equal(idx[r], np.arange(slabs[r].shape[-3]))
                     else np.take(slabs[r][t], idx[r], axis=-3)) for r in ENERGY_ROLES}
-        q, filled = Z.humidity_filled_aloft(take["hus"], take["ta"])
-        e = Z.moist_static_energy(take["ta"], take["zg"], q)
-        sums = Z.column_sums(take["va"], e, levels * HPA, top)     # four (..., J, I)
-        # the family is zonal only: the full circle (first mask) is reduced, the sectors stay NaN
-        for k in range(4):
-            out[t, ..., k, 0] = sums[k].mean(axis=-1)
-        out[t, ..., 4, 0] = (sums[3] > 0).mean(axis=-1)
-        out[t, ..., 5, 0] = filled.mean(axis=(-3, -1))
+        # e is finite where ta and zg are (missing humidity aloft counts as 0, see below)
+        valid = bool(np.isfinite(take["va"]).all() and np.isfinite(take["ta"]).all()
+                     and np.isfinite(take["zg"]).all())
+        for j0 in range(0, nj, rows):
+            part = {r: a[..., j0:j0 + rows, :] for r, a in take.items()}
+            q, filled = Z.humidity_filled_aloft(part["hus"], part["ta"])
+            e = Z.moist_static_energy(part["ta"], part["zg"], q)
+            sums = Z.column_sums(part["va"], e, p_pa, top, all_valid=valid)     # four (..., jb, I)
+            # the family is zonal only: the full circle (first mask) is reduced, the sectors stay NaN
+            for k in range(4):
+                out[t, ..., j0:j0 + rows, k, 0] = sums[k].mean(axis=-1)
+            out[t, ..., j0:j0 + rows, 4, 0] = (sums[3] > 0).mean(axis=-1)
+            out[t, ..., j0:j0 + rows, 5, 0] = filled.mean(axis=(-3, -1))
     return out
+
+
+ENERGY_BLOCK_VALUES = 2 ** 17   # values per role and block of latitude rows (a few MB of float64 temporaries)
 
 
 def poleward_energy_transport(sums, lat, balance="remove_net_flux"):
