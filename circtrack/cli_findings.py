@@ -99,6 +99,20 @@ def _metric_ids(metrics, df, path):
     return ids
 
 
+def _note_left_out(df, ids, what):
+    """One stderr line naming the metrics (of ``ids``, or all) that have rows but none flagged ``ok``:
+    ``what`` (trends, the seasonal cycle, pictures) uses only ``ok`` rows, so they are left out."""
+    d = df if ids is None else df[df["metric"].isin(ids)]
+    ok = usable(d["flag"])
+    gone = sorted(set(d["metric"]) - set(d.loc[ok, "metric"]))
+    if not gone:
+        return
+    flag = d.loc[d["metric"].isin(gone), "flag"].astype(str).value_counts().index[0]
+    click.echo(f"circtrack: note: {len(gone)} metric(s) left out of {what}, no row flagged ok: "
+               f"{', '.join(gone)} (most common flag: {flag}; only rows flagged ok are used, see the "
+               "flag list in the README)", err=True)
+
+
 def _outputs(csv_path, *named):
     """Before reading: each output's target (stdout, stream or file); none of them is the input CSV
     (or its sidecar) or another output. ``named``: ``(option, path or None)``."""
@@ -178,6 +192,7 @@ def trend(csv_path, output, poleward_positive, metrics, min_years, calendar):
                              f"year(s) or season(s), at least {need} are needed; lower --min-years (3 at least) to "
                              "fit one anyway, or use 'circtrack season' for the seasonal cycle")
         raise InputError(f"{csv_path}: no complete season or year to fit; trends need whole months of 'ok' data")
+    _note_left_out(df, ids, "the trends")
     if short:
         (k, n) = short[0]
         click.echo(f"circtrack: note: {len(short)} series with fewer than {need} complete years or seasons left "
@@ -216,6 +231,7 @@ def season(csv_path, output, base, anomalies, metrics, calendar):
         clim, anom = S.seasonal_cycle(df, base=b, calendar=cal, metrics=ids)
     except S.StatsInputError as e:
         raise UsageError(f"{csv_path}: {e}; choose --base years inside the record")
+    _note_left_out(df, ids, "the seasonal cycle")
     _emit([(targets[0], S.table_to_csv(clim))] + ([(targets[1], S.table_to_csv(anom))] if anomalies else []))
 
 
@@ -269,12 +285,14 @@ def spread(csv_path, output):
 @click.option("--log-pressure", is_flag=True, help="With --section: logarithmic pressure axis.")
 @click.option("-c", "--config", "config", default=None, help="With --section: TOML config, as for 'track'.")
 @click.option("--var", "variables", multiple=True, metavar="ROLE=NAME", help="With --section: as for 'track'.")
+@click.option("--units", "units", multiple=True, metavar="ROLE=UNITS", help="With --section: as for 'track'.")
+@click.option("--level", "levels", multiple=True, metavar="NAME=HPA", help="With --section: as for 'track'.")
 @click.option("--cores-strip", "cores_strip", default=None, metavar="CORES.csv",
               help="Instead of a CSV of indices: the jet cores per longitude written by 'track --cores-by-longitude' "
                    "(longitude x, core latitude y, speed as colour) at --time DATE, or the mean over its time steps.")
 @guarded
 def plot(csv_path, output, metrics, poleward_positive, min_years, calendar, section, time, log_pressure, config,
-         variables, cores_strip):
+         variables, units, levels, cores_strip):
     """Time series with OLS trend and 95 % band, and the monthly seasonal cycle, per metric, one page per
     metric family; or, with --section DATAFILE, the latitude-pressure cross-section of one time step with
     the detected positions."""
@@ -290,7 +308,7 @@ def plot(csv_path, output, metrics, poleward_positive, min_years, calendar, sect
                                              "--poleward-positive/--degrees-north": named,
                                              "--min-years": min_years, "--calendar": calendar,
                                              "--log-pressure": log_pressure, "-c/--config": config,
-                                             "--var": variables})
+                                             "--var": variables, "--units": units, "--level": levels})
         if os.path.splitext(output)[1].lower().lstrip(".") not in plots.FORMATS:
             raise UsageError(f"-o {output}: unknown figure format; end the name with .png, .pdf or .svg")
         PC.save_strip(PC.load_table(cores_strip), output, time=time)
@@ -310,10 +328,10 @@ def plot(csv_path, output, metrics, poleward_positive, min_years, calendar, sect
             used.append("--poleward-positive/--degrees-north")
         if used:
             raise UsageError(f"{', '.join(used)}: for the time-series plot of a CSV, not for --section")
-        _section(section, output, time, log_pressure, config, variables)
+        _section(section, output, time, log_pressure, config, variables, units, levels)
         return
     used = [n for n, v in (("--time", time), ("--log-pressure", log_pressure), ("-c/--config", config),
-                           ("--var", variables)) if v]
+                           ("--var", variables), ("--units", units), ("--level", levels)) if v]
     if used:
         raise UsageError(f"{', '.join(used)}: only with --section DATAFILE")
     _outputs(csv_path, ("-o", output))
@@ -321,22 +339,23 @@ def plot(csv_path, output, metrics, poleward_positive, min_years, calendar, sect
     ids = _metric_ids(metrics, df, csv_path)
     cal = _calendar(csv_path, df, calendar)
     need = min_years or S.MIN_TREND_YEARS
+    _note_left_out(df, ids, "the pictures")
     written = _wrap(lambda: plots.save(df, output, metrics=ids, calendar=cal, poleward_positive=poleward_positive,
                                        min_years=need), csv_path)
     if len(written) > 1:
         click.echo(f"circtrack: wrote {len(written)} pages: {', '.join(written)}", err=True)
 
 
-def _section(path, output, time, log_pressure, config, variables):
+def _section(path, output, time, log_pressure, config, variables, units=(), levels=()):
     from circtrack import config as C
     from circtrack import section as SEC
-    from circtrack.cli_support import parse_vars
+    from circtrack.cli_support import apply_units, parse_vars
     from circtrack.output import check_output_path
 
     from circtrack import guards as G
     from circtrack.inputs.files import expand
 
-    cfg = C.load(config)
+    cfg = apply_units(C.load(config), units, levels)
     overrides = parse_vars(variables)
     check_output_path(output, beside_names=())
     G.refuse_outputs_among_inputs([(f"-o {output}", output)], expand([path]))

@@ -61,6 +61,20 @@ def test_trend_cli_recovers_injected_trend_and_is_byte_stable(csv_file, tmp_path
     assert set(pd.read_csv(__import__("io").StringIO(r.output)).metric) == {"eddy_jet_speed"}
 
 
+def test_metrics_without_ok_rows_are_named_when_left_out(csv_file, tmp_path):
+    """trend, season and plot use only rows flagged ok; a metric with none is named on stderr in one
+    line (hadley_edge_lat here: one row flagged no_edge), not dropped in silence."""
+    for args in (["trend", csv_file, "-o", tmp_path / "t.csv"], ["season", csv_file, "-o", tmp_path / "s.csv"],
+                 ["plot", csv_file, "-o", tmp_path / "p.png"]):
+        r = CliRunner().invoke(main, [str(a) for a in args])
+        assert r.exit_code == 0, r.output
+        notes = [line for line in r.stderr.splitlines() if "left out of" in line]
+        assert len(notes) == 1 and "hadley_edge_lat" in notes[0] and "no_edge" in notes[0], r.stderr
+        assert "eddy_jet" not in notes[0]
+    r = CliRunner().invoke(main, ["trend", csv_file, "--metrics", "eddy_jet_lat", "-o", str(tmp_path / "u.csv")])
+    assert "left out of" not in r.stderr
+
+
 def test_trend_cli_errors(tmp_path):
     r = CliRunner().invoke(main, ["trend", str(tmp_path / "missing.csv")])
     assert r.exit_code == 1 and "missing.csv: no such file" in r.output

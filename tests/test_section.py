@@ -2,6 +2,8 @@
 against the synthetic field's closed-form answers and the engine's rows, the picture itself, and
 the command's errors."""
 
+from pathlib import Path
+
 import matplotlib.image as mpimg
 import numpy as np
 import pytest
@@ -285,3 +287,23 @@ def test_two_level_guard_in_the_section_itself(moving_nc, monkeypatch):
     monkeypatch.setattr(engine.Run, "zonal_means", one_level)
     with pytest.raises(SEC.InputError, match="at least two pressure levels"):
         SEC.section_data(moving_nc, C.load(None))
+
+
+def test_section_takes_units_as_track_does(tmp_path):
+    """The error for undecodable time units says --units; plot --section takes it (and --level)."""
+    import shutil
+
+    import netCDF4
+
+    src = Path(__file__).resolve().parent.parent / "sample_inputs" / "model_q" / "model_q_monthly_2031.nc"
+    path = tmp_path / "month_units.nc"
+    shutil.copy(src, path)
+    with netCDF4.Dataset(path, "r+") as nc:
+        nc["time"].setncattr("units", "Month")
+    out = tmp_path / "s.png"
+    r = CliRunner().invoke(main, ["plot", "--section", str(path), "-o", str(out)])
+    assert r.exit_code == 1 and "--units time=" in r.output and not out.exists()
+    r = CliRunner().invoke(main, ["plot", "--section", str(path), "--units", "time=days since 2031-01-01",
+                                  "-o", str(out)])
+    assert r.exit_code == 0, r.output
+    assert out.stat().st_size > 10_000

@@ -89,12 +89,17 @@ def test_ar1_adjustment_worked_example():
 
 
 def test_ar1_strong_autocorrelation_gives_nan_ci():
+    """Less than one degree of freedom left (n_eff < 3): no interval and no p-value (Student's t with
+    half a degree of freedom gave intervals of any width); the slope is still given."""
     t = np.arange(10.0)
-    y = 0.1 * t + np.array([0, 1, 2, 3, 4, 4, 3, 2, 1, 0.0])  # smooth residuals, r1 close to 1
+    y = 0.1 * t + np.array([0, 1, 2, 3, 4, 4, 3, 2, 1, 0.0])  # smooth residuals: r1 = 0.6, n_eff = 2.5
     fit = S.ols_ar1(t, y)
-    assert fit["r1"] > 0.5
-    if fit["n_eff"] <= 2:
-        assert np.isnan(fit["ci_low"]) and np.isnan(fit["p_value"])
+    assert fit["r1"] == pytest.approx(0.6) and fit["n_eff"] == pytest.approx(2.5)
+    assert np.isnan(fit["ci_low"]) and np.isnan(fit["ci_high"]) and np.isnan(fit["p_value"])
+    assert np.isfinite(fit["slope"])
+    y = 0.04 * np.arange(20.0) + 0.002 * np.sin(np.arange(20) / 3.0)       # n_eff = 3.09: one degree of freedom
+    fit = S.ols_ar1(np.arange(20.0), y)
+    assert fit["n_eff"] > 3 and fit["ci_low"] < 0.04 < fit["ci_high"]
 
 
 # ---------------------------------------------------------------- Theil-Sen and Mann-Kendall
