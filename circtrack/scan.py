@@ -18,7 +18,7 @@ def _grid(det):
     parts = []
     if det.lat is not None:
         d = "ascending" if det.lat.size < 2 or det.lat[1] > det.lat[0] else "descending"
-        parts.append(f"{det.lat.size} latitudes {det.lat.min():g}..{det.lat.max():g} ({d})")
+        parts.append(f"{det.lat.size} latitudes {det.lat[0]:g}..{det.lat[-1]:g} ({d})")
     if det.lon is not None:
         parts.append(f"{det.lon.size} longitudes {det.lon.min():g}..{det.lon.max():g}")
     if det.plev_hpa is not None and det.vertical == "hybrid":

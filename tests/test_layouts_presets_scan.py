@@ -194,3 +194,12 @@ def test_scan_names_the_fix_for_units_it_does_not_know(tmp_path):
     code, text = _scan(write(ds, tmp_path / "units.nc"))
     assert code == 0
     assert "units 'furlongs per fortnight' are not understood for speed: set them, e.g. ncatted -a units,ua,o,c,'m s-1'" in text
+
+
+def test_scan_gives_the_latitudes_in_their_stored_order(tmp_path):
+    """A file with latitudes from north to south: scan says 'N..S (descending)', as stored."""
+    path = write(make_dataset(2).isel(lat=slice(None, None, -1)), tmp_path / "desc.nc")
+    r = CliRunner().invoke(main, ["scan", str(path)])
+    assert r.exit_code == 0, r.output
+    first, last = LAT.max(), LAT.min()
+    assert f"latitudes {first:g}..{last:g} (descending)" in r.output
