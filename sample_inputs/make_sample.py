@@ -3,7 +3,8 @@
 Scenario (our own, not a real dataset): "Model Q", a fictional coarse climate model, runs 20
 years (2031-2050, noleap calendar) of monthly means. Its Hadley cells widen by about 0.4 degrees
 per decade in each hemisphere, its cells and jets migrate with the seasons (poleward in local
-summer, in both hemispheres), and the winter Hadley cell is the stronger one. Its subtropical jet
+summer, in both hemispheres), and the winter Hadley cell is the stronger one. Its Hadley edges and
+eddy-driven jets wander from month to month (0.5 degrees, independent months). Its subtropical jet
 is strongest at 200 hPa and its eddy-driven jet at 300 hPa (both weaker above, so each has a core
 in the latitude-pressure plane), and travelling waves of zonal wavenumber 5 carry westerly momentum
 poleward out of the subtropics into the mid-latitudes, most strongly at 250 hPa. One file per year,
@@ -36,14 +37,19 @@ def main():
     years = np.array([t.year + (t.month - 0.5) / 12 for t in times]) - 2031
     phase = np.array([np.cos(2 * np.pi * (t.month - 7) / 12) for t in times])   # +1 in July, -1 in January
     widen = 0.04 * years                                                            # degrees per year
-    zeros = np.stack([-60 + 2 * phase - widen, -30 + 2 * phase - widen, 4 * phase,
-                      28 + 2 * phase + widen, 60 + 2 * phase + widen], axis=1)
+    # weather: the edges and jets wander from month to month (independent, 0.5 degrees), so trends
+    # are fitted through scatter, as in any real record
+    rng = np.random.default_rng(2031)
+    wander = rng.normal(0.0, 0.5, (len(times), 4))                                 # NH edge, SH edge, NH jet, SH jet
+    zeros = np.stack([-60 + 2 * phase - widen, -30 + 2 * phase - widen + wander[:, 1], 4 * phase,
+                      28 + 2 * phase + widen + wander[:, 0], 60 + 2 * phase + widen], axis=1)
     params = dict(
         cell_zeros=zeros,
         hadley_peak=1.0e11 * (1.0 - 0.3 * phase),
         stj=np.stack([30 + 3 * phase, -30 + 2 * phase], axis=1),
         stj_speed=np.stack([30 - 8 * phase, 32 + 5 * phase], axis=1),
-        edj=np.stack([45 + 4 * phase + 0.5 * widen, -50 + 2 * phase - 0.5 * widen], axis=1),
+        edj=np.stack([45 + 4 * phase + 0.5 * widen + wander[:, 2], -50 + 2 * phase - 0.5 * widen + wander[:, 3]],
+                     axis=1),
         edj_speed=np.stack([10 - 3 * phase, 13 + 2 * phase], axis=1),
     )
     ds = S.dataset(lat, lon, plev, times, **params)
