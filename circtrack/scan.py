@@ -112,7 +112,10 @@ def report(paths, cfg, overrides) -> str:
     lines.append("variables found:")
     for role, rule in VARIABLES.items():
         if role in det.variables:
-            lines.append(f"  {role:8s} = '{det.variables[role]}' ({det.why[role]}; units '{det.units.get(role, '')}')")
+            why = det.why[role]
+            said = "given by --units/[units]" in why         # the units are already in the reason
+            lines.append(f"  {role:8s} = '{det.variables[role]}' ({why}"
+                         + ("" if said else f"; units '{det.units.get(role, '')}'") + ")")
             if U.conversion(det.units.get(role, ""), rule["kind"]) is None:
                 canon = U.CANONICAL[rule["kind"]]
                 lines.append(f"  {'':8s}   units '{det.units.get(role, '')}' are not understood for {rule['kind'].replace('_', ' ')}: "

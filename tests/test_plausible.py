@@ -332,6 +332,9 @@ def test_scan_names_the_time_units_line(tmp_path):
     assert r.exit_code == 0 and '--units time="months since 1988-01-01"' in r.output, r.output
     r = run("scan", path, "--units", "time=months since 1988-01-01")
     assert r.exit_code == 0 and "1988-01-01 .. 1988-03-01" in r.output, r.output
+    r = run("scan", path, "--units", "time=months since 1988-01-01", "--units", "ta=K")
+    (line,) = [x for x in r.output.splitlines() if x.strip().startswith("ta ")]
+    assert line.count("units 'K'") == 1 and "given by --units/[units]" in line, line      # said once
 
 
 def test_latitudes_out_of_range_name_units_and_values(tmp_path):
