@@ -161,21 +161,6 @@ def read(path, name, index):
     return _read(entry.h5[name], lay, index)
 
 
-def read_dataset(dset, index, layouts):
-    """The same as :func:`read` for an h5py dataset the caller holds open (an object in object
-    storage, read through its byte ranges: inputs/ranges.py); ``layouts``: a dict the caller keeps
-    per open file, for the variables' layouts."""
-    if _inflate_lib is None:
-        return None
-    if dset.name not in layouts:
-        try:
-            layouts[dset.name] = _Layout(dset) if _eligible(dset, stored=False) else None
-        except (OSError, KeyError, ValueError, TypeError):
-            layouts[dset.name] = None
-    lay = layouts[dset.name]
-    return None if lay is None else _read(dset, lay, index)
-
-
 def _read(dset, lay, index):
     axes = _axes(index, lay.shape)
     if axes is None:
@@ -348,7 +333,7 @@ def _unshuffle(data, size):
 # --------------------------------------------------------------------------- chunks the caller fetched
 # For objects in object storage (inputs/remote.py): the caller fetches the stored chunks itself, in
 # a few large range requests, and hands them over as buffers; decoded here without HDF5 reading them
-# again through its file driver (values identical to :func:`read_dataset`).
+# again through its file driver (values identical to HDF5's read of the same chunks).
 def dataset_layout(dset, layouts):
     """The :class:`_Layout` of an h5py dataset the caller holds open (cached in ``layouts``, a dict
     kept per open file), or None when its chunks are not deflate(+shuffle) floats or the fast
