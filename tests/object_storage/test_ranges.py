@@ -13,6 +13,7 @@ import netCDF4
 import numpy as np
 import pytest
 
+from circtrack.inputs import presigned as P
 from circtrack.inputs import ranges as G
 from circtrack.inputs import remote as R
 
@@ -274,28 +275,28 @@ def open_aws(open_s3, monkeypatch):
         monkeypatch.delenv(k)
     for k, v in open_s3.env().items():
         monkeypatch.setenv(k, v)
-    G._DIRECT.clear()
+    P._DIRECT.clear()
     yield open_s3
-    G._DIRECT.clear()
+    P._DIRECT.clear()
 
 
 def test_direct_and_s3fs_fetches_give_the_same_bytes(open_aws, local_data, monkeypatch):
     calls = []
-    real = G._get_into
-    monkeypatch.setattr(G, "_get_into", lambda *a: calls.append(a[2]) or real(*a))
+    real = P._get_into
+    monkeypatch.setattr(P, "_get_into", lambda *a: calls.append(a[2]) or real(*a))
     url = f"s3://{BUCKET}/reanalysis/daily/uv_01.nc"
     blob = local_data["files"][1].read_bytes()
     for start, n in [(0, 100), (5000, 70_000), (len(blob) - 33, 33)]:
         for direct in (True, False):
             got, data = _fetch(url, start, n, direct)
             assert got == n and data == blob[start:start + n]
-    assert calls == [0, 5000, len(blob) - 33] and not G._DIRECT[os.getpid()]["off"]     # direct when asked
+    assert calls == [0, 5000, len(blob) - 33] and not P._DIRECT[os.getpid()]["off"]     # direct when asked
 
 
 def test_reads_through_the_direct_path_equal_a_local_read(open_aws, local_data, monkeypatch):
     calls = []
-    real = G._get_into
-    monkeypatch.setattr(G, "_get_into", lambda *a: calls.append(len(a[3])) or real(*a))
+    real = P._get_into
+    monkeypatch.setattr(P, "_get_into", lambda *a: calls.append(len(a[3])) or real(*a))
     raw = R.open_raw(f"s3://{BUCKET}/reanalysis/daily/uv_02.nc", cfg(request_bytes=8192))
     try:
         with netCDF4.Dataset(local_data["files"][2]) as nc:
@@ -311,7 +312,7 @@ def test_reads_through_the_direct_path_equal_a_local_read(open_aws, local_data, 
                 np.testing.assert_array_equal(got, ref[tuple(index)])
     finally:
         raw.close()
-    assert calls and max(calls) <= 8192 and not G._DIRECT[os.getpid()]["off"]
+    assert calls and max(calls) <= 8192 and not P._DIRECT[os.getpid()]["off"]
 
 
 def test_a_failing_direct_fetch_falls_back_to_s3fs(open_aws, local_data, monkeypatch):
@@ -322,14 +323,14 @@ def test_a_failing_direct_fetch_falls_back_to_s3fs(open_aws, local_data, monkeyp
     def broken(st, parts, start, out):
         tried.append(start)
         out[:3] = b"bad"                      # a partial answer must not survive
-        raise G._Fallback("refused")
+        raise P._Fallback("refused")
 
-    monkeypatch.setattr(G, "_get_into", broken)
+    monkeypatch.setattr(P, "_get_into", broken)
     for start in (10, 2000):
         got, data = _fetch(url, start, 500, True)
         assert data == blob[start:start + 500]
     assert tried == [10]                      # after one failure, that host goes through s3fs only
-    assert G._DIRECT[os.getpid()]["off"]
+    assert P._DIRECT[os.getpid()]["off"]
 
 
 def test_errors_of_the_direct_path_read_as_s3fs_errors(open_aws):
@@ -344,9 +345,9 @@ def test_behind_a_proxy_the_direct_path_steps_aside(monkeypatch):
     monkeypatch.setenv("http_proxy", "http://proxy.example:3128")
     monkeypatch.delenv("no_proxy", raising=False)
     monkeypatch.delenv("NO_PROXY", raising=False)
-    assert G._proxied(urlsplit("http://s3.example.org/b/k"))
+    assert P._proxied(urlsplit("http://s3.example.org/b/k"))
     monkeypatch.setenv("no_proxy", "s3.example.org")
-    assert not G._proxied(urlsplit("http://s3.example.org/b/k"))
+    assert not P._proxied(urlsplit("http://s3.example.org/b/k"))
 
 
 def test_a_kept_alive_connection_the_server_closed_is_replaced(open_aws, local_data):
@@ -365,6 +366,6 @@ def test_a_kept_alive_connection_the_server_closed_is_replaced(open_aws, local_d
     ours, theirs = socket.socketpair()
     theirs.close()                           # as if the server had hung up while it waited
     stale.sock = ours
-    G._DIRECT[os.getpid()]["conns"][("http", endpoint.netloc)] = [stale]
+    P._DIRECT[os.getpid()]["conns"][("http", endpoint.netloc)] = [stale]
     got, data = _fetch(url, 100, 1000, True)
-    assert data == blob[100:1100] and not G._DIRECT[os.getpid()]["off"]
+    assert data == blob[100:1100] and not P._DIRECT[os.getpid()]["off"]
