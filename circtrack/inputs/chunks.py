@@ -162,16 +162,12 @@ def read(path, name, index):
 
 
 def _read(dset, lay, index):
-    axes = _axes(index, lay.shape)
-    if axes is None:
-        return None
-    out = np.empty([len(src) for src, _ in axes], dtype=lay.dtype)
+    """``dset[index]`` of deflate(+shuffle) chunks: the stored bytes from h5py's direct chunk read,
+    decoded by :func:`read_stored`; None where HDF5 must do it (e.g. a chunk never written)."""
     try:
-        for offset, o_idx, c_idx in _chunks_met(axes, lay):
-            out[o_idx] = _decode(dset, offset, lay)[c_idx]
-    except (OSError, KeyError, ValueError, RuntimeError, zlib.error, getattr(_inflate_lib, "error", zlib.error)):
-        return None          # e.g. a chunk never written (fill values): HDF5 knows what to do
-    return _squeezed(out, axes)
+        return read_stored(lay, index, dset.id.read_direct_chunk)
+    except (OSError, KeyError, RuntimeError):
+        return None
 
 
 def _chunks_met(axes, lay):
@@ -313,12 +309,6 @@ def _as_slice(ix):
     return ix
 
 
-def _decode(dset, offset, lay):
-    """The chunk at ``offset`` as an array of the chunk's shape (edge chunks are stored whole)."""
-    mask, data = dset.id.read_direct_chunk(offset)
-    return decode_stored(mask, data, lay)
-
-
 def _unshuffle(data, size):
     """Undo HDF5's byte shuffle: byte ``j`` of element ``i`` was stored at ``j * n + i``."""
     raw = np.frombuffer(data, dtype=np.uint8)
@@ -372,7 +362,7 @@ def read_stored(lay, index, stored):
 
 def decode_stored(mask, data, lay):
     """A chunk from its stored bytes (any buffer; ``mask``: HDF5's filter mask of the chunk) -> an
-    array of the chunk's shape, as :func:`_decode` does. The array never refers to ``data`` (the
+    array of the chunk's shape. The array never refers to ``data`` (the
     caller may reuse that buffer)."""
     done = False
     for pos in reversed(range(len(lay.filters))):
