@@ -8,12 +8,14 @@ import numpy as np
 
 FLAGS = {
     "ok": "value computed as defined",
-    "no_sign_change_in_window": "no sign change between the start point and the end of the search window; value is NaN "
+    "no_sign_change_in_window": "no sign change between the start point and the end of the search window (values "
+                                "that fall to exactly zero and stay there or turn back only touch zero); value is NaN "
                                 "(named no_zero_crossing in earlier builds)",
     "crossing_in_data_gap": "the search for a sign change met missing points before finding one, so the zero may lie "
                             "in the gap; value is NaN",
-    "crossing_at_pole_row": "the sign change lies in the last segment before a pole row (90 deg), where a zonal mean "
-                            "of a wind component is not defined; value is NaN",
+    "crossing_at_pole_row": "the sign change lies in the last segment before a pole row (90 deg), or the values fall "
+                            "to zero and stay zero up to the pole row, where a zonal mean of a wind component is not "
+                            "defined; value is NaN",
     "extremum_at_window_edge": "the extremum sits on the edge of its search window, so the true one may lie outside; value is NaN",
     "extremum_at_pole_row": "the extremum sits on a pole row (90 deg); value is NaN",
     "extremum_next_to_missing_data": "a neighbour of the extremum is missing, so the true extremum may lie in the gap; value is NaN",
