@@ -14,6 +14,26 @@ from circtrack.inputs.rules import VARIABLES
 from circtrack.metrics import families
 
 
+def config_snippet(names, indent):
+    """Lines of a valid TOML snippet naming variables (role -> name in the file), indented:
+    ``[variables]`` on a line of its own, then one ``role = "name"`` line each."""
+    pad = " " * indent
+    return [f"{pad}[variables]"] + [f"{pad}{role} = {_toml_string(name)}" for role, name in names.items()]
+
+
+def _toml_string(text):
+    """A TOML basic string (quotes, backslashes and control characters escaped)."""
+    out = []
+    for ch in str(text):
+        if ch in '"\\':
+            out.append("\\" + ch)
+        elif ord(ch) < 32 or ord(ch) == 127:
+            out.append(f"\\u{ord(ch):04x}")
+        else:
+            out.append(ch)
+    return '"' + "".join(out) + '"'
+
+
 def _grid(det):
     parts = []
     if det.lat is not None:
@@ -120,8 +140,10 @@ def report(paths, cfg, overrides) -> str:
         if key not in det.coords:
             spare = [d for d in det_dims.get(det.path, []) if d not in det.coords.values()]
             problem = det.problems.get(key, "not found by name, standard_name, axis or units")
-            lines.append(f"  {what} axis: {problem}; add --var {key}=DIM  or in a config file:  [variables] {key} = \"DIM\""
-                         f"  (or give it units '{unit}')" + (f"; dimensions without a part: {', '.join(spare)}" if spare else ""))
+            lines.append(f"  {what} axis: {problem}; add --var {key}=DIM  (or give it units '{unit}')"
+                         + (f"; dimensions without a part: {', '.join(spare)}" if spare else "")
+                         + "; or in a config file:")
+            lines += config_snippet({key: "DIM"}, 6)
     for what, note in det.layout.items():
         lines.append(f"  {what}: {note}")
     if det.problems.get("vertical"):
@@ -153,8 +175,8 @@ def report(paths, cfg, overrides) -> str:
             elif role in implausible.get(det.path, {}):
                 lines.append(f"  {'':8s}   IMPLAUSIBLE: {implausible[det.path][role]}")
             if det.others.get(role):
-                lines.append(f"  {'':8s}   to use another, add --var {role}={det.others[role][0]}  or in a config file:  "
-                             f"[variables] {role} = \"{det.others[role][0]}\"")
+                lines.append(f"  {'':8s}   to use another, add --var {role}={det.others[role][0]}  or in a config file:")
+                lines += config_snippet({role: det.others[role][0]}, 15)
     # one variable per file: roles from other inputs with the same time steps join this one
     def same_times(a, b):
         return (a.times is not None and b.times is not None and a.times.size == b.times.size
@@ -197,13 +219,15 @@ def _metric_lines(det, joined, names):
         assigned = set(det.variables.values())
         spare = [n for n in names if n not in assigned]
         lines.append("to run the rest, name the missing variables:")
+        names_for = {}
         for r in sorted(missing_roles):
             hint = det.problems.get(r, "")
             fits = [t.split("=", 1)[1] for t in hint.split(": ", 1)[-1].split(" or ") if t.startswith(f"--var {r}=")] \
                 if "fit" in hint else []
-            name = fits[0] if len(fits) == 1 else "NAME"
-            lines.append(f"  {r} ({VARIABLES[r]['long']}): add --var {r}={name}  or in a config file:  "
-                         f"[variables] {r} = \"{name}\"" + (f"  ({hint})" if hint else ""))
+            names_for[r] = fits[0] if len(fits) == 1 else "NAME"
+            lines.append(f"  {r} ({VARIABLES[r]['long']}): add --var {r}={names_for[r]}" + (f"  ({hint})" if hint else ""))
         if spare:
             lines.append(f"  unassigned variables in the file: {', '.join(spare)}")
+        lines.append("  or in a config file (-c FILE):")
+        lines += config_snippet(names_for, 6)
     return lines
