@@ -35,6 +35,8 @@ FLAGS = {
                                   "lies below the ground there (surface pressure ps below the level); value is NaN",
     "cells_out_of_order": "the southern cell's minimum lies north of the northern cell's maximum; boundary is NaN",
     "column_too_short": "the pressure window holds fewer than 3 levels, or the column at the wind maximum fewer than 3 valid levels or the same wind just above or below it, so a jet core cannot be located in the vertical; value is NaN",
+    "weak_wave": "a planetary wave's amplitude is below waves.min_amplitude_m_s (0.05 m s-1): noise (e.g. float "
+                 "rounding of a zonally uniform field), not a wave; value kept, and trend, season and plot leave it out",
     "weak_jet_core": "the wind maximum in a jet-core window is weaker than cores.min_core_speed_m_s: no jet; value is NaN",
     "merged_jets": "the subtropical and eddy-driven windows give the same core (one merged jet): reported once, as the subtropical core ('ok;merged_jets'), the eddy-driven core is NaN",
 }
