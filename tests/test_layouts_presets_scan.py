@@ -123,14 +123,18 @@ def snippets(text):
     return out
 
 
-def test_scan_config_snippets_are_valid_toml(tmp_path):
-    """The snippets scan prints parse with tomllib; the printed lines of a chosen variable, written
-    to a config file as they are, make scan find it."""
+def _odd_names(tmp_path):
+    """The northward wind under a name no rule knows, with nothing but its units."""
     ds = make_dataset(1)
     ds["wind_north"] = ds["va"].copy()
     ds["wind_north"].attrs = {"units": "m s-1"}
-    ds = ds.drop_vars("va")
-    path = write(ds, tmp_path / "odd_names.nc")
+    return write(ds.drop_vars("va"), tmp_path / "odd_names.nc")
+
+
+def test_scan_config_snippets_are_valid_toml(tmp_path):
+    """The snippets scan prints parse with tomllib; the printed lines of a chosen variable, written
+    to a config file as they are, make scan find it."""
+    path = _odd_names(tmp_path)
     code, text = _scan(path)
     assert code == 0 and '[variables] va = "' not in text          # never the header and a key on one line
     assert snippets(text)[-1]["variables"]["va"] == "wind_north"
@@ -144,11 +148,7 @@ def test_scan_config_snippets_are_valid_toml(tmp_path):
 
 
 def test_scan_names_the_exact_line_when_a_variable_is_not_recognised(tmp_path):
-    ds = make_dataset(1)
-    ds["wind_north"] = ds["va"].copy()
-    ds["wind_north"].attrs = {"units": "m s-1"}
-    ds = ds.drop_vars("va")
-    path = write(ds, tmp_path / "odd_names.nc")
+    path = _odd_names(tmp_path)
     code, text = _scan(path)
     assert code == 0
     assert "va (northward wind on pressure levels): add --var va=wind_north" in text

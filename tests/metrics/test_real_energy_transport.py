@@ -14,13 +14,14 @@ rows keep their value with the flag time_step_unknown (one time step).
 """
 
 import os
-import shutil
 
 import netCDF4
 import numpy as np
 import pytest
 
 from circtrack import config, engine
+
+from .test_real_upper_air import fixed_copy
 
 SOURCE = "/usr/share/ncarg/data/cdf/nc4uvt.nc"        # Debian libncarg-data
 pytestmark = pytest.mark.skipif(not os.path.exists(SOURCE), reason="Debian package libncarg-data not installed "
@@ -31,11 +32,8 @@ A, G, CP, RD = 6.371e6, 9.80665, 1004.64, 287.04      # m, m s-2, J kg-1 K-1 (dr
 
 @pytest.fixture(scope="module")
 def path(tmp_path_factory):
-    p = tmp_path_factory.mktemp("energy") / "uvt_jan_zq.nc"
-    shutil.copy(SOURCE, p)
+    p = fixed_copy(tmp_path_factory.mktemp("energy") / "uvt_jan_zq.nc")    # time and T units fixed
     with netCDF4.Dataset(p, "a") as f:
-        f["time"].units = "days since 1988-01-01"      # "Month" in the file
-        f["T"].units = "K"                             # "C" in the file, values in kelvin
         lev = np.asarray(f["lev"][:], float)           # 1000 ... 10 hPa, bottom first
         t = np.asarray(f["T"][:], float)
         z = np.zeros_like(t)
