@@ -16,7 +16,7 @@ import traceback
 
 import click
 
-from circtrack.errors import CircError, UsageError
+from circtrack.errors import CircError, ManyLines, UsageError
 
 
 def one_line(text):
@@ -24,8 +24,9 @@ def one_line(text):
     return "".join(c if c == "\t" or not (ord(c) < 32 or ord(c) == 127) else repr(c)[1:-1] for c in str(text))
 
 
-def _fail(message, code):
-    click.echo(f"circtrack: error: {one_line(message)}", err=True)
+def _fail(message, code, several=False):
+    for line in (str(message).split("\n") if several else [message]):
+        click.echo(f"circtrack: error: {one_line(line)}", err=True)
     sys.exit(code)
 
 
@@ -110,7 +111,7 @@ def guarded(fn):
         except CircError as e:
             if debug:
                 traceback.print_exc()
-            _fail(str(e), e.exit_code)
+            _fail(str(e), e.exit_code, isinstance(e, ManyLines))
         except KeyboardInterrupt:
             _fail("interrupted; the previous output is untouched", 130)
         except BrokenPipeError:

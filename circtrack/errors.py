@@ -15,3 +15,8 @@ class UsageError(CircError):
 
 class InputError(CircError):
     """A file or variable could not be used (exit status 1)."""
+
+
+class ManyLines:
+    """Mix-in: the message holds several lines, each printed as a ``circtrack: error:`` line of its own
+    (e.g. one per implausible variable)."""

@@ -8,12 +8,14 @@ import numpy as np
 
 FLAGS = {
     "ok": "value computed as defined",
-    "no_sign_change_in_window": "no sign change between the start point and the end of the search window; value is NaN "
+    "no_sign_change_in_window": "no sign change between the start point and the end of the search window (values "
+                                "that fall to exactly zero and stay there or turn back only touch zero); value is NaN "
                                 "(named no_zero_crossing in earlier builds)",
     "crossing_in_data_gap": "the search for a sign change met missing points before finding one, so the zero may lie "
                             "in the gap; value is NaN",
-    "crossing_at_pole_row": "the sign change lies in the last segment before a pole row (90 deg), where a zonal mean "
-                            "of a wind component is not defined; value is NaN",
+    "crossing_at_pole_row": "the sign change lies in the last segment before a pole row (90 deg), or the values fall "
+                            "to zero and stay zero up to the pole row, where a zonal mean of a wind component is not "
+                            "defined; value is NaN",
     "extremum_at_window_edge": "the extremum sits on the edge of its search window, so the true one may lie outside; value is NaN",
     "extremum_at_pole_row": "the extremum sits on a pole row (90 deg); value is NaN",
     "extremum_next_to_missing_data": "a neighbour of the extremum is missing, so the true extremum may lie in the gap; value is NaN",
@@ -33,6 +35,8 @@ FLAGS = {
                                   "lies below the ground there (surface pressure ps below the level); value is NaN",
     "cells_out_of_order": "the southern cell's minimum lies north of the northern cell's maximum; boundary is NaN",
     "column_too_short": "the pressure window holds fewer than 3 levels, or the column at the wind maximum fewer than 3 valid levels or the same wind just above or below it, so a jet core cannot be located in the vertical; value is NaN",
+    "weak_wave": "a planetary wave's amplitude is below waves.min_amplitude_m_s (0.05 m s-1): noise (e.g. float "
+                 "rounding of a zonally uniform field), not a wave; value kept, and trend, season and plot leave it out",
     "weak_jet_core": "the wind maximum in a jet-core window is weaker than cores.min_core_speed_m_s: no jet; value is NaN",
     "merged_jets": "the subtropical and eddy-driven windows give the same core (one merged jet): reported once, as the subtropical core ('ok;merged_jets'), the eddy-driven core is NaN",
 }

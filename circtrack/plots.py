@@ -5,7 +5,9 @@ Layout
 * One *page* per metric family (the registry's families: cells, jets, surface winds, ...), at most
   :data:`MAX_ROWS` panel rows per page (a larger family continues on further pages, evenly filled); a ``metrics``
   selection that fits one page is one page. A page is
-  9 inches wide and at most about 9.8 inches high (1080 x 1170 pixels at the default 120 dpi).
+  9 inches wide and at most about 9.8 inches high (1080 x 1170 pixels at the default 120 dpi); the
+  section (section.py, 1080 x 816) and the jet-core strip (plots_cores.py, 1080 x 672) are 9 inches
+  wide too. A legend never reaches past its panel (:func:`_legend_above_data`).
   A multi-page selection goes into one multi-page PDF, or one PNG/SVG file per page named
   ``OUT-FAMILY.png`` (``OUT-FAMILY-2.png`` for a continued family); one page is written to OUT itself.
 * A panel row per metric; per sector too when the table has several sectors; per hemisphere when
@@ -273,12 +275,27 @@ def _draw_time_series(ax, sub, keys, extras, rec, colours, calendar, min_years, 
 
 
 def _legend_above_data(ax, entries):
-    """The legend in a band of head room above the data, so it never covers a line."""
+    """The legend in a band of head room above the data, so it never covers a line; two entries
+    side by side only when they fit inside the axes (long trend labels are stacked instead, so the
+    legend never reaches into the next panel)."""
+    leg = ax.legend(loc="upper left", ncol=2 if entries == 2 else 1, borderaxespad=0.2)
     ncol = 2 if entries == 2 else 1
+    if ncol == 2 and not _fits_inside(ax, leg):
+        ncol = 1
+        leg = ax.legend(loc="upper left", ncol=1, borderaxespad=0.2)
     lines = -(-entries // ncol)
     lo, hi = ax.get_ylim()
     ax.set_ylim(lo, hi + (hi - lo) * (0.12 + 0.16 * lines))
-    ax.legend(loc="upper left", ncol=ncol, borderaxespad=0.2)
+
+
+# share of the axes' width a legend may take: the axes shrink when the layout makes room for the
+# tick labels and titles, so a legend measured before that needs some margin
+LEGEND_WIDTH_SHARE = 0.9
+
+
+def _fits_inside(ax, leg):
+    renderer = ax.figure.canvas.get_renderer()
+    return leg.get_window_extent(renderer).width <= LEGEND_WIDTH_SHARE * ax.get_window_extent(renderer).width
 
 
 def _draw_seasonal(ax, sub, keys, extras, rec, colours, calendar, legend):

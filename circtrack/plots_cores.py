@@ -131,7 +131,7 @@ def strip_figure(df, time=None, source=""):
     speeds = np.concatenate([d["speed"].to_numpy(float) for d in data.values()])
     norm = Normalize(vmin=float(np.floor(np.nanmin(speeds) / 5) * 5), vmax=float(np.ceil(np.nanmax(speeds) / 5) * 5))
     with plt.rc_context({**STYLE, "font.size": 11, "axes.titlesize": 12, "axes.labelsize": 11, "legend.fontsize": 10}):
-        fig, ax = plt.subplots(figsize=(11, 5.6))
+        fig, ax = plt.subplots(figsize=(9, 5.6), layout="constrained")
         sc = None
         lons = np.unique(df["lon"].to_numpy(float))            # every band of the table, with a core or not
         step = float(np.median(np.diff(lons))) if lons.size > 1 else 360.0
@@ -157,8 +157,8 @@ def strip_figure(df, time=None, source=""):
         ax.set_ylabel("core latitude (degrees_north)")
         ax.legend(handles=[Line2D([], [], ls="", marker=m, color="white", mec="k", ms=8, label=n) for _, n, m in JETS],
                   loc="upper left", bbox_to_anchor=(0.0, -0.12), ncol=2)
-        ax.set_title(f"jet cores per longitude   {title}" + (f"   source: {source}" if source else ""), loc="left")
-        fig.tight_layout()
+        # two lines, so a long time span and source name stay inside the 9-inch picture
+        ax.set_title(f"jet cores per longitude\n{title}" + (f"   source: {source}" if source else ""), loc="left")
     return fig
 
 

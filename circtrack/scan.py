@@ -14,6 +14,26 @@ from circtrack.inputs.rules import VARIABLES
 from circtrack.metrics import families
 
 
+def config_snippet(names, indent):
+    """Lines of a valid TOML snippet naming variables (role -> name in the file), indented:
+    ``[variables]`` on a line of its own, then one ``role = "name"`` line each."""
+    pad = " " * indent
+    return [f"{pad}[variables]"] + [f"{pad}{role} = {_toml_string(name)}" for role, name in names.items()]
+
+
+def _toml_string(text):
+    """A TOML basic string (quotes, backslashes and control characters escaped)."""
+    out = []
+    for ch in str(text):
+        if ch in '"\\':
+            out.append("\\" + ch)
+        elif ord(ch) < 32 or ord(ch) == 127:
+            out.append(f"\\u{ord(ch):04x}")
+        else:
+            out.append(ch)
+    return '"' + "".join(out) + '"'
+
+
 def _grid(det):
     parts = []
     if det.lat is not None:
@@ -32,27 +52,40 @@ def _grid(det):
     return "; ".join(parts) or "no grid found"
 
 
-def _implausible(ds, det, cfg):
-    """Roles whose sampled values are implausible after unit conversion: role -> the advice line."""
+def _default_levels(found, cfg):
+    """role -> the levels a run without --metrics reads (None: every level), when the inputs hold
+    the roles ``found``: the plan of every metric whose inputs are all there (as track's)."""
+    from circtrack.engine.plan import Plan
+
+    ids = [m.id for f in families().values() if set(f.inputs) <= set(found) for m in f.metrics]
+    return Plan.make(ids, cfg, None).roles if ids else {}
+
+
+def _implausible(ds, det, cfg, levels):
+    """Roles whose values are implausible after unit conversion: role -> the advice line. The same
+    check as track's (inputs/plausible.py ``problems``), on the same values: the first time step
+    of the levels a run without --metrics reads (``levels``, from :func:`_default_levels`)."""
     from circtrack.inputs import plausible as PL
-    out = {}
+    readers, slabs = {}, {}
     for role in det.variables:
         try:
-            reader, _ = D.standardise(ds, det, role, None, cfg)
-            lo, hi = PL.sample_range(reader, ds)
-            PL.check_values(det.path, role, reader.name, det.units.get(role, ""), VARIABLES[role]["kind"],
-                            lo, hi, reader.factor, reader.offset)
-        except InputError as e:
-            if "plausible" in str(e):
-                out[role] = str(e).split(": ", 1)[1]
-    return out
+            reader, _ = D.standardise(ds, det, role, levels.get(role), cfg)
+            slabs[role] = reader.read_noted(ds, 0, 1)[0]
+            readers[role] = reader
+        except (InputError, KeyError, ValueError, IndexError):
+            continue                    # what cannot be read is reported elsewhere (units, levels)
+    return {role: line.split(": ", 1)[1]
+            for role in readers for line in PL.problems({role: readers[role]}, {role: slabs[role]}, det.units)}
 
 
 def _detect_all(files, cfg, overrides):
     """Every input opened for metadata and detected: (detections with their variable names, error
-    lines of unreadable inputs, dimensions per input, implausible roles per input)."""
+    lines of unreadable inputs, dimensions per input, implausible roles per input). Values are
+    sampled on the levels the roles found so far need; an input whose roles need other levels once
+    every input is known (one variable per file: va's file comes after ua's) is sampled again."""
     dets, bad = [], []
-    det_dims, implausible = {}, {}
+    det_dims, implausible, sampled, plans = {}, {}, {}, {}
+    found = set()
     for p in files:
         try:
             ds = D.open_dataset(p, remote.for_metadata(cfg))     # metadata only: small ranges for objects
@@ -60,11 +93,27 @@ def _detect_all(files, cfg, overrides):
                 det = D.detect(ds, p, overrides, cfg)
                 dets.append((det, sorted(map(str, ds.data_vars))))
                 det_dims[p] = [str(d) for d in ds.dims]
-                implausible[p] = _implausible(ds, det, cfg)
+                found |= set(det.variables)
+                key = frozenset(found)
+                levels = plans[key] if key in plans else plans.setdefault(key, _default_levels(found, cfg))
+                implausible[p] = _implausible(ds, det, cfg, levels)
+                sampled[p] = {r: levels.get(r) for r in det.variables}
             finally:
                 ds.close()
         except InputError as e:
             bad.append(str(e))
+    levels = _default_levels(found, cfg)
+    for det, _ in dets:
+        if sampled.get(det.path) == {r: levels.get(r) for r in det.variables}:
+            continue
+        try:
+            ds = D.open_dataset(det.path, remote.for_metadata(cfg))
+            try:
+                implausible[det.path] = _implausible(ds, det, cfg, levels)
+            finally:
+                ds.close()
+        except InputError:
+            implausible[det.path] = {}
     return dets, bad, det_dims, implausible
 
 
@@ -91,8 +140,10 @@ def report(paths, cfg, overrides) -> str:
         if key not in det.coords:
             spare = [d for d in det_dims.get(det.path, []) if d not in det.coords.values()]
             problem = det.problems.get(key, "not found by name, standard_name, axis or units")
-            lines.append(f"  {what} axis: {problem}; add --var {key}=DIM  or in a config file:  [variables] {key} = \"DIM\""
-                         f"  (or give it units '{unit}')" + (f"; dimensions without a part: {', '.join(spare)}" if spare else ""))
+            lines.append(f"  {what} axis: {problem}; add --var {key}=DIM  (or give it units '{unit}')"
+                         + (f"; dimensions without a part: {', '.join(spare)}" if spare else "")
+                         + "; or in a config file:")
+            lines += config_snippet({key: "DIM"}, 6)
     for what, note in det.layout.items():
         lines.append(f"  {what}: {note}")
     if det.problems.get("vertical"):
@@ -124,8 +175,8 @@ def report(paths, cfg, overrides) -> str:
             elif role in implausible.get(det.path, {}):
                 lines.append(f"  {'':8s}   IMPLAUSIBLE: {implausible[det.path][role]}")
             if det.others.get(role):
-                lines.append(f"  {'':8s}   to use another, add --var {role}={det.others[role][0]}  or in a config file:  "
-                             f"[variables] {role} = \"{det.others[role][0]}\"")
+                lines.append(f"  {'':8s}   to use another, add --var {role}={det.others[role][0]}  or in a config file:")
+                lines += config_snippet({role: det.others[role][0]}, 15)
     # one variable per file: roles from other inputs with the same time steps join this one
     def same_times(a, b):
         return (a.times is not None and b.times is not None and a.times.size == b.times.size
@@ -139,6 +190,8 @@ def report(paths, cfg, overrides) -> str:
                     joined[role] = name
                     lines.append(f"  {role:8s} = '{name}' in {other.path} (same time steps; {other.why[role]}; "
                                  f"units '{other.units.get(role, '')}')")
+                    if role in implausible.get(other.path, {}):
+                        lines.append(f"  {'':8s}   IMPLAUSIBLE: {implausible[other.path][role]}")
     lines += _metric_lines(det, joined, names)
     return "\n".join(lines)
 
@@ -166,13 +219,15 @@ def _metric_lines(det, joined, names):
         assigned = set(det.variables.values())
         spare = [n for n in names if n not in assigned]
         lines.append("to run the rest, name the missing variables:")
+        names_for = {}
         for r in sorted(missing_roles):
             hint = det.problems.get(r, "")
             fits = [t.split("=", 1)[1] for t in hint.split(": ", 1)[-1].split(" or ") if t.startswith(f"--var {r}=")] \
                 if "fit" in hint else []
-            name = fits[0] if len(fits) == 1 else "NAME"
-            lines.append(f"  {r} ({VARIABLES[r]['long']}): add --var {r}={name}  or in a config file:  "
-                         f"[variables] {r} = \"{name}\"" + (f"  ({hint})" if hint else ""))
+            names_for[r] = fits[0] if len(fits) == 1 else "NAME"
+            lines.append(f"  {r} ({VARIABLES[r]['long']}): add --var {r}={names_for[r]}" + (f"  ({hint})" if hint else ""))
         if spare:
             lines.append(f"  unassigned variables in the file: {', '.join(spare)}")
+        lines.append("  or in a config file (-c FILE):")
+        lines += config_snippet(names_for, 6)
     return lines

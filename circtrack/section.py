@@ -250,7 +250,7 @@ def figure(sec, log_pressure=False):
              "axes.grid": False}
     with plt.rc_context(style), warnings.catch_warnings(), np.errstate(all="ignore"):
         warnings.simplefilter("ignore")
-        fig, ax = plt.subplots(figsize=(10, 6.8), layout="constrained")
+        fig, ax = plt.subplots(figsize=(9, 6.8), layout="constrained")
         umax = np.nanmax(np.abs(sec.u)) if np.isfinite(sec.u).any() else 1.0
         ulev = _levels(max(umax, 1.0), 12)
         cf = ax.contourf(sec.lat, sec.plev_u, sec.u, levels=ulev, cmap="RdBu_r", extend="both")

@@ -7,8 +7,11 @@ summer, in both hemispheres), and the winter Hadley cell is the stronger one. It
 eddy-driven jets wander from month to month (0.5 degrees, independent months). Its subtropical jet
 is strongest at 200 hPa and its eddy-driven jet at 300 hPa (both weaker above, so each has a core
 in the latitude-pressure plane), and travelling waves of zonal wavenumber 5 carry westerly momentum
-poleward out of the subtropics into the mid-latitudes, most strongly at 250 hPa. One file per year,
-like a model archive.
+poleward out of the subtropics into the mid-latitudes, most strongly at 250 hPa. Near the surface
+(1000 hPa) it has trade winds, easterlies strongest near 13 degrees (about 6 m/s, stronger in
+winter, poleward in summer), and polar easterlies poleward of about 65 degrees, beside the
+surface westerlies under the eddy-driven jet; they are shallow (1000 hPa only, below the trade
+inversion), so nothing above the surface changes. One file per year, like a model archive.
 
     python sample_inputs/make_sample.py
 """
@@ -27,6 +30,19 @@ STJ_PROFILE = {1000: 0.0, 850: 0.0, 700: 0.23, 500: 0.54, 400: 0.69, 300: 0.85, 
 EDJ_PROFILE = {1000: 0.8, 850: 1.0, 700: 1.25, 500: 1.6, 400: 1.8, 300: 1.9, 200: 1.6, 100: 0.9}
 EDDY_PROFILE = {1000: 0.2, 850: 0.35, 700: 0.55, 500: 0.8, 400: 0.9, 300: 1.0, 200: 0.9, 100: 0.5}
 EDDY_WAVENUMBER = 5
+
+
+def surface_easterlies(lat, phase):
+    """``(T, J)`` m/s: the trade winds and polar easterlies added at 1000 hPa (negative = easterly)."""
+    y = np.abs(lat)[None, :]
+    out = np.zeros((phase.size, lat.size))
+    for sign in (1.0, -1.0):                                        # NH, SH
+        share = np.where(sign * lat > 0, 1.0, np.where(lat == 0, 0.5, 0.0))[None, :]   # the equator: half each
+        summer = (sign * phase)[:, None]                            # +1 in the local summer
+        trades = (6.0 - 1.5 * summer) * np.exp(-((y - (13.0 + 2.0 * summer)) / 10.0) ** 2)
+        polar = 4.0 * np.exp(-((y - 80.0) / 12.0) ** 2)
+        out -= share * (trades + polar)
+    return out
 
 
 def main():
@@ -72,6 +88,9 @@ def main():
     amp = 9.0 * level[None, :, None] * env[:, None, :]                              # (T, L, J), m s-1
     ua += (amp[..., None] * wave)
     va = ds["va"].values.astype(np.float64) + amp[..., None] * np.sign(lat)[None, None, :, None] * wave
+    # near-surface easterlies at 1000 hPa: trades (strongest near 13 degrees, moving 2 degrees poleward
+    # in local summer, stronger in local winter) and polar easterlies (strongest near 80 degrees)
+    ua[:, plev.index(1000)] += surface_easterlies(lat, phase)[..., None]
     ds["ua"].values[...] = ua.astype(np.float32)
     ds["va"].values[...] = va.astype(np.float32)
     ds.attrs.update(title="Model Q invented demo run (synthetic; for circtrack examples only)",

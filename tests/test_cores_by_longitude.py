@@ -98,6 +98,8 @@ def test_cli_writes_the_table_and_draws_the_strip(tmp_path):
     r = invoke("plot", "--cores-strip", cores, "-o", png)
     assert r.exit_code == 0, r.output
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    import matplotlib.image as mpimg
+    assert mpimg.imread(str(png)).shape[:2] == (672, 1080)        # the size the README states
     r = invoke("plot", "--cores-strip", cores, "--time", "2001-01-02", "-o", tmp_path / "strip.svg")
     assert r.exit_code == 0, r.output
 

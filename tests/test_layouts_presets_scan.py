@@ -103,16 +103,56 @@ def _scan(*args):
     return res.exit_code, res.output
 
 
-def test_scan_names_the_exact_line_when_a_variable_is_not_recognised(tmp_path):
+def snippets(text):
+    """Every config snippet scan prints (the lines after one ending in "config file:" or
+    "config file (-c FILE):"), each parsed with tomllib: it must be valid TOML."""
+    import tomllib
+
+    out, lines = [], text.splitlines()
+    for i, line in enumerate(lines):
+        if line.rstrip().endswith(("config file:", "config file (-c FILE):")):
+            block = []
+            for nxt in lines[i + 1:]:
+                stripped = nxt.strip()
+                if not (stripped == "[variables]" or (block and " = " in stripped and nxt.startswith("      "))):
+                    break
+                block.append(nxt)
+            assert block and block[0].strip() == "[variables]", (line, block)
+            out.append(tomllib.loads("\n".join(block)))
+    assert out, "scan printed no config snippet"
+    return out
+
+
+def _odd_names(tmp_path):
+    """The northward wind under a name no rule knows, with nothing but its units."""
     ds = make_dataset(1)
     ds["wind_north"] = ds["va"].copy()
     ds["wind_north"].attrs = {"units": "m s-1"}
-    ds = ds.drop_vars("va")
-    path = write(ds, tmp_path / "odd_names.nc")
+    return write(ds.drop_vars("va"), tmp_path / "odd_names.nc")
+
+
+def test_scan_config_snippets_are_valid_toml(tmp_path):
+    """The snippets scan prints parse with tomllib; the printed lines of a chosen variable, written
+    to a config file as they are, make scan find it."""
+    path = _odd_names(tmp_path)
+    code, text = _scan(path)
+    assert code == 0 and '[variables] va = "' not in text          # never the header and a key on one line
+    assert snippets(text)[-1]["variables"]["va"] == "wind_north"
+    lines = text.splitlines()
+    start = lines.index("  or in a config file (-c FILE):") + 1
+    block = [ln for ln in lines[start:] if ln.startswith("      ")]
+    conf = tmp_path / "vars.toml"
+    conf.write_text("\n".join(ln for ln in block if "NAME" not in ln) + "\n")   # the placeholder lines left out
+    code, text = _scan(path, "-c", conf)
+    assert code == 0 and "va       = 'wind_north' (set by --var/config" in text, text
+
+
+def test_scan_names_the_exact_line_when_a_variable_is_not_recognised(tmp_path):
+    path = _odd_names(tmp_path)
     code, text = _scan(path)
     assert code == 0
-    assert ('va (northward wind on pressure levels): add --var va=wind_north  or in a config file:  '
-            '[variables] va = "wind_north"') in text
+    assert "va (northward wind on pressure levels): add --var va=wind_north" in text
+    assert {"va": "wind_north"}.items() <= snippets(text)[-1]["variables"].items()
     assert "hadley_edge_lat                cannot run: needs va" in text
     # the track error says the same in one line
     with pytest.raises(InputError, match=r"odd_names\.nc: .*\(va\) not found .*--var va=wind_north"):
@@ -131,7 +171,8 @@ def test_scan_says_which_candidate_it_chose_and_why(tmp_path):
     assert code == 0
     assert ("ua       = 'ua' (standard_name 'eastward_wind'; chosen over 'u' (variable name 'u'): a CF standard_name "
             "match ranks above an exact name match; units 'm s-1')") in text
-    assert "to use another, add --var ua=u  or in a config file:  [variables] ua = \"u\"" in text
+    assert "to use another, add --var ua=u  or in a config file:" in text
+    assert {"variables": {"ua": "u"}} in snippets(text)
     assert "chosen over 'va_copy' (standard_name 'northward_wind'): same rank, 'va' comes first alphabetically" in text
 
 
@@ -141,8 +182,9 @@ def test_scan_names_the_line_for_an_unrecognised_coordinate(tmp_path):
     path = write(ds, tmp_path / "no_lat.nc")
     code, text = _scan(path)
     assert code == 0
-    assert ('latitude axis: not found by name, standard_name, axis or units; add --var lat=DIM  or in a config '
-            'file:  [variables] lat = "DIM"  (or give it units \'degrees_north\'); dimensions without a part: row') in text
+    assert ("latitude axis: not found by name, standard_name, axis or units; add --var lat=DIM  (or give it units "
+            "'degrees_north'); dimensions without a part: row; or in a config file:") in text
+    assert {"variables": {"lat": "DIM"}} in snippets(text)
     code, text = _scan(path, "--var", "lat=row")
     assert "lat = 'row' (set by --var/config)" in text and "hadley_edge_lat                can run" in text
     out = run_cfg(path, metric_ids=["hadley_edge_lat"], overrides={"lat": "row"})

@@ -352,3 +352,64 @@ def test_scan_offers_the_lowest_level_only_near_the_surface(tmp_path):
     assert "surface_westerly_speed" in low and "uas from ua on the lowest pressure level" in low
     high = run("scan", surface_file(tmp_path, [850.0, 700.0, 500.0, 300.0, 200.0])).output
     assert "uas from ua on the lowest pressure level" not in high and "cannot run: needs uas" in high
+
+
+# ----------------------------------------------------------------------------- one check for scan and track
+def errors(r):
+    return [ln for ln in err_lines(r) if ln.startswith("circtrack: error: ")]
+
+
+def _winds_in_cm_s(tmp_path):
+    """Winds in cm s-1 labelled m s-1 (the trial's case): ua and va both implausible, stronger aloft
+    than at the top and bottom levels, so a check of other levels would quote another range."""
+    ds = make_dataset(1)
+    for v in ("ua", "va"):
+        ds[v] = ds[v] * 100.0
+        ds[v].attrs["units"] = "m s-1"
+    return write(ds, tmp_path / "cm_s.nc")
+
+
+def test_track_names_every_implausible_variable_once_and_leaves_outputs_alone(tmp_path):
+    path = _winds_in_cm_s(tmp_path)
+    out = tmp_path / "o.csv"
+    out.write_text("previous\n")
+    r = run("track", path, "-o", out)
+    assert r.exit_code == 1, r.output
+    lines = errors(r)
+    assert len(lines) == 2 and all(ln.startswith(f"circtrack: error: {path}: variable '") for ln in lines), lines
+    assert "variable 'ua' (ua)" in lines[0] and "variable 'va' (va)" in lines[1]
+    assert all("--units" in ln and '="cm s-1"' in ln for ln in lines)
+    assert out.read_text() == "previous\n" and not (tmp_path / "o.provenance.json").exists()
+
+
+def test_scan_and_track_quote_the_same_values_and_advice(tmp_path):
+    path = _winds_in_cm_s(tmp_path)
+    track_lines = [ln.split(": error: ", 1)[1].split(": ", 1)[1] for ln in errors(run("track", path, "-o", tmp_path / "o.csv"))]
+    scan = run("scan", path)
+    assert scan.exit_code == 0, scan.output
+    scan_lines = [ln.split("IMPLAUSIBLE: ", 1)[1] for ln in scan.output.splitlines() if "IMPLAUSIBLE: " in ln]
+    assert scan_lines == track_lines and len(scan_lines) == 2
+
+
+def test_the_range_is_said_once_when_nothing_was_converted(tmp_path):
+    path = _winds_in_cm_s(tmp_path)
+    line = errors(run("track", path, "-o", tmp_path / "o.csv"))[0]
+    lo_hi = line.split("its values, ", 1)[1].split(",", 1)[0]           # e.g. "-1229.2 to 5112.9 m s-1"
+    assert line.count(lo_hi) == 1 and f"its values, {lo_hi}, lie outside the plausible -250 to 250 m s-1" in line
+    # converted values say both: as stated and as converted
+    ta = write(with_ta(make_dataset(1), "C"), tmp_path / "ta_c.nc")
+    converted = one_error(run("track", ta, "-o", tmp_path / "o.csv", "-q"))
+    assert "says units 'C' but its values, 190 to 310 C, are 463.15 to 583.15 K, outside" in converted
+
+
+def test_one_variable_per_file_scan_and_track_agree_too(tmp_path):
+    import xarray as xr
+    both = xr.open_dataset(_winds_in_cm_s(tmp_path))
+    d = tmp_path / "split"
+    d.mkdir()
+    both[["ua"]].to_netcdf(d / "ua_Amon_x.nc")
+    both[["va"]].to_netcdf(d / "va_Amon_x.nc")
+    both.close()
+    track_lines = [ln.split(": error: ", 1)[1].split(": ", 1)[1] for ln in errors(run("track", d, "-o", tmp_path / "o.csv"))]
+    scan_lines = [ln.split("IMPLAUSIBLE: ", 1)[1] for ln in run("scan", d).output.splitlines() if "IMPLAUSIBLE: " in ln]
+    assert len(track_lines) == 2 and scan_lines == track_lines

@@ -257,3 +257,24 @@ def test_trend_leaves_out_short_series_and_says_so(tmp_path):
     # no NaN rows with n < 3 from the library either
     few = S.trends(table(monthly(2001, 2), metrics=("hadley_edge_lat",)))
     assert few.empty
+
+
+def test_legends_stay_inside_their_panel():
+    """Long trend labels (tiny slopes in m s-1, as the demo's wave amplitudes had) are stacked rather
+    than set side by side past the panel's right edge into the seasonal-cycle panel."""
+    rng = np.random.default_rng(3)
+    rows = []
+    for t in monthly(2031, 20):
+        for h in ("NH", "SH"):
+            rows.append(["model_q_monthly", t, h, "zonal", "planetary_wave_3_amplitude",
+                         f"{1.117 + 2e-5 * rng.standard_normal():.6g}", "m s-1", "ok"])
+    figs = plots.pages(pd.DataFrame(rows, columns=COLS))
+    try:
+        for _, fig in figs:
+            fig.canvas.draw()
+            renderer = fig.canvas.get_renderer()
+            for ax in _ts_axes(fig):
+                box, leg = ax.get_window_extent(renderer), ax.get_legend().get_window_extent(renderer)
+                assert leg.x0 >= box.x0 - 1 and leg.x1 <= box.x1 + 1, (leg, box)
+    finally:
+        _close(figs)

@@ -97,3 +97,42 @@ def test_demo_eddies_carry_momentum_poleward_out_of_the_subtropics(demo_cores_an
         assert set(flags) == {"time_mean_input;interpolated_level"}
         assert np.all(sign * lat > 32.5) and np.all(sign * lat < 37.5)
         assert np.all((peak > 30) & (peak < 45))
+
+
+SURFACE = ["surface_wind_zero_lat", "polar_easterly_edge_lat", "trade_wind_speed", "surface_westerly_speed"]
+
+
+@pytest.fixture(scope="module")
+def demo_surface():
+    """The surface wind belts of the demo, from ua at 1000 hPa (the demo has no uas), with the Hadley edge."""
+    out = engine.track([str(SAMPLE)], config.load(), metric_ids=SURFACE + ["hadley_edge_lat"])
+    c = out.columns
+    return c, np.array([int(t[5:7]) for t in c["time"]])
+
+
+def test_demo_surface_wind_belts_are_found_in_every_month(demo_surface):
+    """Before the demo had trades, its surface wind was westerly everywhere: the trade-wind minimum sat
+    on the edge of its window (NaN) and the westerlies' decay to a quantized 0.000 was taken for a
+    polar-easterly edge (flagged ok). Now every belt is found, from a real sign change."""
+    c, _ = demo_surface
+    for m in SURFACE:
+        values, flags = _zonal(c, m, "NH")
+        values_sh, flags_sh = _zonal(c, m, "SH")
+        assert set(flags) | set(flags_sh) == {"ok;wind_from_1000hPa"}, m
+        assert np.isfinite(values).all() and np.isfinite(values_sh).all()
+
+
+def test_demo_surface_wind_belts_sit_where_they_do_on_earth(demo_surface):
+    # common practice: trades of a few m/s, the surface easterly-westerly boundary near 30 degrees and
+    # close to the Hadley cell's edge (Kang & Polvani 2011 J. Climate 24, 563-568 relate the two), the
+    # polar easterlies poleward of about 60 degrees; the trades are stronger in local winter
+    c, month = demo_surface
+    every = range(1, 13)
+    for hemi, s in (("NH", 1), ("SH", -1)):
+        assert 3.0 <= _mean(c, month, "trade_wind_speed", hemi, every) <= 9.0
+        assert 25.0 <= s * _mean(c, month, "surface_wind_zero_lat", hemi, every) <= 35.0
+        assert abs(_mean(c, month, "surface_wind_zero_lat", hemi, every)
+                   - _mean(c, month, "hadley_edge_lat", hemi, every)) < 4.0
+        assert 55.0 <= s * _mean(c, month, "polar_easterly_edge_lat", hemi, every) <= 70.0
+    assert _mean(c, month, "trade_wind_speed", "NH", [12, 1, 2]) > _mean(c, month, "trade_wind_speed", "NH", [6, 7, 8])
+    assert _mean(c, month, "trade_wind_speed", "SH", [6, 7, 8]) > _mean(c, month, "trade_wind_speed", "SH", [12, 1, 2])

@@ -123,7 +123,8 @@ def test_cli_writes_real_images(moving_nc, tmp_path):
     assert r.exit_code == 0, r.output
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     img = mpimg.imread(str(png))
-    assert img.shape[0] >= 600 and img.shape[1] >= 1000 and img.shape[2] in (3, 4)
+    # the size the README states: 9 inches at 120 dpi, like the overview pages (1080 x 1170 at most)
+    assert img.shape[:2] == (816, 1080) and img.shape[2] in (3, 4)
     assert img[..., :3].std() > 0.05
     svg = tmp_path / "section.svg"
     r = invoke("plot", "--section", moving_nc, "--log-pressure", "-o", svg)

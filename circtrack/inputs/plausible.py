@@ -3,8 +3,8 @@
 A file's units attribute can be wrong (temperature labelled "C" holding kelvin, geopotential in
 m2 s-2 labelled "m", humidity in g/kg labelled kg/kg). Converted by the label, such values land
 outside what any real atmosphere has. circtrack never repairs units by guessing: a value range
-outside :data:`RANGES` stops the run (exit 1) with one line naming the file, the variable, its
-stated units, the observed range and the exact ``--units ROLE=UNITS`` line that would make the
+outside :data:`RANGES` stops the run (exit 1) with one line per variable naming the file, the variable, its
+stated units, the observed range (said once when nothing was converted) and the exact ``--units ROLE=UNITS`` line that would make the
 values plausible (when one of the known spellings does), e.g.::
 
     circtrack: error: f.nc: variable 'T' (ta) says units 'C' but its values, 190.2 to 310.5 C, are
@@ -15,17 +15,24 @@ The bounds are deliberately wide physical limits (sources beside each entry); th
 and offsets (x100, x9.8, +273.15), not small biases. Planning reads no data, so the values are
 checked where they are read anyway: in the task holding each file's first time chunk
 (engine/reduce.py), on the first time step of every role as converted (plain min/max, a few
-per cent of that task's work). ``scan`` samples the first time step itself. Coordinates are checked
-on their values, which detection reads anyway.
+per cent of that task's work); every implausible variable of the chunk gets its line
+(:class:`ImplausibleValues`, printed one ``circtrack: error:`` line each). ``scan`` judges with the
+same :func:`problems` on the same values: the first time step of the levels a run without
+--metrics reads (scan._default_levels), so both quote the same range and advice. Coordinates are
+checked on their values, which detection reads anyway.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-from circtrack.errors import InputError
+from circtrack.errors import InputError, ManyLines
 from circtrack.inputs import units as U
 from circtrack.inputs.rules import VARIABLES
+
+class ImplausibleValues(ManyLines, InputError):
+    """Implausible values of one or more variables: one line each (exit status 1)."""
+
 
 # kind -> (low, high) in the canonical unit of inputs/units.py, and what it is called in messages
 RANGES = {
@@ -68,14 +75,16 @@ def fitting_units(lo, hi, kind, bounds):
     return out
 
 
-def check_values(path, role, name, stated, kind, raw_lo, raw_hi, factor, offset):
-    """One :class:`InputError` line when the converted range ``raw_lo..raw_hi`` is implausible."""
+def problem(path, role, name, stated, kind, raw_lo, raw_hi, factor, offset):
+    """The one line (``path: variable ...``) when the converted range ``raw_lo..raw_hi`` is
+    implausible, else None. The range is said once when nothing was converted (stated units are
+    the canonical ones), twice (as stated, as converted) otherwise."""
     if not (np.isfinite(raw_lo) and np.isfinite(raw_hi)):
-        return
+        return None
     lo_b, hi_b, what = range_of(role, kind)
     lo, hi = sorted((raw_lo * factor + offset, raw_hi * factor + offset))
     if lo >= lo_b and hi <= hi_b:
-        return
+        return None
     canon = U.CANONICAL[kind]
     fits = [u for u in fitting_units(raw_lo, raw_hi, kind, (lo_b, hi_b)) if U.conversion(u, kind) != (factor, offset)]
     if fits:
@@ -84,9 +93,20 @@ def check_values(path, role, name, stated, kind, raw_lo, raw_hi, factor, offset)
                f"in a config file)")
     else:
         fix = f"no units circtrack knows make them plausible: check that '{name}' is {what} and convert it first"
-    raise InputError(f"{path}: variable '{name}' ({role}) says units '{stated}' but its values, {raw_lo:.5g} to "
-                     f"{raw_hi:.5g} {stated or '(no units)'}, are {lo:.5g} to {hi:.5g} {canon}, outside the "
-                     f"plausible {lo_b:g} to {hi_b:g} {canon} for {what}; {fix}; circtrack never guesses units")
+    if (factor, offset) == (1.0, 0.0):
+        seen = f"its values, {lo:.5g} to {hi:.5g} {canon}, lie"
+    else:
+        seen = (f"its values, {raw_lo:.5g} to {raw_hi:.5g} {stated or '(no units)'}, are {lo:.5g} to {hi:.5g} "
+                f"{canon},")
+    return (f"{path}: variable '{name}' ({role}) says units '{stated}' but {seen} outside the plausible "
+            f"{lo_b:g} to {hi_b:g} {canon} for {what}; {fix}; circtrack never guesses units")
+
+
+def check_values(path, role, name, stated, kind, raw_lo, raw_hi, factor, offset):
+    """One :class:`InputError` line when the converted range ``raw_lo..raw_hi`` is implausible."""
+    line = problem(path, role, name, stated, kind, raw_lo, raw_hi, factor, offset)
+    if line:
+        raise InputError(line)
 
 
 def check_coordinate(path, key, name, stated, values):
@@ -135,26 +155,26 @@ def slab_range(arr):
     return lo, hi
 
 
-def check_slabs(readers, slabs, units):
-    """Every role of a chunk (canonical units) inside its range; the message states the raw values."""
-    for role, arr in slabs.items():
-        rd = readers[role]
+def problems(readers, slabs, units):
+    """The lines of :func:`problem` for every role of a chunk (canonical units, first time step),
+    in the order of the roles (ua, va, ta, ...); the messages state the raw values. ``track`` (in the task reading each
+    file's first chunk) and ``scan`` (on the levels a default run reads) both judge with this."""
+    out = []
+    order = list(VARIABLES)
+    for role in sorted(slabs, key=lambda r: order.index(r) if r in order else len(order)):
+        arr, rd = slabs[role], readers[role]
         lo, hi = slab_range(arr)
         f, o = (rd.factor or 1.0), rd.offset
-        check_values(rd.path, role, rd.name, units.get(role, ""), VARIABLES[role]["kind"],
-                     (lo - o) / f, (hi - o) / f, f, o)
+        line = problem(rd.path, role, rd.name, units.get(role, ""), VARIABLES[role]["kind"],
+                       (lo - o) / f, (hi - o) / f, f, o)
+        if line:
+            out.append(line)
+    return out
 
 
-def sample_range(reader, ds):
-    """``(min, max)`` of the raw (unconverted) values of the first time step of ``reader``'s variable,
-    on the top and bottom of its selected levels (for ``scan``); NaN, NaN when everything is missing."""
-    import dataclasses
-    sel = dict(reader.selection)
-    for d in [d for d, v in sel.items() if isinstance(v, list) and d in reader.dims]:
-        sel[d] = sorted({sel[d][0], sel[d][-1]})          # only the two extreme levels: top and bottom
-    # model levels: the raw values on the model levels themselves (no interpolation needed)
-    r = dataclasses.replace(reader, selection=sel, factor=1.0, offset=0.0, hybrid=None, ground=None)
-    arr = np.asarray(r.read_noted(ds, 0, 1)[0], dtype=np.float64)
-    if not np.isfinite(arr).any():
-        return np.nan, np.nan
-    return float(np.nanmin(arr)), float(np.nanmax(arr))
+def check_slabs(readers, slabs, units):
+    """Every role of a chunk inside its range, else one :class:`ImplausibleValues` naming each
+    implausible variable on a line of its own."""
+    lines = problems(readers, slabs, units)
+    if lines:
+        raise ImplausibleValues("\n".join(lines))

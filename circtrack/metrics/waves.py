@@ -10,7 +10,9 @@ where the maximum sits on the window edge or the window lacks data are left out.
 ``planetary_wave_K_amplitude`` is the amplitude of zonal wavenumber K (1, 2, 3) of the northward
 wind at waves.level_hpa (300 hPa), ``v(lon) = [v] + sum_K A_K cos(K lon - theta_K)``, computed per
 latitude and averaged with cos(lat) weights over waves.band (35-65 deg poleward). From time means
-these are the stationary waves; from daily input they include the travelling ones.
+these are the stationary waves; from daily input they include the travelling ones. An amplitude
+below waves.min_amplitude_m_s is noise (float rounding of a zonally uniform field), not a wave: its
+value is kept with the flag ``weak_wave``, so no trend is fitted to it (the rule is this project's).
 
 References
 ----------
@@ -53,7 +55,9 @@ WAVE_METRICS = [
            "per latitude (discrete Fourier transform weighted by the longitude spacing), cos(lat)-weighted mean "
            "over waves.band (35-65 deg poleward); latitudes with any missing longitude are left out (at least "
            "run.min_window_fraction of the band's weight must remain); NaN (too_little_data) when the grid does not go "
-           "round the circle; v interpolated linearly in log-p when 300 hPa is absent (note interpolated_level)",
+           "round the circle; v interpolated linearly in log-p when 300 hPa is absent (note interpolated_level); "
+           "an amplitude below waves.min_amplitude_m_s (0.05 m s-1, ours) is noise, not a wave: value kept, flag "
+           "weak_wave (so trend, season and plot leave it out)",
            WAVE_REF)
     for k in WAVENUMBERS
 ]
@@ -143,7 +147,8 @@ def compute_waves(fields, cfg):
         enough = share >= cfg["run"]["min_window_fraction"]
         for k, m in enumerate(WAVE_METRICS):
             out[m.id].value[:, h] = np.where(enough[:, k], mean[:, k], np.nan)
-            out[m.id].flag[:, h] = np.where(enough[:, k], "ok", "too_little_data")
+            weak = enough[:, k] & (mean[:, k] < w["min_amplitude_m_s"])
+            out[m.id].flag[:, h] = np.where(enough[:, k], np.where(weak, "weak_wave", "ok"), "too_little_data")
     if fields.interpolated("va", w["level_hpa"], cfg):
         add_note(out.values(), "interpolated_level")
     return out

@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from circtrack.kernels.crossings import find_crossing, first_crossing, level_crossing, reverse
+from circtrack.kernels.crossings import find_crossing, find_level_crossing, first_crossing, level_crossing, reverse
 
 
 def test_straight_line_zero_is_exact_on_nonuniform_grid():
@@ -128,3 +128,42 @@ def test_pole_row_zero_within_rounding_counts_as_zero():
     assert c.reason == "crossing_at_pole_row" and np.isnan(c.position)
     # a clearly positive pole value is no sign change
     assert find_crossing(np.array([2.4, 1.5, 0.96, 0.3]), lat, 0).reason == "no_sign_change_in_window"
+
+
+def test_touching_zero_is_no_crossing():
+    # quantized data decaying to exactly 0.000 and staying there (the demo's surface westerlies towards
+    # the pole before it had polar easterlies): the wind touches zero but never changes sign
+    x = np.arange(0.0, 40.0, 4.0)
+    y = np.array([9.0, 7.0, 4.0, 1.0, 0.1, 0.0, 0.0, 0.0, 0.0, 0.0])
+    c = find_crossing(y, x, 0, direction="down", pole=None)
+    assert np.isnan(c.position) and c.reason == "no_sign_change_in_window"
+    # touching zero and turning back is no crossing either; the later real sign change is
+    y2 = np.array([9.0, 4.0, 0.0, 3.0, 5.0, 2.0, -1.0, -2.0, -2.0, -2.0])
+    assert find_crossing(y2, x, 0, direction="down").position == pytest.approx(20.0 + 4.0 * 2.0 / 3.0)
+    # the same for "up" (trades to westerlies) and "any"
+    assert find_crossing(-y, x, 0, direction="up").reason == "no_sign_change_in_window"
+    assert find_crossing(y, x, 0, direction="any").reason == "no_sign_change_in_window"
+
+
+def test_zeros_then_the_other_sign_cross_at_the_first_zero():
+    x = np.arange(0.0, 40.0, 4.0)
+    y = np.array([9.0, 7.0, 4.0, 0.0, 0.0, 0.0, -1.0, -2.0, -2.0, -2.0])
+    c = find_crossing(y, x, 0, direction="down")
+    assert c.reason == "ok" and c.position == pytest.approx(12.0)
+    assert find_crossing(-y, x, 0, direction="up").position == pytest.approx(12.0)
+    # a run of zeros that ends in a missing point: the sign may change in the gap
+    y3 = np.array([9.0, 7.0, 4.0, 0.0, 0.0, np.nan, -1.0, -2.0, -2.0, -2.0])
+    c3 = find_crossing(y3, x, 0, direction="down")
+    assert np.isnan(c3.position) and c3.reason == "crossing_in_data_gap"
+    # the level crossings (half maximum, OLR threshold) follow the same rule
+    flat = np.array([9.0, 7.0, 4.0, 1.0, 1.0, 1.0, 1.0, 1.0, 1.0, 1.0])
+    assert find_level_crossing(flat, x, 0, 1.0, pole=None).reason == "no_sign_change_in_window"
+
+
+def test_zeros_onto_a_pole_row_are_a_possible_crossing_there():
+    lat = np.array([75.0, 80.0, 85.0, 90.0])
+    c = find_crossing(np.array([2.0, 0.5, 0.0, 0.0]), lat, 0)
+    assert np.isnan(c.position) and c.reason == "crossing_at_pole_row"
+    # without a pole row the same run of zeros is no sign change
+    c2 = find_crossing(np.array([2.0, 0.5, 0.0, 0.0]), lat - 5.0, 0)
+    assert c2.reason == "no_sign_change_in_window"

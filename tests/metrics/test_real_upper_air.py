@@ -24,14 +24,18 @@ pytestmark = pytest.mark.skipif(not os.path.exists(SOURCE), reason="Debian packa
 A, G = 6.371e6, 9.80665
 
 
-@pytest.fixture(scope="module")
-def path(tmp_path_factory):
-    p = tmp_path_factory.mktemp("uvt") / "uvt_jan.nc"
+def fixed_copy(p):
+    """A copy of the source at ``p`` with its two wrong attributes fixed (see the module docstring)."""
     shutil.copy(SOURCE, p)
     with netCDF4.Dataset(p, "a") as f:
         f["time"].units = "days since 1988-01-01"      # "Month" in the file
         f["T"].units = "K"                             # "C" in the file, values in kelvin
     return str(p)
+
+
+@pytest.fixture(scope="module")
+def path(tmp_path_factory):
+    return fixed_copy(tmp_path_factory.mktemp("uvt") / "uvt_jan.nc")
 
 
 @pytest.fixture(scope="module")

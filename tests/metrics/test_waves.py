@@ -112,3 +112,43 @@ def test_regional_grid_has_no_planetary_waves(tmp_path):
     r = _rows(engine.track([path], config.load(), metric_ids=["planetary_wave_1_amplitude"]))
     val, flag = r[("NH", "zonal", "planetary_wave_1_amplitude")]
     assert np.isnan(val) and flag == "too_little_data"
+
+
+def test_noise_level_waves_are_flagged_not_trended(tmp_path):
+    """A wave at float-noise level (the demo's waves 1 and 2: ~1e-4 m/s from rounding a field without
+    them) is no wave: value kept, flag weak_wave, so trend leaves it out; a real wave stays ok. The
+    floor (waves.min_amplitude_m_s, 0.05 m/s) is this project's."""
+    rng = np.random.default_rng(5)
+    noise = 1e-4 * rng.standard_normal((LAT.size, LON.size))          # rounding-sized, every wavenumber
+    field = 10.0 + noise + np.where(LAT[:, None] >= 0, 1.0, 0.0) * np.cos(3 * LAM)[None, :]
+    path = _write(tmp_path / "noise.nc", "va", field)
+    r = _rows(engine.track([path], config.load(), metric_ids=[f"planetary_wave_{k}_amplitude" for k in (1, 2, 3)]))
+    for k in (1, 2):
+        for hemi in ("NH", "SH"):
+            value, flag = r[(hemi, "zonal", f"planetary_wave_{k}_amplitude")]
+            assert flag == "weak_wave" and 0.0 < value < 1e-3
+    assert r[("NH", "zonal", "planetary_wave_3_amplitude")] == (pytest.approx(1.0, abs=1e-3), "ok")
+    assert r[("SH", "zonal", "planetary_wave_3_amplitude")][1] == "weak_wave"
+    # the floor is a parameter: below it everything counts
+    cfg = config.load()
+    cfg["waves"]["min_amplitude_m_s"] = 0.0
+    r0 = _rows(engine.track([path], cfg, metric_ids=["planetary_wave_1_amplitude"]))
+    assert r0[("NH", "zonal", "planetary_wave_1_amplitude")][1] == "ok"
+
+
+def test_trend_leaves_weak_waves_out(tmp_path):
+    """The demo's waves 1 and 2 (noise) get no trend rows; wave 3 (a real, constant wave) does."""
+    from click.testing import CliRunner
+
+    from circtrack.cli import main
+
+    sample = str(__import__("pathlib").Path(__file__).resolve().parents[2] / "sample_inputs" / "model_q")
+    ids = ",".join(f"planetary_wave_{k}_amplitude" for k in (1, 2, 3))
+    csv = tmp_path / "w.csv"
+    r = CliRunner().invoke(main, ["track", sample, "-o", str(csv), "--metrics", ids, "-q"])
+    assert r.exit_code == 0, r.output
+    r = CliRunner().invoke(main, ["trend", str(csv), "-o", str(tmp_path / "t.csv")])
+    assert r.exit_code == 0, r.output
+    trended = {line.split(",")[1] for line in (tmp_path / "t.csv").read_text().splitlines()[1:]}
+    assert trended == {"planetary_wave_3_amplitude"}
+    assert "planetary_wave_1_amplitude" in r.stderr and "weak_wave" in r.stderr
