@@ -304,14 +304,17 @@ def open_target(url, cfg):
     if url.lower().endswith((".grib", ".grib2", ".grb", ".grb2")):
         raise InputError(f"{url}: GRIB is read from local files only; copy it to a disk or pass --cache-dir DIR")
     fs, path = filesystem(url, cfg)
-    f = _call(url, cfg, fs.open, path, "rb", block_size=int(s["block_bytes"]), cache_type="blockcache",
-              cache_options={"maxblocks": max(1, int(s["cached_blocks"]))})
+    f = _open_file(url, cfg, fs, path)
     try:
         head = _call(url, cfg, f.read, 8)
         f.seek(0)
     except BaseException:
         _release(f)
         raise
+    if _scheme(url) == "s3" and s["direct_http"]:
+        from circtrack.inputs.presigned import remember
+
+        remember(fs, path, f.size)          # for the workers' reads (inputs/presigned.py)
     if head[:4] in _CLASSIC_MAGIC:
         _release(f)
         raise InputError(f"{url}: a netCDF classic file cannot be read in byte ranges; pass --cache-dir DIR to read "
@@ -320,6 +323,13 @@ def open_target(url, cfg):
         _release(f)
         raise InputError(f"{url}: the object is empty; re-upload it, or pass --on-bad-file skip")
     return f, "h5netcdf", {}, lambda: _release(f)
+
+
+def _open_file(url, cfg, fs, path):
+    """The fsspec file of an object: reads in blocks of ``block_bytes``, at most ``cached_blocks`` kept."""
+    s = _settings(cfg)
+    return _call(url, cfg, fs.open, path, "rb", block_size=int(s["block_bytes"]), cache_type="blockcache",
+                 cache_options={"maxblocks": max(1, int(s["cached_blocks"]))})
 
 
 class RawObject:
@@ -405,7 +415,9 @@ def open_raw(url, cfg):
     read needs are fetched at its start, its HDF5 chunks merged into runs and fetched in concurrent
     requests of at most ``[storage] request_bytes`` (:mod:`circtrack.inputs.ranges`)."""
     try:
-        target, _engine, _kw, close = open_target(url, for_metadata(cfg))
+        target, close = _open_direct(url, cfg)
+        if target is None:
+            target, _engine, _kw, close = open_target(url, for_metadata(cfg))
     except InputError:
         return None
     import h5netcdf.legacyapi
@@ -420,6 +432,32 @@ def open_raw(url, cfg):
         close()
         raise
     return RawObject(nc, lambda: (rfile.drop(), close()), rfile, int(_settings(cfg)["request_bytes"]))
+
+
+def _open_direct(url, cfg):
+    """``(file, close)`` of an object whose presigned URL and size this process knows (the parent
+    signed it while planning: inputs/presigned.py), its metadata read by direct GETs without an
+    s3fs session; ``(None, None)`` otherwise. InputError where :func:`open_target` refuses."""
+    s = _settings(cfg)
+    if _scheme(url) != "s3" or not s["direct_http"]:
+        return None, None
+    from circtrack.inputs.presigned import open_direct
+
+    fs, path = filesystem(url, cfg)
+    meta = _settings(for_metadata(cfg))
+    f = open_direct(fs, path, meta["block_bytes"], meta["cached_blocks"],
+                    lambda: _open_file(url, for_metadata(cfg), fs, path), _release)
+    if f is None:
+        return None, None
+    try:
+        head = _call(url, cfg, f.read, 8)
+        f.seek(0)
+        if head[:4] in _CLASSIC_MAGIC or not head:
+            raise InputError(f"{url}: not read in byte ranges")        # open_target says why
+    except BaseException:
+        f.close()
+        raise
+    return f, f.close
 
 
 def _release(f):

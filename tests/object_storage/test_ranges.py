@@ -267,19 +267,6 @@ def _fetch(url, start, n, direct):
     return got, bytes(out)
 
 
-@pytest.fixture
-def open_aws(open_s3, monkeypatch):
-    """The AWS environment for the server that takes presigned URLs (moto's signing server answers
-    them with HTTP 500: there the direct path steps aside, which the other tests go through)."""
-    for k in [k for k in os.environ if k.startswith("AWS_")]:
-        monkeypatch.delenv(k)
-    for k, v in open_s3.env().items():
-        monkeypatch.setenv(k, v)
-    P._DIRECT.clear()
-    yield open_s3
-    P._DIRECT.clear()
-
-
 def test_direct_and_s3fs_fetches_give_the_same_bytes(open_aws, local_data, monkeypatch):
     calls = []
     real = P._get_into
