@@ -28,6 +28,7 @@ DIRECT_THREADS = 8            # concurrent direct GETs per process
 DIRECT_TIMEOUT_S = 60.0       # a socket silent this long: the request falls back to s3fs
 PRESIGN_S = 3600              # lifetime of a presigned URL
 REUSE_MARGIN_S = 600          # a kept URL is used while it has at least this long to run
+PROGRESS_STEP = 512 * 1024    # a fetch tells how far it has come every this many bytes or so
 _DIRECT = {}                  # process id -> {"pool": executor, "conns": {(scheme, netloc): [free]}, "off": set()}
 _SIGNED = {}                  # object -> [presigned URL (split), expiry (time.time()), size or None]
 _DIRECT_LOCK = threading.Lock()
@@ -51,9 +52,9 @@ def _direct_state():
         return st
 
 
-async def direct_get(fs, bucket, key, vers, start, out):
+async def direct_get(fs, bucket, key, vers, start, out, progress=None):
     """``read_range`` on a presigned URL and the standard library's HTTP client; None when it does
-    not apply or fails (the caller then asks s3fs)."""
+    not apply or fails (the caller then asks s3fs). ``progress``: as for ``read_range``."""
     import asyncio
     from urllib.parse import urlsplit
 
@@ -75,7 +76,7 @@ async def direct_get(fs, bucket, key, vers, start, out):
         return None
     loop = asyncio.get_running_loop()
     try:
-        return await loop.run_in_executor(st["pool"], _get_into, st, parts, start, out)
+        return await loop.run_in_executor(st["pool"], _get_into, st, parts, start, out, progress)
     except _Fallback:
         _give_up(st, ident, parts)
         return None
@@ -239,7 +240,7 @@ def _proxied(parts):
     return not urllib.request.proxy_bypass(parts.hostname or "")
 
 
-def _get_into(st, parts, start, out):
+def _get_into(st, parts, start, out, progress=None):
     """One range GET on a kept-alive connection, the body received into ``out``; raises _Fallback.
     A kept-alive connection the server has closed meanwhile (it may, when idle) is replaced by a new
     one once, before giving up."""
@@ -251,7 +252,7 @@ def _get_into(st, parts, start, out):
         conn = free.pop() if free else None
     if conn is not None:
         try:
-            return _get_on(st, where, conn, parts, start, out)
+            return _get_on(st, where, conn, parts, start, out, progress)
         except (http.client.RemoteDisconnected, ConnectionResetError, BrokenPipeError):
             pass                                   # stale: the server closed it while it waited here
         except Exception as e:  # noqa: BLE001 - whatever went wrong, s3fs takes the request over
@@ -264,12 +265,12 @@ def _get_into(st, parts, start, out):
     else:
         conn = http.client.HTTPConnection(parts.hostname, parts.port, timeout=DIRECT_TIMEOUT_S)
     try:
-        return _get_on(st, where, conn, parts, start, out)
+        return _get_on(st, where, conn, parts, start, out, progress)
     except Exception as e:  # noqa: BLE001 - whatever went wrong, s3fs takes the request over
         raise _Fallback(str(e)) from e
 
 
-def _get_on(st, where, conn, parts, start, out):
+def _get_on(st, where, conn, parts, start, out, progress=None):
     n = len(out)
     try:
         conn.request("GET", f"{parts.path}?{parts.query}", headers={"Range": f"bytes={start}-{start + n - 1}"})
@@ -279,11 +280,16 @@ def _get_on(st, where, conn, parts, start, out):
             raise _Fallback(f"HTTP {resp.status}")
         view = memoryview(out).cast("B")
         pos = 0
+        step = n if progress is None else PROGRESS_STEP      # readinto fills all it is given before it returns
+        if progress is not None:
+            progress(0)
         while pos < n:
-            k = resp.readinto(view[pos:])
+            k = resp.readinto(view[pos:pos + step])
             if not k:
                 raise _Fallback("short read")
             pos += k
+            if progress is not None:
+                progress(pos)
         if not resp.isclosed():
             resp.read()
     except BaseException:

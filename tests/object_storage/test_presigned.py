@@ -101,7 +101,7 @@ def test_a_failing_direct_read_falls_back_to_s3fs(open_aws, local_data, monkeypa
     blob = local_data["files"][1].read_bytes()
     opened = []
 
-    def broken(st, parts, start, out):
+    def broken(st, parts, start, out, progress=None):
         out[:3] = b"bad"                      # a partial answer must not survive
         raise P._Fallback("HTTP 403")
 

@@ -307,7 +307,7 @@ def test_a_failing_direct_fetch_falls_back_to_s3fs(open_aws, local_data, monkeyp
     blob = local_data["files"][0].read_bytes()
     tried = []
 
-    def broken(st, parts, start, out):
+    def broken(st, parts, start, out, progress=None):
         tried.append(start)
         out[:3] = b"bad"                      # a partial answer must not survive
         raise P._Fallback("refused")
@@ -356,3 +356,84 @@ def test_a_kept_alive_connection_the_server_closed_is_replaced(open_aws, local_d
     P._DIRECT[os.getpid()]["conns"][("http", endpoint.netloc)] = [stale]
     got, data = _fetch(url, 100, 1000, True)
     assert data == blob[100:1100] and not P._DIRECT[os.getpid()]["off"]
+
+
+# --------------------------------------------------------------------------- decoding while the bytes arrive
+def test_arriving_bytes_are_given_once_they_are_there():
+    """Arriving.view waits until every piece a range touches has received it (pieces fill from
+    their start on), and gives None when the fetch ended without them."""
+    import threading
+
+    pieces = [(100, 150), (150, 200)]
+    buf = bytearray(100)
+    progress = G._Progress(pieces)
+    arriving = G.Arriving([(100, 200)], [buf], progress)
+    assert not progress.wait(140, 160, 0.01)                 # nothing there yet
+    buf[:] = bytes(range(100))
+
+    def fill():
+        time.sleep(0.05)
+        progress.update(0, 50)
+        time.sleep(0.05)
+        progress.update(1, 20)
+        progress.finish()
+
+    t = threading.Thread(target=fill)
+    t.start()
+    t0 = time.perf_counter()
+    got = arriving.view(140, 25)                            # bytes 140..165: all of piece 0, 15 of piece 1
+    assert time.perf_counter() - t0 >= 0.09 and bytes(got) == bytes(range(40, 65))
+    assert got.readonly
+    t.join()
+    assert arriving.view(160, 30) is None                   # ended with piece 1 at 20 of 50 bytes
+    assert arriving.order(100) == arriving.order(150) < arriving.order(110) < arriving.order(149)  # side by side
+    wave = G._Progress([(k * 10, k * 10 + 10) for k in range(G.IN_FLIGHT + 1)])
+    later = G.Arriving([(0, 10 * (G.IN_FLIGHT + 1))], [bytearray(10 * (G.IN_FLIGHT + 1))], wave)
+    assert later.order(10 * G.IN_FLIGHT) > later.order(9)       # a piece that starts when one of the first ends
+
+
+def test_chunks_decoded_in_any_order_give_the_same_array(chunked):
+    from circtrack.inputs import chunks as CH
+
+    if not CH.available():
+        pytest.skip("isal not installed")
+    path, vals = chunked
+    blob = memoryview(bytearray(path.read_bytes()))
+    with h5py.File(path, "r") as h:
+        ds = h["ua"]
+        lay = CH.dataset_layout(ds, {})
+        index = (slice(None), slice(0, 3), slice(None), slice(1, 6))
+        table = G.chunk_table(ds, index)
+
+        def stored(off):
+            return table[off][2], blob[table[off][0]:][:table[off][1]]
+
+        seen = []
+        got = CH.read_stored(lay, list(index), stored, order=lambda off: seen.append(off) or -table[off][0])
+        np.testing.assert_array_equal(got, vals[:, 0:3, :, 1:6])
+        np.testing.assert_array_equal(got, CH.read_stored(lay, list(index), stored))
+        assert len(seen) == len(table) > 1
+
+
+def test_a_fetch_failing_while_its_chunks_are_decoded_raises_its_error(open_aws, monkeypatch):
+    """A piece that cannot be fetched: the read raises the fetch's error, as when it waited for the
+    whole fetch first; the other pieces' bytes are not decoded into a result."""
+    raw = R.open_raw(f"s3://{BUCKET}/reanalysis/daily/uv_02.nc", cfg(request_bytes=4096))
+    real = G.read_range
+    calls = []
+
+    async def failing(fs, path, start, out, direct_http=True, progress=None):
+        calls.append(start)
+        if len(calls) == 3:
+            raise OSError("connection reset by the test")
+        return await real(fs, path, start, out, direct_http, progress)
+
+    monkeypatch.setattr(G, "read_range", failing)
+    try:
+        index = [slice(0, 2), slice(None), slice(None), slice(None)]
+        raw.prefetch("ua", index)
+        with pytest.raises(OSError, match="reset by the test"):
+            raw.read_direct("ua", list(index))
+        assert raw._rfile._pending == [] and raw._rfile._data == []
+    finally:
+        raw.close()
