@@ -338,19 +338,24 @@ def dataset_layout(dset, layouts):
     return layouts[dset.name]
 
 
-def read_stored(lay, index, stored):
+def read_stored(lay, index, stored, order=None):
     """``variable[index]`` from chunks as stored: ``stored(offset)`` gives ``(filter_mask, buffer)``
     of the chunk at ``offset`` (the chunk's first element, a tuple), or None when the chunk has no
     stored bytes (never written). None when a chunk is missing or cannot be decoded, or the index is
-    one :func:`read` does not take: the caller then reads the usual way."""
+    one :func:`read` does not take: the caller then reads the usual way. ``order(offset)``: a key
+    the chunks are decoded in the order of (e.g. that in which their bytes arrive); by default
+    in index order. Each chunk lands in its own part of the output: the order changes no value."""
     if _inflate_lib is None:
         return None
     axes = _axes(index, lay.shape)
     if axes is None:
         return None
     out = np.empty([len(src) for src, _ in axes], dtype=lay.dtype)
+    met = _chunks_met(axes, lay)
+    if order is not None:
+        met = sorted(met, key=lambda m: order(m[0]))
     try:
-        for offset, o_idx, c_idx in _chunks_met(axes, lay):
+        for offset, o_idx, c_idx in met:
             got = stored(offset)
             if got is None:
                 return None

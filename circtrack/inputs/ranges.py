@@ -28,7 +28,7 @@ import threading
 
 import numpy as np
 
-from circtrack.inputs.presigned import direct_get
+from circtrack.inputs.presigned import PROGRESS_STEP, direct_get
 
 MERGE_GAP = 256 * 1024        # chunks closer than this are fetched in one run (the gap is read and dropped)
 SETTLE_S = 30.0               # fetches in flight when an object is closed: waited for this long at most
@@ -50,7 +50,7 @@ class RangeFile(io.RawIOBase):
         self._pos = 0
         self._starts, self._data = [], []       # sorted extents: start offset -> bytes (memoryviews)
         self._bufs = []                         # per extent its pool buffer (None: not from the pool)
-        self._pending = []                      # background fetches: (runs, pieces, future)
+        self._pending = []                      # background fetches: (runs, pieces, bufs, future, progress)
         self.requests = 0                       # range requests made by prefetch (for tests and profiles)
 
     # -- the file protocol h5py's file-object driver uses
@@ -142,8 +142,9 @@ class RangeFile(io.RawIOBase):
         return data[a:a + size]
 
     def _fetch(self, runs, request_bytes):
-        """``(runs, pieces, buffers, coroutine)``: every run fetched into a buffer of its own (from
-        the pool) in concurrent pieces of at most ``request_bytes``."""
+        """``(runs, pieces, buffers, coroutine, progress)``: every run fetched into a buffer of its
+        own (from the pool) in concurrent pieces of at most ``request_bytes``; ``progress`` tells
+        how far each piece has arrived (:class:`_Progress`)."""
         pieces, bufs, jobs = [], [], []
         for run in runs:
             buf = _take(run[1] - run[0])
@@ -152,20 +153,26 @@ class RangeFile(io.RawIOBase):
             for a, b in split_run(run, request_bytes):
                 pieces.append((a, b))
                 jobs.append((a, view[a - run[0]:b - run[0]]))
+        progress = _Progress(pieces)
 
-        async def one(a, out):
+        async def one(k, a, out):
             import asyncio
 
             if self._slots is None:
                 self._slots = asyncio.Semaphore(IN_FLIGHT)
             async with self._slots:             # first come, first served: the first read's pieces go first
-                return await read_range(self._fs, self._path, a, out, self._direct_http)
+                return await read_range(self._fs, self._path, a, out, self._direct_http,
+                                        progress=lambda n: progress.update(k, n))
 
         async def fetch_all():
             import asyncio
 
-            return await asyncio.gather(*[one(a, out) for a, out in jobs], return_exceptions=True)
-        return runs, pieces, bufs, fetch_all()
+            try:
+                return await asyncio.gather(*[one(k, a, out) for k, (a, out) in enumerate(jobs)],
+                                            return_exceptions=True)
+            finally:
+                progress.finish()
+        return runs, pieces, bufs, fetch_all(), progress
 
     def start(self, ranges, request_bytes):
         """Start fetching ``ranges`` (``(offset, size)`` pairs) in the background (merged into runs,
@@ -181,8 +188,18 @@ class RangeFile(io.RawIOBase):
             return
         import asyncio
 
-        runs, pieces, bufs, coro = self._fetch(runs, request_bytes)
-        self._pending.append((runs, pieces, bufs, asyncio.run_coroutine_threadsafe(coro, loop)))
+        runs, pieces, bufs, coro, progress = self._fetch(runs, request_bytes)
+        self._pending.append((runs, pieces, bufs, asyncio.run_coroutine_threadsafe(coro, loop), progress))
+
+    def streaming(self, ranges):
+        """For a read of ``ranges`` that one background fetch holds in full (:meth:`start`): a
+        :class:`Arriving` that gives views of its bytes as they arrive, to decode while the rest
+        comes; else None. The read still ends with :meth:`prefetch` and :meth:`release`."""
+        runs = merge_ranges(ranges, MERGE_GAP)
+        for entry in self._pending:
+            if all(any(a <= r0 and r1 <= b for a, b in entry[0]) for r0, r1 in runs):
+                return Arriving(entry[0], entry[2], entry[4])
+        return None
 
     def prefetch(self, ranges, request_bytes):
         """Make ``ranges`` available in memory: wait for the background fetches that hold them, and
@@ -202,7 +219,7 @@ class RangeFile(io.RawIOBase):
             return
         import fsspec.asyn
 
-        runs, pieces, bufs, coro = self._fetch(runs, request_bytes)
+        runs, pieces, bufs, coro, _progress = self._fetch(runs, request_bytes)
         self._install(runs, pieces, bufs, fsspec.asyn.sync(loop, lambda: coro))
 
     def _install(self, runs, pieces, bufs, got):
@@ -259,7 +276,7 @@ class RangeFile(io.RawIOBase):
         import time
 
         deadline = time.monotonic() + SETTLE_S
-        for _runs, _pieces, bufs, fut in self._pending:
+        for _runs, _pieces, bufs, fut, _progress in self._pending:
             try:
                 fut.result(timeout=max(0.0, deadline - time.monotonic()))
             except Exception:  # noqa: BLE001 - its bytes are not wanted; its error is not ours to report
@@ -269,6 +286,67 @@ class RangeFile(io.RawIOBase):
                 _give(buf)
         self._pending = []
         self._forget_extents()
+
+
+class _Progress:
+    """How many bytes of each piece of a fetch have arrived (each piece is received from its start
+    on, into its place in the run's buffer), for readers that decode while the rest arrives."""
+
+    def __init__(self, pieces):
+        self.pieces = pieces
+        self.filled = [0] * len(pieces)
+        self.done = False
+        self._cond = threading.Condition()
+
+    def update(self, k, n):
+        """Piece ``k`` holds its first ``n`` bytes (called from the fetching threads; a piece that
+        starts again, e.g. through s3fs after a failing direct GET, reports from 0 again)."""
+        with self._cond:
+            self.filled[k] = n
+            self._cond.notify_all()
+
+    def finish(self):
+        with self._cond:
+            self.done = True
+            self._cond.notify_all()
+
+    def _holds(self, start, end):
+        for (a, b), got in zip(self.pieces, self.filled):
+            if a < end and start < b and got < min(b, end) - a:
+                return False
+        return True
+
+    def wait(self, start, end, timeout):
+        """True once bytes ``start .. end`` have arrived; False when the fetch ended without them (a
+        failure: the caller learns of it from the fetch itself) or after ``timeout`` seconds."""
+        with self._cond:
+            return self._cond.wait_for(lambda: self._holds(start, end) or self.done, timeout) \
+                and self._holds(start, end)
+
+
+class Arriving:
+    """The bytes of a background fetch while they arrive: :meth:`view` waits for a range, and
+    :meth:`order` ranks byte offsets by when they are expected (pieces are fetched side by side,
+    ``IN_FLIGHT`` at a time, each from its start on)."""
+
+    def __init__(self, runs, bufs, progress):
+        self._runs, self._bufs, self._progress = runs, bufs, progress
+        self._longest = max((b - a for a, b in progress.pieces), default=0)
+
+    def view(self, offset, size):
+        """A read-only view of bytes ``offset .. offset + size`` once they have arrived, or None
+        (the fetch failed: :meth:`RangeFile.prefetch` then raises its error)."""
+        for (a, b), buf in zip(self._runs, self._bufs):
+            if a <= offset and offset + size <= b:
+                if not self._progress.wait(offset, offset + size, SETTLE_S * 10):
+                    return None
+                return memoryview(buf).toreadonly()[offset - a:offset - a + size]
+        return None
+
+    def order(self, offset):
+        pieces = self._progress.pieces
+        k = max(bisect.bisect_right([a for a, _ in pieces], offset) - 1, 0)
+        return (k // IN_FLIGHT) * self._longest + offset - pieces[k][0]
 
 
 # --------------------------------------------------------------------------- fetching into buffers
@@ -306,7 +384,7 @@ def _clear_pool():
         _POOL.clear()
 
 
-async def read_range(fs, path, start, out, direct_http=True):
+async def read_range(fs, path, start, out, direct_http=True, progress=None):
     """Fetch bytes ``start .. start + len(out)`` of object ``path`` into ``out`` (a writable buffer):
     returns the number of bytes, or raises.
 
@@ -319,19 +397,24 @@ async def read_range(fs, path, start, out, direct_http=True):
     arrives straight into ``out``. Measured against the local S3 server, 770 MB took 1.4-2.4 s of
     client CPU through fsspec's cat_ranges (which joins the blocks into a new bytes object per
     request, copied again by the caller), 0.7-1.2 s through aiohttp into the buffer, 0.4 s on the
-    standard library's client. Other filesystems: ``_cat_file``."""
+    standard library's client. Other filesystems: ``_cat_file``. ``progress(n)``: told now and then
+    that the first ``n`` bytes of ``out`` hold the object's bytes (from 0 again when the request
+    starts over)."""
     n = len(out)
     if n == 0:
         return 0
     call, split = getattr(fs, "_call_s3", None), getattr(fs, "split_path", None)
     if call is None or split is None:
         data = await fs._cat_file(path, start=start, end=start + n)
-        return _copy_exact(data, out, start)
+        got = _copy_exact(data, out, start)
+        if progress is not None:
+            progress(got)
+        return got
     from s3fs.core import _error_wrapper, version_id_kw
 
     bucket, key, vers = split(path)
     if direct_http:
-        got = await direct_get(fs, bucket, key, vers, start, out)
+        got = await direct_get(fs, bucket, key, vers, start, out, progress)
         if got is not None:
             return got
 
@@ -346,7 +429,9 @@ async def read_range(fs, path, start, out, direct_http=True):
             stream = getattr(getattr(body, "_raw_stream", None), "content", None)
             if stream is None or not hasattr(stream, "readany"):       # another transport: its own read
                 return _copy_exact(await body.read(), out, start)
-            pos = 0
+            pos = told = 0
+            if progress is not None:
+                progress(0)
             while pos < n:
                 block = await stream.readany()
                 if not block:
@@ -354,6 +439,9 @@ async def read_range(fs, path, start, out, direct_http=True):
                 k = min(len(block), n - pos)
                 out[pos:pos + k] = block if k == len(block) else memoryview(block)[:k]
                 pos += k
+                if progress is not None and (pos - told >= PROGRESS_STEP or pos == n):
+                    progress(pos)
+                    told = pos
             if pos != n:
                 raise OSError(f"short read from the object store: {pos} bytes of {n} at offset {start}")
             return pos

@@ -217,7 +217,8 @@ def test_a_forked_child_leaves_the_parents_connections_alone(keep_alive_server):
 # --------------------------------------------------------------------------- chunks decoded from fetched buffers
 def test_read_stored_decodes_chunks_from_buffers_as_the_disk_path(chunked):
     """chunks.read_stored on the stored bytes of each chunk (taken from the file by their byte
-    offsets) gives what netCDF4 reads; a chunk without stored bytes (never written) gives None."""
+    offsets) gives what netCDF4 reads, in whatever order the chunks are taken; a chunk without stored
+    bytes (never written) gives None."""
     from circtrack.inputs import chunks as CH
 
     if not CH.available():
@@ -236,6 +237,11 @@ def test_read_stored_decodes_chunks_from_buffers_as_the_disk_path(chunked):
                 else np.stack([vals[5, k, 3, :] for k in index[1]])
             np.testing.assert_array_equal(got, want)
             assert got.dtype == vals.dtype
+            seen = []                         # decoded in another order (as their bytes arrive): the same array
+            again = CH.read_stored(lay, list(index), lambda off: (table[off][2], blob[table[off][0]:][:table[off][1]]),
+                                   order=lambda off: seen.append(off) or -table[off][0])
+            np.testing.assert_array_equal(again, want)
+            assert len(seen) == len(table)
         assert CH.read_stored(lay, [0, 0, slice(None), slice(None)], lambda off: None) is None
         assert CH.dataset_layout(h["plain"], {}) is None            # contiguous, not compressed: not taken
 
@@ -265,19 +271,6 @@ def _fetch(url, start, n, direct):
     out = bytearray(n)
     got = fsspec.asyn.sync(fs.loop, G.read_range, fs, path, start, memoryview(out), direct)
     return got, bytes(out)
-
-
-@pytest.fixture
-def open_aws(open_s3, monkeypatch):
-    """The AWS environment for the server that takes presigned URLs (moto's signing server answers
-    them with HTTP 500: there the direct path steps aside, which the other tests go through)."""
-    for k in [k for k in os.environ if k.startswith("AWS_")]:
-        monkeypatch.delenv(k)
-    for k, v in open_s3.env().items():
-        monkeypatch.setenv(k, v)
-    P._DIRECT.clear()
-    yield open_s3
-    P._DIRECT.clear()
 
 
 def test_direct_and_s3fs_fetches_give_the_same_bytes(open_aws, local_data, monkeypatch):
@@ -320,7 +313,7 @@ def test_a_failing_direct_fetch_falls_back_to_s3fs(open_aws, local_data, monkeyp
     blob = local_data["files"][0].read_bytes()
     tried = []
 
-    def broken(st, parts, start, out):
+    def broken(st, parts, start, out, progress=None):
         tried.append(start)
         out[:3] = b"bad"                      # a partial answer must not survive
         raise P._Fallback("refused")
@@ -369,3 +362,61 @@ def test_a_kept_alive_connection_the_server_closed_is_replaced(open_aws, local_d
     P._DIRECT[os.getpid()]["conns"][("http", endpoint.netloc)] = [stale]
     got, data = _fetch(url, 100, 1000, True)
     assert data == blob[100:1100] and not P._DIRECT[os.getpid()]["off"]
+
+
+# --------------------------------------------------------------------------- decoding while the bytes arrive
+def test_arriving_bytes_are_given_once_they_are_there():
+    """Arriving.view waits until every piece a range touches has received it (pieces fill from
+    their start on), and gives None when the fetch ended without them."""
+    import threading
+
+    pieces = [(100, 150), (150, 200)]
+    buf = bytearray(100)
+    progress = G._Progress(pieces)
+    arriving = G.Arriving([(100, 200)], [buf], progress)
+    assert not progress.wait(140, 160, 0.01)                 # nothing there yet
+    buf[:] = bytes(range(100))
+
+    def fill():
+        time.sleep(0.05)
+        progress.update(0, 50)
+        time.sleep(0.05)
+        progress.update(1, 20)
+        progress.finish()
+
+    t = threading.Thread(target=fill)
+    t.start()
+    t0 = time.perf_counter()
+    got = arriving.view(140, 25)                            # bytes 140..165: all of piece 0, 15 of piece 1
+    assert time.perf_counter() - t0 >= 0.09 and bytes(got) == bytes(range(40, 65))
+    assert got.readonly
+    t.join()
+    assert arriving.view(160, 30) is None                   # ended with piece 1 at 20 of 50 bytes
+    assert arriving.order(100) == arriving.order(150) < arriving.order(110) < arriving.order(149)  # side by side
+    wave = G._Progress([(k * 10, k * 10 + 10) for k in range(G.IN_FLIGHT + 1)])
+    later = G.Arriving([(0, 10 * (G.IN_FLIGHT + 1))], [bytearray(10 * (G.IN_FLIGHT + 1))], wave)
+    assert later.order(10 * G.IN_FLIGHT) > later.order(9)       # a piece that starts when one of the first ends
+
+
+def test_a_fetch_failing_while_its_chunks_are_decoded_raises_its_error(open_aws, monkeypatch):
+    """A piece that cannot be fetched: the read raises the fetch's error, as when it waited for the
+    whole fetch first; the other pieces' bytes are not decoded into a result."""
+    raw = R.open_raw(f"s3://{BUCKET}/reanalysis/daily/uv_02.nc", cfg(request_bytes=4096))
+    real = G.read_range
+    calls = []
+
+    async def failing(fs, path, start, out, direct_http=True, progress=None):
+        calls.append(start)
+        if len(calls) == 3:
+            raise OSError("connection reset by the test")
+        return await real(fs, path, start, out, direct_http, progress)
+
+    monkeypatch.setattr(G, "read_range", failing)
+    try:
+        index = [slice(0, 2), slice(None), slice(None), slice(None)]
+        raw.prefetch("ua", index)
+        with pytest.raises(OSError, match="reset by the test"):
+            raw.read_direct("ua", list(index))
+        assert raw._rfile._pending == [] and raw._rfile._data == []
+    finally:
+        raw.close()

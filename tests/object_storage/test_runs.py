@@ -198,3 +198,30 @@ def test_object_replaced_during_a_run_is_refused(aws, local_data, tmp_path):
         assert not out.exists()
     finally:
         aws.client.delete_object(Bucket=BUCKET, Key=key)
+
+
+def test_workers_read_with_the_urls_signed_while_planning(open_aws, local_data, tmp_path, monkeypatch):
+    """Signed reads from a server that takes presigned URLs: the worker processes read metadata and
+    chunks by direct GETs with the URLs the parent signed while planning, never building an s3fs
+    session of their own; the rows equal those of the files on disk."""
+    import s3fs
+
+    from circtrack.inputs import presigned as P
+
+    log = tmp_path / "calls.txt"
+
+    def noting(what, real):
+        def wrapper(*a, **k):
+            with open(log, "a") as f:
+                f.write(f"{what} {os.getpid()}\n")
+            return real(*a, **k)
+        return wrapper
+
+    monkeypatch.setattr(s3fs.S3FileSystem, "set_session", noting("session", s3fs.S3FileSystem.set_session))
+    monkeypatch.setattr(P, "_get_into", noting("direct", P._get_into))
+    disk = csv_of(tmp_path, "disk.csv", local_data["files"][0].parent)
+    assert csv_of(tmp_path, "s3.csv", DAILY + "/") == disk
+    calls = [line.split() for line in log.read_text().splitlines()]
+    workers = {pid for what, pid in calls if pid != str(os.getpid())}
+    assert workers, "no worker process read an object"
+    assert not any(what == "session" and pid in workers for what, pid in calls)
