@@ -32,6 +32,7 @@ MASK_ATTRS = ("_FillValue", "missing_value")
 REFUSED_ATTRS = {"scale_factor", "add_offset", "_Unsigned", "_Encoding", "dtype"}
 HDF5_SIGNATURE = b"\x89HDF\r\n\x1a\n"
 SMALL = 1 << 16          # two-dimensional variables up to this many values (e.g. time bounds) are read
+LARGE = 1 << 22          # one-dimensional variables up to this many values (coordinates, time axes) are read
 
 
 class NeedsFullOpen(Exception):
@@ -143,7 +144,8 @@ def _from_netcdf(nc):
         if name in var.dimensions and var.dimensions != (name,):
             return None
         var.set_auto_maskandscale(False)
-        small = var.ndim <= 1 or (var.ndim == 2 and int(np.prod(var.shape)) <= SMALL)
+        size = int(np.prod(var.shape, dtype=np.int64))
+        small = (var.ndim <= 1 and size <= LARGE) or (var.ndim == 2 and size <= SMALL)
         values = np.asarray(var[...]) if small else None
         raw[name] = [var.dimensions, var.shape, dtype, a, values]
     used = {d for r in raw.values() for d in r[0]}
