@@ -54,7 +54,7 @@ def _on_dataset(path, cfg, work):
         ds.close()
 
 
-def _TIME_ERRORS():
+def _time_errors():
     """Overflow, and pandas' out-of-bounds dates when pandas is loaded (by xarray: a dataset opened
     without it, inputs/header.py, cannot raise them; not importing it saves 0.3 s of start-up)."""
     errors = sys.modules.get("pandas.errors")
@@ -66,7 +66,7 @@ def _detect(ds, path, overrides, cfg=None):
     time coordinate overflows the date arithmetic) as one line naming the file."""
     try:
         return D.detect(ds, path, overrides, cfg)
-    except _TIME_ERRORS() as e:
+    except _time_errors() as e:
         raise InputError(f"{path}: the time values cannot be decoded ({' '.join(str(e).split())}); a time value "
                          "may be missing or a fill value (e.g. 9.97e36): fix the time coordinate, or pass "
                          "--on-bad-file skip")
