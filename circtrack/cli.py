@@ -7,8 +7,8 @@ import sys
 import click
 
 from circtrack import __version__
-from circtrack.cli_support import (OneLineGroup, _fail, apply_storage, apply_units, guarded,  # noqa: F401
-                                   parse_vars, storage_options, track_options)
+from circtrack.cli_support import (OUTPUTS_CLOSED, OneLineGroup, _fail, apply_storage, apply_units,  # noqa: F401
+                                   guarded, parse_vars, storage_options, track_options)
 from circtrack.errors import UsageError
 
 
@@ -88,6 +88,7 @@ def _run_track(paths, output, config, variables, metrics, label, sectors, worker
     prog.done(len(outcome.columns["metric"]))
     from circtrack import summary
     summary.report(summary.of_outcome(outcome), click.echo, fail_on_empty)   # also with --quiet
+    OUTPUTS_CLOSED["done"] = True       # O.write committed and closed every output
     return outcome
 
 

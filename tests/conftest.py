@@ -62,3 +62,17 @@ def make_nc(tmp_path):
 @pytest.fixture
 def default_nc(make_nc):
     return make_nc("default.nc", ntime=3)
+
+
+@pytest.fixture(autouse=True)
+def _check_header_detection(monkeypatch):
+    """CIRCTRACK_CHECK_HEADERS=1: every header detection in the suite is compared with xarray's
+    (tests/header_check.py)."""
+    import os
+
+    if os.environ.get("CIRCTRACK_CHECK_HEADERS") == "1":
+        from circtrack.engine import prepare as PR
+        from tests.header_check import checking_on_dataset
+
+        monkeypatch.setattr(PR, "_on_dataset", checking_on_dataset(PR._on_dataset))
+    yield

@@ -10,9 +10,8 @@ Also here: which metrics a run can make without ``--metrics`` (:func:`available_
 
 from __future__ import annotations
 
+import sys
 from dataclasses import dataclass, field
-
-from pandas.errors import OutOfBoundsDatetime as OutOfBoundsError
 
 from circtrack.engine.times import iso_time
 from circtrack.errors import InputError
@@ -33,11 +32,33 @@ class FileInfo:
 
 def prepare_file(path, plan, cfg, overrides):
     """Open once for coordinates and readers, then close: workers reopen by path."""
+    return _on_dataset(path, cfg, lambda ds: _prepare_open(ds, path, plan, cfg, overrides))
+
+
+def _on_dataset(path, cfg, work):
+    """``work(ds)`` on the file's netCDF-4 header (:mod:`circtrack.inputs.header`: no xarray) when it
+    can stand for xarray's view of the file, else -- or when ``work`` asks more of it -- on the file
+    opened with xarray."""
+    from circtrack.inputs import header as H
+
+    head = H.open_header(path, cfg)
+    if head is not None:
+        try:
+            return work(head)
+        except H.NeedsFullOpen:
+            pass
     ds = D.open_dataset(path, remote.for_metadata(cfg))
     try:
-        return _prepare_open(ds, path, plan, cfg, overrides)
+        return work(ds)
     finally:
         ds.close()
+
+
+def _time_errors():
+    """Overflow, and pandas' out-of-bounds dates when pandas is loaded (by xarray: a dataset opened
+    without it, inputs/header.py, cannot raise them; not importing it saves 0.3 s of start-up)."""
+    errors = sys.modules.get("pandas.errors")
+    return (OverflowError,) if errors is None else (OverflowError, errors.OutOfBoundsDatetime)
 
 
 def _detect(ds, path, overrides, cfg=None):
@@ -45,7 +66,7 @@ def _detect(ds, path, overrides, cfg=None):
     time coordinate overflows the date arithmetic) as one line naming the file."""
     try:
         return D.detect(ds, path, overrides, cfg)
-    except (OverflowError, OutOfBoundsError) as e:
+    except _time_errors() as e:
         raise InputError(f"{path}: the time values cannot be decoded ({' '.join(str(e).split())}); a time value "
                          "may be missing or a fill value (e.g. 9.97e36): fix the time coordinate, or pass "
                          "--on-bad-file skip")
@@ -87,14 +108,13 @@ class MissingRoles(InputError):
 
 def detect_only(path, cfg, overrides):
     """What a file holds (coordinates, variables), opened and closed again."""
-    ds = D.open_dataset(path, remote.for_metadata(cfg))
-    try:
+    def work(ds):
         det = _detect(ds, path, overrides, cfg)
         if "lat" in det.coords:
             D.check_grid(ds, det)          # e.g. one pressure level: said before "no variable found"
         return det
-    finally:
-        ds.close()
+
+    return _on_dataset(path, cfg, work)
 
 
 def available_metrics(files, cfg, overrides, policy, left_out=None):

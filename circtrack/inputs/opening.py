@@ -18,8 +18,6 @@ import os
 import tempfile
 import warnings
 
-import xarray as xr
-
 from circtrack.errors import InputError
 from circtrack.inputs import remote
 from circtrack.inputs import times as T
@@ -119,7 +117,7 @@ def _engine_for(path, cfg):
     return source(path, cfg) if source is not None else (cfg["run"]["netcdf_engine"], {})
 
 
-def open_dataset(path, cfg) -> xr.Dataset:
+def open_dataset(path, cfg):
     """Open lazily with an explicitly named engine; times decoded with cftime for every calendar.
 
     netCDF through the configured engine, ``*.zarr`` through zarr, ``*.grib*`` through cfgrib (index
@@ -171,6 +169,8 @@ def _open_remote(url, cfg):
 
 def _open_lazily(path, target, engine, extra, cfg):
     """``xarray.open_dataset(target)`` with the engine named, failures as one line naming ``path``."""
+    import xarray as xr   # here, not at import: see inputs/header.py
+
     if engine == "netcdf4":
         _set_chunk_cache(cfg["run"]["chunk_cache_bytes"])
     coder = xr.coders.CFDatetimeCoder(use_cftime=True)

@@ -16,9 +16,11 @@ from __future__ import annotations
 import re
 
 import numpy as np
-import xarray as xr
 
 from circtrack.errors import InputError
+
+# xarray is imported where a dataset is opened or rebuilt: a run whose inputs are all detected from
+# their netCDF-4 headers (inputs/header.py) never imports it (nor pandas) in the planning process
 
 YEAR_ZERO_CALENDAR = "proleptic_gregorian"
 _YEAR_ZERO = re.compile(r"\bsince\s+0{1,4}-")
@@ -53,6 +55,8 @@ def open_with_time_units(path, engine, extra, cfg, coder):
 
     The time variable is the one named by ``--var time=NAME``, else the first of the usual names
     present. Its units and calendar as given in the file are kept in ``time_units_in_file``."""
+    import xarray as xr
+
     from circtrack.inputs.rules import COORDS
     given = cfg.get("units", {})
     try:
@@ -122,6 +126,8 @@ def _open_year_zero(path, engine, extra, coder, target=None):
     """Reopen a file whose time axis counts from year 0 and decode it in the proleptic Gregorian
     calendar with astronomical year numbering (year 0 exists, as ISO 8601 has it); None when the
     failure had another cause. The decision is recorded by detection (:func:`year_zero_note`)."""
+    import xarray as xr
+
     try:
         ds = xr.open_dataset(path if target is None else target, engine=engine, chunks=None, cache=False,
                              decode_times=False, decode_timedelta=False, create_default_indexes=False, **extra)
@@ -187,6 +193,8 @@ def _decode_months(values, units, calendar, path, name, cfg):
 
 def _open_months_since(path, engine, extra, cfg, coder, target=None):
     """Reopen without time decoding and decode "months since" ourselves (one clear error if ambiguous)."""
+    import xarray as xr
+
     try:
         ds = xr.open_dataset(path if target is None else target, engine=engine, chunks=None, cache=False,
                              decode_times=False, decode_timedelta=False, create_default_indexes=False, **extra)
@@ -214,6 +222,8 @@ def _decode_or_close(ds, path, cfg, coder, message):
 def _decode_times_ourselves(ds, path, cfg, coder):
     """The dataset opened with decode_times=False: "months since" by :func:`_decode_months`, other
     time variables by xarray's coder."""
+    import xarray as xr
+
     new = {}
     for name, var in ds.variables.items():
         units = str(var.attrs.get("units", ""))

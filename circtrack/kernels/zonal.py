@@ -260,6 +260,50 @@ def column_sums(v, e, p_pa, top="zero_at_top_level", all_valid=None):
             np.einsum("...ljk,l->...jk", e0, w), np.einsum("...ljk,l->...jk", ok.astype(np.float64), w))
 
 
+def energy_column_means(v, t, z, q, w, rows):
+    """Zonal means of the column sums of :func:`column_sums` for one time step where every value is
+    valid, without the masking passes: ``v, t, z, q (L, J, I)`` (any float type; only ``rows``
+    latitude rows at a time are converted to float64, into buffers reused from block to block) and
+    the layer weights ``w (L,)`` -> ``(J, 3)``: the means over longitude of ``sum w v e``,
+    ``sum w v`` and ``sum w e``, with ``e`` from :func:`moist_static_energy`. None as soon as a block
+    has a sum that is not finite (a missing value somewhere, or an overflow): the caller then takes
+    the general path.
+
+    The numbers are those of :func:`humidity_filled_aloft`, :func:`moist_static_energy` and
+    :func:`column_sums` with ``all_valid=True`` on the same rows (the same operations on the same
+    values, updated in place; the level sums are the same ``einsum`` on C-ordered ``(L, jb, I)``
+    blocks), then ``mean(axis=-1)`` per row (``tests/metrics/test_energy_fast_path.py``).
+    """
+    nl, nj, ni = v.shape
+    w = np.asarray(w, dtype=np.float64)
+    out = np.empty((nj, 3))
+    size = nl * min(rows, nj) * ni
+    flat = [np.empty(size) for _ in range(4)]
+    with np.errstate(invalid="ignore", over="ignore"):
+        for j0 in range(0, nj, rows):
+            jb = min(rows, nj - j0)
+            part = (slice(None), slice(j0, j0 + jb))
+            # C-ordered (L, jb, I) views of the buffers, as np.asarray(..., float64) of the rows gives
+            vb, eb, bb, pb = (f[:nl * jb * ni].reshape(nl, jb, ni) for f in flat)
+            vb[...] = v[part]
+            eb[...] = t[part]
+            eb *= CP_DRY                               # cp T
+            bb[...] = z[part]
+            bb *= GRAVITY
+            eb += bb                                   # + g z
+            bb[...] = q[part]
+            bb *= LATENT_HEAT_VAPORIZATION
+            eb += bb                                   # + L q
+            np.multiply(vb, eb, out=pb)
+            res = out[j0:j0 + jb]
+            res[:, 0] = np.einsum("...ljk,l->...jk", pb, w).mean(axis=-1)
+            res[:, 1] = np.einsum("...ljk,l->...jk", vb, w).mean(axis=-1)
+            res[:, 2] = np.einsum("...ljk,l->...jk", eb, w).mean(axis=-1)
+            if not np.isfinite(res).all():
+                return None
+    return out
+
+
 def covers_circle(lon):
     """True when the longitudes go round the whole circle: no cyclic gap wider than 1.5 times the
     median spacing (a regional grid has one large gap)."""

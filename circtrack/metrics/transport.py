@@ -22,7 +22,7 @@ import numpy as np
 
 from circtrack.constants import EARTH_RADIUS, GRAVITY, HPA, PETAWATT
 from circtrack.kernels import zonal as Z
-from circtrack.kernels.vertical import interpolated
+from circtrack.kernels.vertical import interpolated, layer_weights
 from circtrack.metrics.cells import column_rules
 from circtrack.metrics.common import HEMISPHERES, add_note, hemisphere_view, missing, peak, signed
 from circtrack.registry import Metric, Result, register_family
@@ -196,9 +196,12 @@ def energy_reducer(slabs, plev, lon, masks, cfg):
     # products) of a few rows in memory (in cache), not of the whole chunk; the same numbers, each
     # row is independent (the step's all-valid test is made once, so every block sums as the whole
     # step would)
+    w = layer_weights(p_pa, top)
     for t in range(lead[0]):
         take = {r: (slabs[r][t] if np.array_equal(idx[r], np.arange(slabs[r].shape[-3]))
                     else np.take(slabs[r][t], idx[r], axis=-3)) for r in ENERGY_ROLES}
+        if _all_valid_step(take, w, rows, out[t]):
+            continue
         # e is finite where ta and zg are (missing humidity aloft counts as 0, see below)
         valid = bool(np.isfinite(take["va"]).all() and np.isfinite(take["ta"]).all()
                      and np.isfinite(take["zg"]).all())
@@ -216,6 +219,31 @@ def energy_reducer(slabs, plev, lon, masks, cfg):
 
 
 ENERGY_BLOCK_VALUES = 2 ** 17   # values per role and block of latitude rows (a few MB of float64 temporaries)
+
+
+def _all_valid_step(take, w, rows, out):
+    """The energy reducer's usual case: every value of the time step ``take`` (role -> ``(*extra, L,
+    J, I)``) valid, no humidity filled. Writes ``out (*extra, J, 6, S)`` and returns True, or returns
+    False (``out`` to be written again) when a value is missing or a sum is not finite.
+    :func:`kernels.zonal.energy_column_means` gives the first three columns without the masking
+    passes; ``sum w`` is the constant of :func:`kernels.zonal.column_sums`' all-valid path, and its
+    zonal mean is taken over the same broadcast blocks of ``rows`` rows as there."""
+    extra = take["va"].shape[:-3]
+    nj, ni = take["va"].shape[-2:]
+    for ex in np.ndindex(*extra):
+        sums = Z.energy_column_means(*(take[r][ex] for r in ENERGY_ROLES), w, rows)
+        if sums is None:
+            return False
+        out[ex + (slice(None), slice(0, 3), 0)] = sums
+    wsum = {}
+    for j0 in range(0, nj, rows):
+        jb = min(rows, nj - j0)
+        if jb not in wsum:
+            sw = np.broadcast_to(w.sum(), extra + (jb, ni))
+            wsum[jb] = (sw.mean(axis=-1), (sw > 0).mean(axis=-1))
+        out[..., j0:j0 + jb, 3, 0], out[..., j0:j0 + jb, 4, 0] = wsum[jb]
+    out[..., 5, 0] = 0.0                     # no humidity was missing: nothing filled
+    return True
 
 
 def poleward_energy_transport(sums, lat, balance="remove_net_flux"):
