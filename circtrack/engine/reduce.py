@@ -23,6 +23,7 @@ import numpy as np
 
 from circtrack.inputs import chunks as CH
 from circtrack.inputs import dataset as D
+from circtrack.inputs import slabs as SL
 from circtrack.inputs.plausible import check_slabs
 
 def _zonal_block(block, masks):
@@ -132,8 +133,10 @@ def close_thread_cached():
 
 
 def close_cached():
-    """Close every handle this process holds (all threads; call when no task is running)."""
+    """Close every handle this process holds (all threads; call when no task is running), and unmap
+    the free read buffers (inputs/slabs.py): the run is over, or workers are about to be forked."""
     CH.close_all()
+    SL.release()
     with _OPEN_LOCK:
         groups = [g for k, g in _OPEN.items() if k[0] == os.getpid()]
         for k in [k for k in _OPEN if k[0] == os.getpid()]:
