@@ -55,7 +55,14 @@ def _take(nbytes):
             _FREE.remove(buf)
             return buf
         _FREE[:] = [b for b in _FREE if len(b) >= nbytes]     # a map is unmapped with its last reference
-    return mmap.mmap(-1, nbytes, flags=mmap.MAP_PRIVATE | mmap.MAP_ANONYMOUS)
+    buf = mmap.mmap(-1, nbytes, flags=mmap.MAP_PRIVATE | mmap.MAP_ANONYMOUS)
+    try:
+        # huge pages where the system gives them on request, as numpy asks for its large arrays:
+        # fewer page faults and TLB misses (measured: without, a year's run took 0.6 s more user CPU)
+        buf.madvise(mmap.MADV_HUGEPAGE)
+    except (AttributeError, OSError, ValueError):
+        pass
+    return buf
 
 
 def _give(ref, buf):
