@@ -25,7 +25,7 @@ import numpy as np
 
 MIN_BYTES = 4 * 2 ** 20       # smaller arrays: numpy's own allocator
 KEEP_BYTES = 1 << 30          # free maps kept per process for the next reads, at most
-_FREE = []                    # free maps (pages already resident), appended by _Lease callbacks
+_FREE = []                    # free maps (pages already resident), appended by the weak references' callbacks
 _LOCK = threading.RLock()     # a callback may run while this thread holds it (an array freed in take)
 _LIVE = {}                    # id -> weak reference of each array handed out (keeps the callbacks alive)
 
@@ -35,7 +35,7 @@ def empty(shape, dtype):
     dtype = np.dtype(dtype)
     count = int(np.prod(shape, dtype=np.int64))
     nbytes = count * dtype.itemsize
-    if nbytes < MIN_BYTES:
+    if nbytes < MIN_BYTES or nbytes == 0:
         return np.empty(shape, dtype=dtype)
     buf = _take(nbytes)
     base = np.frombuffer(buf, dtype=dtype, count=count)     # every view of the result refers to it
@@ -58,7 +58,7 @@ def _take(nbytes):
     buf = mmap.mmap(-1, nbytes, flags=mmap.MAP_PRIVATE | mmap.MAP_ANONYMOUS)
     try:
         # huge pages where the system gives them on request, as numpy asks for its large arrays:
-        # fewer page faults and TLB misses (measured: without, a year's run took 0.6 s more user CPU)
+        # fewer page faults and TLB misses (measured without: 0.7 s more CPU on a year's run of about 18 s)
         buf.madvise(mmap.MADV_HUGEPAGE)
     except (AttributeError, OSError, ValueError):
         pass
@@ -67,11 +67,14 @@ def _take(nbytes):
 
 def _give(ref, buf):
     """An array handed out is gone: its map is free (the oldest go beyond :data:`KEEP_BYTES`)."""
-    _LIVE.pop(id(ref), None)
-    with _LOCK:
-        _FREE.append(buf)
-        while sum(len(b) for b in _FREE) > KEEP_BYTES:
-            _FREE.pop(0)
+    try:
+        _LIVE.pop(id(ref), None)
+        with _LOCK:
+            _FREE.append(buf)
+            while sum(len(b) for b in _FREE) > KEEP_BYTES:
+                _FREE.pop(0)
+    except (AttributeError, TypeError):    # the interpreter is shutting down: the maps go with it
+        pass
 
 
 def release():
