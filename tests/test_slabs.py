@@ -112,3 +112,23 @@ def test_rows_identical_with_and_without_reused_maps(tmp_path, monkeypatch, comp
     assert csv_rows(engine.track([str(path)], cfg, label="x")) == plain
     assert taken and reused                            # read into maps, given back after each task
     CH.close_all()
+
+
+def test_stacked_files_in_reused_maps_give_the_same_rows(tmp_path, monkeypatch):
+    """One-day files stacked into a task, every read and the stack itself in reused memory maps
+    (inputs/slabs.py, its threshold lowered to 0): the rows of numpy's own arrays."""
+    from circtrack.engine import reduce as RD
+    from tests.test_speed_paths import SECTORS, one_day_files, rows, sync_cfg
+
+    paths = one_day_files(tmp_path, 6)
+    cfg = sync_cfg()
+    cfg["run"]["time_chunk"] = 6
+    monkeypatch.setattr(SL, "MIN_BYTES", 10 ** 12)
+    plain = rows(paths, cfg, SECTORS)
+    monkeypatch.setattr(SL, "MIN_BYTES", 0)
+    stacked = []
+    real = RD._stack
+    monkeypatch.setattr(RD, "_stack", lambda parts: stacked.append(len(parts)) or real(parts))
+    assert rows(paths, cfg, SECTORS) == plain
+    assert stacked and max(stacked) > 1
+    SL.release()

@@ -648,23 +648,3 @@ def test_energy_sums_in_blocks_of_rows_equal_the_whole_step(monkeypatch, holes):
     monkeypatch.setattr(T, "ENERGY_BLOCK_VALUES", plev.size * lon.size * 3)      # 3 rows a block
     assert np.array_equal(T.energy_reducer(*args), whole, equal_nan=True)
     assert np.isfinite(whole[..., 0, 0]).all() and (whole[..., 5, 0].max() > 0) == holes
-
-
-def test_stacked_files_in_reused_maps_give_the_same_rows(tmp_path, monkeypatch):
-    """One-day files stacked into a task, every read and the stack itself in reused memory maps
-    (inputs/slabs.py, its threshold lowered to 0): the rows of numpy's own arrays."""
-    from circtrack.engine import reduce as RD
-    from circtrack.inputs import slabs as SL
-
-    paths = one_day_files(tmp_path, 6)
-    cfg = sync_cfg()
-    cfg["run"]["time_chunk"] = 6
-    monkeypatch.setattr(SL, "MIN_BYTES", 10 ** 12)
-    plain = rows(paths, cfg, SECTORS)
-    monkeypatch.setattr(SL, "MIN_BYTES", 0)
-    stacked = []
-    real = RD._stack
-    monkeypatch.setattr(RD, "_stack", lambda parts: stacked.append(len(parts)) or real(parts))
-    assert rows(paths, cfg, SECTORS) == plain
-    assert stacked and max(stacked) > 1
-    SL.release()
