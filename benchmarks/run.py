@@ -268,6 +268,38 @@ def approaches(files, outdir):
     return out
 
 
+def scaling_months(months):
+    """Record lengths of ``--scaling``: 1 month (one batch, not full: 31 time steps), half of
+    ``months`` and ``months`` (both of full batches of 128 steps when ``months`` is 10 or more)."""
+    return sorted({1, max(1, months // 2), months})
+
+
+def scaling_table(files, outdir, months, title, log):
+    """``--scaling``: peak RSS of the default run on 1, months/2 and ``months`` months, and two ratios
+    of the tree's peaks: months/1 (batch fill and record length together) and months/(months/2)
+    (record length alone: flat memory means about 1.00)."""
+    rows = []
+    ct, env = circtrack_cmd()
+    for n in scaling_months(months):
+        m = measure(ct + ["track", *map(str, files[:n]), "-o", str(outdir / f"scaling_{n}.csv"), "-q"],
+                    outdir / f"scaling_{n}.log", env)
+        log(f"  scaling {n} month(s): rc={m['rc']} wall={m['wall']:.1f}s tree={m['tree'] / 1e9:.2f}GB")
+        rows.append((n, m))
+    r1 = rows[0][1]["tree"] or 1
+    half = rows[-2][1]["tree"] if len(rows) > 2 else None
+    lines = [f"### memory vs record length ({title}, default metrics, worker processes)", "",
+             markdown([(str(n), f"{m['wall']:.1f}" if m["rc"] == 0 else f"FAILED rc={m['rc']}",
+                        f"{m['maxrss'] / 1e9:.2f}", f"{m['tree'] / 1e9:.2f}", f"{m['tree'] / r1:.2f}")
+                       for n, m in rows],
+                      head=("months", "wall s", "peak RSS GB (largest proc)", "peak RSS GB (tree sum)",
+                            "tree ratio to 1 month")), ""]
+    last = rows[-1]
+    lines.append(f"Tree ratio {last[0]} months / 1 month (batch fill and record length): {last[1]['tree'] / r1:.2f}"
+                 + (f"; {last[0]} months / {rows[-2][0]} months (record length alone): "
+                    f"{last[1]['tree'] / (half or 1):.2f}" if half else "") + ".")
+    return lines + [""]
+
+
 def profile_table(files, outdir):
     """``circtrack track --profile`` once: where the time of the default run goes (stderr table)."""
     ct, env = circtrack_cmd()
@@ -400,7 +432,7 @@ def main(argv=None):
     ap.add_argument("--sets", choices=["uv", "full", "both"], default="both",
                     help="u+v files, the full set (ua, va, ta, zg, hus, ps: every family), or both")
     ap.add_argument("--scaling", action="store_true",
-                    help="also compare circtrack peak RSS for 1 month vs --months months")
+                    help="also compare circtrack peak RSS for 1 month, --months/2 and --months months")
     ap.add_argument("--many-files", type=int, default=0, metavar="N",
                     help="also time N small one-day files (--many-res grid, --many-compress)")
     ap.add_argument("--many-res", type=float, default=2.0)
@@ -473,20 +505,7 @@ def main(argv=None):
                                 f"{len(files)} files, {nbytes / 1e6:.0f} MB of values, {ondisk / 1e6:.0f} MB on disk "
                                 f"(ratio {nbytes / ondisk:.2f}). ")
             if a.scaling:
-                rows = []
-                ct, env = circtrack_cmd()
-                for n in sorted({1, a.months}):
-                    m = measure(ct + ["track", *map(str, files[:n]), "-o", str(outdir / f"scaling_{n}.csv"), "-q"],
-                                outdir / f"scaling_{n}.log", env)
-                    log(f"  scaling {n} month(s): rc={m['rc']} wall={m['wall']:.1f}s tree={m['tree'] / 1e9:.2f}GB")
-                    rows.append((n, m))
-                r1 = rows[0][1]["tree"] or 1
-                report += [f"### memory vs record length ({what}, {comp}, default metrics, worker processes)", "",
-                           markdown([(str(n), f"{m['wall']:.1f}" if m["rc"] == 0 else f"FAILED rc={m['rc']}",
-                                      f"{m['maxrss'] / 1e9:.2f}", f"{m['tree'] / 1e9:.2f}", f"{m['tree'] / r1:.2f}")
-                                     for n, m in rows],
-                                    head=("months", "wall s", "peak RSS GB (largest proc)", "peak RSS GB (tree sum)",
-                                          "tree ratio to 1 month")), ""]
+                report += scaling_table(files, outdir, a.months, f"{what}, {comp}", log)
 
     if a.many_files:
         log(f"[many] {a.many_files} one-day files at {a.many_res:g} deg, {a.many_compress}")

@@ -23,6 +23,7 @@ import numpy as np
 
 from circtrack.inputs import chunks as CH
 from circtrack.inputs import dataset as D
+from circtrack.inputs import slabs as SL
 from circtrack.inputs.plausible import check_slabs
 
 def _zonal_block(block, masks):
@@ -132,8 +133,10 @@ def close_thread_cached():
 
 
 def close_cached():
-    """Close every handle this process holds (all threads; call when no task is running)."""
+    """Close every handle this process holds (all threads; call when no task is running), and unmap
+    the free read buffers (inputs/slabs.py): the run is over, or workers are about to be forked."""
     CH.close_all()
+    SL.release()
     with _OPEN_LOCK:
         groups = [g for k, g in _OPEN.items() if k[0] == os.getpid()]
         for k in [k for k in _OPEN if k[0] == os.getpid()]:
@@ -314,7 +317,7 @@ def _reduce_stacked(jobs):
         notes = [n for _, n in read]
         if all(_same_layout(jobs[0], read[0][0], j, r[0]) for j, r in zip(jobs[1:], read[1:])):
             sizes = [next(iter(slabs.values())).shape[0] for slabs, _ in read]
-            whole = {role: np.concatenate([slabs[role] for slabs, _ in read], axis=0) for role in read[0][0]}
+            whole = {role: _stack([slabs[role] for slabs, _ in read]) for role in read[0][0]}
             both = _reduce(jobs[0], whole, clock)
             cut = np.cumsum([0] + sizes)
             outs = [{kind: {k: v[a:b] for k, v in both[kind].items()} for kind in ("stats", "extras")}
@@ -326,6 +329,12 @@ def _reduce_stacked(jobs):
     if clock.parts is not None:
         outs[0]["timing"] = clock.parts
     return outs
+
+
+def _stack(parts):
+    """``np.concatenate(parts)`` along time, into a reused memory map when large (inputs/slabs.py)."""
+    out = SL.empty((sum(p.shape[0] for p in parts),) + parts[0].shape[1:], np.result_type(*parts))
+    return np.concatenate(parts, axis=0, out=out)
 
 
 def _same_layout(a, slabs_a, b, slabs_b):

@@ -31,6 +31,8 @@ import zlib
 
 import numpy as np
 
+from circtrack.inputs import slabs
+
 try:                                  # a core dependency; plain zlib when it is missing
     from isal import isal_zlib as _inflate_lib
 except ImportError:                   # pragma: no cover - isal is installed with circtrack
@@ -189,7 +191,7 @@ def _read_stored(dset, lay, index, fd):
     axes = _axes(index, lay.shape)
     if not axes:
         return None
-    out = np.empty([len(src) for src, _ in axes], dtype=lay.dtype)
+    out = slabs.empty([len(src) for src, _ in axes], lay.dtype)     # large: a reused map
     nbytes = int(np.prod(lay.chunks)) * lay.dtype.itemsize
     buf = None
     try:
@@ -350,7 +352,7 @@ def read_stored(lay, index, stored, order=None):
     axes = _axes(index, lay.shape)
     if axes is None:
         return None
-    out = np.empty([len(src) for src, _ in axes], dtype=lay.dtype)
+    out = slabs.empty([len(src) for src, _ in axes], lay.dtype)     # large: a reused map
     met = _chunks_met(axes, lay)
     if order is not None:
         met = sorted(met, key=lambda m: order(m[0]))
