@@ -102,6 +102,46 @@ def find_s3rver(given=None):
     return None
 
 
+def raw_transfer(store, url, files, piece=16 << 20, parallel=4):
+    """The server's own speed: every object's bytes fetched in ``piece``-byte range GETs, ``parallel``
+    at a time, on presigned URLs with the standard library's HTTP client and nothing else done with
+    them -> (seconds, bytes, server CPU seconds). circtrack's S3 run shares the same cores with the
+    server, so this time is a floor under it that no client change can lower."""
+    import concurrent.futures
+    import http.client
+    import urllib.parse
+
+    bucket, prefix = url[len("s3://"):].split("/", 1)
+    jobs = []
+    for f in files:
+        key, size = prefix + Path(f).name, Path(f).stat().st_size
+        signed = urllib.parse.urlsplit(store.client.generate_presigned_url(
+            "get_object", Params={"Bucket": bucket, "Key": key}, ExpiresIn=3600))
+        jobs += [(signed, a, min(a + piece, size)) for a in range(0, size, piece)]
+
+    def get(job):
+        signed, a, b = job
+        conn = http.client.HTTPConnection(signed.hostname, signed.port, timeout=60)
+        try:
+            conn.request("GET", f"{signed.path}?{signed.query}", headers={"Range": f"bytes={a}-{b - 1}"})
+            resp = conn.getresponse()
+            buf = memoryview(bytearray(b - a))
+            got = 0
+            while got < len(buf):
+                n = resp.readinto(buf[got:])
+                if not n:
+                    break
+                got += n
+            return got
+        finally:
+            conn.close()
+
+    cpu0, t0 = store.cpu_seconds(), time.perf_counter()
+    with concurrent.futures.ThreadPoolExecutor(parallel) as pool:
+        got = sum(pool.map(get, jobs))
+    return time.perf_counter() - t0, got, store.cpu_seconds() - cpu0
+
+
 def object_store_table(files, outdir, nbytes, store, repeat, log):
     """circtrack track (default metrics) on the files on disk and on the same files in the local
     S3 server, alternating ``repeat`` rounds (load from other processes falls on both alike), then
@@ -110,6 +150,13 @@ def object_store_table(files, outdir, nbytes, store, repeat, log):
     t0 = time.perf_counter()
     url = store.upload(BUCKET, outdir.name, files)
     log(f"  uploaded {len(files)} files to {url} in {time.perf_counter() - t0:.0f} s ({store.kind})")
+    try:
+        raw = raw_transfer(store, url, files)
+        log(f"  the server alone: {raw[1] / 1e6:.0f} MB in 16 MiB range GETs, 4 at a time: {raw[0]:.2f} s "
+            f"({raw[1] / 1e6 / raw[0]:.0f} MB/s), server CPU {raw[2]:.1f} s")
+    except Exception as e:     # e.g. moto answers presigned GETs with HTTP 500
+        raw = None
+        log(f"  the server alone: not measured ({type(e).__name__}: {e})")
     ct, ct_env = circtrack_cmd()
     disk_csv, s3_csv = outdir / "disk.csv", outdir / "object_store.csv"
     runs = [("circtrack track, files on disk", ct + ["track", *map(str, files), "-o", str(disk_csv), "-q"], ct_env),
@@ -146,7 +193,7 @@ def object_store_table(files, outdir, nbytes, store, repeat, log):
                       f"{m['server_cpu']:.1f}" if k else "",
                       f"{(m['cpu'] + m['server_cpu']) / base['cpu']:.2f}" if k == 1 else "",
                       f"{n / 1e6 / m['wall']:.0f}", f"{m['maxrss'] / 1e9:.2f}", f"{m['tree'] / 1e9:.2f}"))
-    return table, same
+    return table, same, raw
 
 
 HEAD = ("approach", "wall s (median)", "wall s (runs)", "wall ratio to disk", "CPU s", "CPU ratio to disk",
@@ -191,7 +238,7 @@ def main(argv=None):
         store = LocalObjectStore(kind, binary)
         try:
             load = os.getloadavg()
-            table, same = object_store_table(files, outdir, nbytes, store, a.repeat, log)
+            table, same, raw = object_store_table(files, outdir, nbytes, store, a.repeat, log)
             load_after = os.getloadavg()
         finally:
             store.stop()
@@ -200,6 +247,11 @@ def main(argv=None):
                    f"{a.repeat} round(s); CSVs byte-identical: {'yes' if same else 'NO'}; 1-minute load average "
                    f"{load[0]:.1f} before, {load_after[0]:.1f} after. Logs: {outdir}", "",
                    markdown(table, head=HEAD), ""]
+        if raw and table[0][1].replace(".", "", 1).isdigit():
+            report += [f"The server alone (every object's bytes in 16 MiB range GETs, 4 at a time, nothing done with "
+                       f"them): {raw[0]:.2f} s for {raw[1] / 1e6:.0f} MB ({raw[1] / 1e6 / raw[0]:.0f} MB/s), server CPU "
+                       f"{raw[2]:.1f} s: a floor under the S3 run's wall time on this machine "
+                       f"({raw[0] / float(table[0][1]):.2f}x the median disk run).", ""]
     print("\n".join(report))
 
 

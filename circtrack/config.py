@@ -112,7 +112,7 @@ def _validate(cfg, user):
     if not isinstance(procs, int) or procs < 0:    # more than the cores: capped at the core count by the engine
         raise UsageError(f"run.processes = {procs!r} in the config: give a whole number, 0 for one per core "
                          f"(at most {os.cpu_count() or 1} are used here)")
-    for key, low in (("chunk_cache_bytes", 0), ("time_chunk", 1)):
+    for key, low in (("chunk_cache_bytes", 0), ("time_chunk", 1), ("batch_time_steps", 0)):
         v = run.get(key)
         if not isinstance(v, int) or v < low:
             raise UsageError(f"run.{key} = {v!r} in the config: give a whole number of at least {low} "

@@ -288,6 +288,7 @@ def test_mixed_units_within_a_metric_are_refused(tmp_path):
     ("[jets]\neddy_window = [15.0, inf]\n", "jets.eddy_window in the config: not a finite number"),
     ("[run]\nchunk_cache_bytes = -1\n", "run.chunk_cache_bytes = -1"),
     ("[run]\ntime_chunk = 0\n", "run.time_chunk = 0"),
+    ("[run]\nbatch_time_steps = -5\n", "run.batch_time_steps = -5"),
     ("[run]\nprocesses = -2\n", "run.processes = -2"),
     ("[cluster]\nconnect_timeout_s = 0.0\n", "cluster.connect_timeout_s"),
     ('[variables]\nwind = "U"\n', "unknown role 'wind'"),
