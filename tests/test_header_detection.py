@@ -139,3 +139,20 @@ def test_planning_on_netcdf4_files_imports_no_xarray_nor_pandas(tmp_path):
                        env={**os.environ, "PYTHONPATH": ROOT})
     assert p.returncode == 0, p.stderr
     assert p.stdout.strip() == "[]"
+
+
+def test_small_variables_with_fill_values_leave_their_values_to_xarray(tmp_path):
+    """A small 2-D float variable with a _FillValue (e.g. curvilinear latitudes) is read by xarray,
+    which masks the fill (raw from the header, 1e20 would stand for a latitude)."""
+    import xarray as xr
+    ds = make_dataset(3)
+    ds["glat"] = (("lat", "lon"), np.ones((ds.sizes["lat"], ds.sizes["lon"]), dtype="float32"))
+    ds["glat"][0, 0] = np.nan
+    path = str(tmp_path / "fill2d.nc")
+    ds.to_netcdf(path, encoding={"glat": {"_FillValue": np.float32(1e20)}, **_time_enc()})
+    head = H.open_header(path, C.load(None))
+    assert head is not None
+    with pytest.raises(H.NeedsFullOpen):
+        head["glat"].values
+    with xr.open_dataset(path) as ref:
+        assert np.isnan(ref["glat"].values[0, 0])

@@ -146,7 +146,8 @@ def _from_netcdf(nc):
         var.set_auto_maskandscale(False)
         size = int(np.prod(var.shape, dtype=np.int64))
         small = (var.ndim <= 1 and size <= LARGE) or (var.ndim == 2 and size <= SMALL)
-        values = np.asarray(var[...]) if small else None
+        # values with fill values are left to xarray, which masks them (raw here, they would not be)
+        values = np.asarray(var[...]) if small and not fills else None
         raw[name] = [var.dimensions, var.shape, dtype, a, values]
     used = {d for r in raw.values() for d in r[0]}
     if used and all(str(d).startswith("phony_dim_") for d in used):
