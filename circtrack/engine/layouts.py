@@ -21,10 +21,12 @@ import os
 
 import numpy as np
 
+from circtrack.inputs.header import SMALL  # two-dimensional variables up to this many values are compared by value
+from circtrack.inputs.header import num2date as _num2date
+
 # global attributes that differ from file to file and that detection never reads (it reads the
 # member and model names, title and institution: those stay in the key)
 VOLATILE = {"history", "tracking_id", "creation_date", "date_created", "date_modified", "date_metadata_modified"}
-SMALL = 1 << 16          # two-dimensional variables up to this many values (e.g. cell bounds) are compared by value
 
 
 def read_headers(job):
@@ -194,15 +196,6 @@ def _plain_times(head, tname):
     if any(np.isin(values, f).any() for f in fills):
         return None
     return values, str(attrs["units"]), str(attrs.get("calendar", "standard"))
-
-
-def _num2date(values, units, calendar):
-    import cftime
-    try:
-        out = cftime.num2date(values, units, calendar=calendar, only_use_cftime_datetimes=True)
-    except (ValueError, TypeError, OverflowError):
-        return None
-    return np.asarray(out, dtype=object)
 
 
 def _decode_times(head, tname):

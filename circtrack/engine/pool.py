@@ -176,9 +176,11 @@ def _local_size(path):
 
 def _looks_hdf5(path):
     """True for a local netCDF-4/HDF5 file (the workers then import h5py and netCDF4 ahead)."""
+    from circtrack.inputs.opening import HDF5_SIGNATURE
+
     try:
         with open(path, "rb") as f:
-            return f.read(8) == b"\x89HDF\r\n\x1a\n"
+            return f.read(8) == HDF5_SIGNATURE
     except (OSError, TypeError, ValueError):
         return False
 

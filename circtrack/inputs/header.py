@@ -30,8 +30,7 @@ import numpy as np
 
 MASK_ATTRS = ("_FillValue", "missing_value")
 REFUSED_ATTRS = {"scale_factor", "add_offset", "_Unsigned", "_Encoding", "dtype"}
-HDF5_SIGNATURE = b"\x89HDF\r\n\x1a\n"
-SMALL = 1 << 16          # two-dimensional variables up to this many values (e.g. time bounds) are read
+SMALL = 1 << 16          # two-dimensional variables up to this many values (e.g. time or cell bounds) are read
 LARGE = 1 << 22          # one-dimensional variables up to this many values (coordinates, time axes) are read
 
 
@@ -114,7 +113,7 @@ def open_header(path, cfg):
         return None
     try:
         with open(path, "rb") as f:
-            if f.read(8) != HDF5_SIGNATURE:
+            if f.read(8) != opening.HDF5_SIGNATURE:
                 return None
         import netCDF4
         with netCDF4.Dataset(path, "r") as nc:
@@ -220,19 +219,23 @@ def _time_attributes(raw):
 
 def _decode_times(raw, name, attrs):
     """The dates of a time variable as xarray's coder gives them (cftime for every calendar), or None."""
-    import cftime
-
     dims, shape, _, _, values = raw[name]
     if values is None:
         return None
     values = np.asarray(values)
     if values.dtype.kind not in "iuf" or not np.all(np.isfinite(values)):
         return None
+    flat = values.ravel()
+    dates = num2date(flat, attrs["units"], attrs.get("calendar", "standard")) if flat.size else np.array([], dtype=object)
+    return None if dates is None else dates.reshape(values.shape)
+
+
+def num2date(values, units, calendar):
+    """cftime dates of ``values`` (object array) for every calendar, as xarray's coder gives them, or None."""
+    import cftime
+
     try:
-        flat = values.ravel()
-        dates = (np.asarray(cftime.num2date(flat, attrs["units"], attrs.get("calendar", "standard"),
-                                            only_use_cftime_datetimes=True))
-                 if flat.size else np.array([], dtype=object))
+        out = cftime.num2date(values, units, calendar=calendar, only_use_cftime_datetimes=True)
     except (ValueError, TypeError, OverflowError):
         return None
-    return dates.reshape(values.shape)
+    return np.asarray(out, dtype=object)

@@ -208,7 +208,7 @@ def _open_lazily(path, target, engine, extra, cfg):
 
 
 _CLASSIC_MAGIC = (b"CDF\x01", b"CDF\x02")
-_HDF5_MAGIC = b"\x89HDF\r\n\x1a\n"
+HDF5_SIGNATURE = b"\x89HDF\r\n\x1a\n"   # the first 8 bytes of a netCDF-4 (HDF5) file, for every module
 
 
 def _check_format(path):
@@ -228,7 +228,7 @@ def _check_format(path):
         size = os.path.getsize(path)
         while off < min(size, 1 << 20):
             f.seek(off)
-            if f.read(8) == _HDF5_MAGIC:
+            if f.read(8) == HDF5_SIGNATURE:
                 return
             off *= 2
     text = head[:200]

@@ -58,17 +58,12 @@ async def direct_get(fs, bucket, key, vers, start, out, progress=None):
     import asyncio
     from urllib.parse import urlsplit
 
-    from s3fs.core import version_id_kw
-
     st = _direct_state()
     ident = _ident(fs, bucket, key, vers)
     parts = _kept(ident)
     if parts is None:
         try:
-            await fs.set_session()
-            url = await fs.s3.generate_presigned_url(
-                ClientMethod="get_object", Params={"Bucket": bucket, "Key": key, **version_id_kw(vers)},
-                ExpiresIn=PRESIGN_S)
+            url = await _sign(fs, bucket, key, vers)
         except Exception:  # noqa: BLE001 - signing is s3fs's business: its own request says what is wrong
             return None
         parts = _keep(ident, urlsplit(url))
@@ -80,6 +75,15 @@ async def direct_get(fs, bucket, key, vers, start, out, progress=None):
     except _Fallback:
         _give_up(st, ident, parts)
         return None
+
+
+async def _sign(fs, bucket, key, vers):
+    """A presigned GET of one object (any byte range of it, for PRESIGN_S seconds), signed by s3fs's client."""
+    from s3fs.core import version_id_kw
+
+    await fs.set_session()
+    return await fs.s3.generate_presigned_url(
+        ClientMethod="get_object", Params={"Bucket": bucket, "Key": key, **version_id_kw(vers)}, ExpiresIn=PRESIGN_S)
 
 
 def _ident(fs, bucket, key, vers):
@@ -124,17 +128,10 @@ def remember(fs, path, size):
     if _kept(ident) is not None:
         return
     import fsspec.asyn
-    from s3fs.core import version_id_kw
     from urllib.parse import urlsplit
 
-    async def sign():
-        await fs.set_session()
-        return await fs.s3.generate_presigned_url(
-            ClientMethod="get_object", Params={"Bucket": bucket, "Key": key, **version_id_kw(vers)},
-            ExpiresIn=PRESIGN_S)
-
     try:
-        url = fsspec.asyn.sync(fs.loop, sign)
+        url = fsspec.asyn.sync(fs.loop, _sign, fs, bucket, key, vers)
     except Exception:  # noqa: BLE001 - no URL kept: the workers ask s3fs as before
         return
     _keep(ident, urlsplit(url), int(size))

@@ -332,6 +332,7 @@ class Arriving:
     def __init__(self, runs, bufs, progress):
         self._runs, self._bufs, self._progress = runs, bufs, progress
         self._longest = max((b - a for a, b in progress.pieces), default=0)
+        self._starts = [a for a, _ in progress.pieces]
 
     def view(self, offset, size):
         """A read-only view of bytes ``offset .. offset + size`` once they have arrived, or None
@@ -345,7 +346,7 @@ class Arriving:
 
     def order(self, offset):
         pieces = self._progress.pieces
-        k = max(bisect.bisect_right([a for a, _ in pieces], offset) - 1, 0)
+        k = max(bisect.bisect_right(self._starts, offset) - 1, 0)
         return (k // IN_FLIGHT) * self._longest + offset - pieces[k][0]
 
 
